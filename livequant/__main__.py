@@ -1,0 +1,3 @@
+from livequant.cli import main
+
+raise SystemExit(main())

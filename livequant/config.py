@@ -1,0 +1,259 @@
+"""Settings: validated once, frozen, with a documented source order.
+
+Sources, highest first: command-line overrides > environment variables
+(``LIVEQUANT_SECTION__KEY=value``) > a user TOML file > ``config/default.toml``
+> the field defaults below.  Unknown keys are errors, so a typo fails at
+start-up instead of being ignored for a whole session.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Any, Literal, Mapping
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError
+
+try:  # Python >= 3.11
+    import tomllib
+except ModuleNotFoundError:  # pragma: no cover - Python 3.10
+    import tomli as tomllib  # type: ignore[no-redef]
+
+__all__ = [
+    "Settings",
+    "ConfigError",
+    "load_settings",
+    "CONFIG_DIR",
+    "DEFAULT_TOML",
+    "MATERIALS_TOML",
+    "Material",
+    "load_materials",
+]
+
+CONFIG_DIR = Path(__file__).resolve().parent.parent / "config"
+DEFAULT_TOML = CONFIG_DIR / "default.toml"
+MATERIALS_TOML = CONFIG_DIR / "materials.toml"
+ENV_PREFIX = "LIVEQUANT_"
+
+
+class ConfigError(ValueError):
+    """Invalid configuration: names the key, the value and what is allowed."""
+
+
+class _Model(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class FrameDefaults(_Model):
+    """Metadata used when a frame's sidecar does not give it."""
+
+    pixel_size_pm: float | None = Field(default=None, gt=0)
+    dwell_time_us: float | None = Field(default=None, gt=0)
+    detector: str = "HAADF"
+    stage_x_nm: float = 0.0
+    stage_y_nm: float = 0.0
+    scan_rotation_deg: float = 0.0
+
+    def as_dict(self) -> dict:
+        return self.model_dump()
+
+
+class LatticeSettings(_Model):
+    min_spacing_px: float = Field(default=4.0, gt=1)
+    max_spacing_fraction: float = Field(default=0.25, gt=0, le=0.5)
+    min_quality: float = Field(default=8.0, gt=0)
+
+
+class DetectionSettings(_Model):
+    min_distance_fraction: float = Field(default=0.3, gt=0, lt=1)
+    min_prominence_sigma: float = Field(default=3.0, ge=0)
+    border_fraction: float = Field(default=0.35, ge=0, le=1)
+
+
+class RefineSettings(_Model):
+    window_fraction: float = Field(default=0.3, gt=0, le=0.6)
+    max_iterations: int = Field(default=30, ge=1, le=500)
+    tolerance_px: float = Field(default=1e-4, gt=0)
+    elliptical: bool = True
+    joint_neighbours: bool = True
+    weighting: Literal["poisson", "uniform"] = "poisson"
+    gain_counts_per_electron: float = Field(default=1.0, gt=0)
+
+
+class SublatticeSettings(_Model):
+    projection: Literal["perovskite_001", "simple"] = "perovskite_001"
+    oxygen: Literal["auto", "always", "never"] = "auto"
+
+
+class CalibrationSettings(_Model):
+    reference_material: str | None = None
+    axis: Literal["a", "c", "mean"] = "mean"
+
+
+class AnalysisSettings(_Model):
+    lattice: LatticeSettings = LatticeSettings()
+    detection: DetectionSettings = DetectionSettings()
+    refine: RefineSettings = RefineSettings()
+    sublattice: SublatticeSettings = SublatticeSettings()
+    calibration: CalibrationSettings = CalibrationSettings()
+    material: str | None = None
+
+
+class Settings(_Model):
+    """Every setting of livequant, with its default."""
+
+    frame_defaults: FrameDefaults = FrameDefaults()
+    analysis: AnalysisSettings = AnalysisSettings()
+    workers: int = Field(default=0, ge=0, le=64)
+
+
+# ---------------------------------------------------------------- loading
+
+
+def _deep_merge(base: dict, top: Mapping) -> dict:
+    out = dict(base)
+    for key, value in top.items():
+        if isinstance(value, Mapping) and isinstance(out.get(key), dict):
+            out[key] = _deep_merge(out[key], value)
+        else:
+            out[key] = value
+    return out
+
+
+def _read_toml(path: Path) -> dict:
+    try:
+        with open(path, "rb") as fh:
+            return tomllib.load(fh)
+    except FileNotFoundError:
+        raise ConfigError(f"config file {path} does not exist") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"config file {path} is not valid TOML: {exc}") from None
+
+
+def _set_dotted(tree: dict, dotted: str, value: Any) -> None:
+    parts = [p for p in dotted.split(".") if p]
+    node = tree
+    for part in parts[:-1]:
+        node = node.setdefault(part, {})
+        if not isinstance(node, dict):
+            raise ConfigError(f"`{dotted}`: `{part}` is a value, not a section")
+    node[parts[-1]] = value
+
+
+def _parse_scalar(text: str) -> Any:
+    """Parse an environment or command-line value as a TOML scalar, else a string."""
+    try:
+        return tomllib.loads(f"v = {text}")["v"]
+    except tomllib.TOMLDecodeError:
+        return text
+
+
+def env_overrides(environ: Mapping[str, str] | None = None) -> dict:
+    environ = os.environ if environ is None else environ
+    tree: dict = {}
+    for name, text in environ.items():
+        if not name.startswith(ENV_PREFIX) or name == ENV_PREFIX + "CONFIG":
+            continue
+        dotted = name[len(ENV_PREFIX):].lower().replace("__", ".")
+        _set_dotted(tree, dotted, _parse_scalar(text))
+    return tree
+
+
+def load_settings(
+    config_file: str | os.PathLike | None = None,
+    *,
+    overrides: Mapping[str, Any] | None = None,
+    environ: Mapping[str, str] | None = None,
+    use_default_toml: bool = True,
+) -> Settings:
+    """Resolve settings from all sources.
+
+    Parameters
+    ----------
+    config_file : path, optional
+        A user TOML file (``--config``; else ``$LIVEQUANT_CONFIG`` if set).
+    overrides : mapping, optional
+        Dotted keys from the command line, e.g. ``{"frame_defaults.pixel_size_pm": 8.5}``.
+    environ : mapping, optional
+        Environment to read ``LIVEQUANT_*`` variables from (default ``os.environ``).
+
+    Raises
+    ------
+    ConfigError
+        With the key, the value given and what is allowed.
+    """
+    environ = os.environ if environ is None else environ
+    tree: dict = {}
+    if use_default_toml and DEFAULT_TOML.exists():
+        tree = _deep_merge(tree, _read_toml(DEFAULT_TOML))
+    config_file = config_file or environ.get(ENV_PREFIX + "CONFIG")
+    if config_file:
+        tree = _deep_merge(tree, _read_toml(Path(config_file)))
+    tree = _deep_merge(tree, env_overrides(environ))
+    cli_tree: dict = {}
+    for dotted, value in (overrides or {}).items():
+        if value is not None:
+            _set_dotted(cli_tree, dotted, value)
+    tree = _deep_merge(tree, cli_tree)
+    return validate_settings(tree)
+
+
+def validate_settings(tree: Mapping) -> Settings:
+    try:
+        return Settings.model_validate(tree)
+    except ValidationError as exc:
+        lines = []
+        for err in exc.errors():
+            key = ".".join(str(p) for p in err["loc"])
+            if err["type"] == "extra_forbidden":
+                lines.append(f"`{key}` is not a setting (misspelled?); see config/default.toml")
+            else:
+                lines.append(f"`{key}` = {err.get('input')!r}: {err['msg']}")
+        raise ConfigError("invalid configuration:\n  " + "\n  ".join(lines)) from None
+
+
+# ---------------------------------------------------------------- materials
+
+
+class Material(_Model):
+    """One entry of ``config/materials.toml``."""
+
+    name: str
+    a_pm: float = Field(gt=0)
+    c_pm: float = Field(gt=0)
+    z_a: int = Field(gt=0)
+    z_b: int = Field(gt=0)
+    born_a: float | None = None
+    born_b: float | None = None
+    born_o_par: float | None = None
+    born_o_perp: float | None = None
+    p_sign_b_vs_a: Literal[-1, 1] | None = None
+    source: str
+    status: str
+
+    @property
+    def cell_volume_pm3(self) -> float:
+        return self.a_pm * self.a_pm * self.c_pm
+
+
+def load_materials(path: str | os.PathLike | None = None) -> dict[str, Material]:
+    """Read the material table; keys are the material names."""
+    path = Path(path) if path else MATERIALS_TOML
+    raw = _read_toml(path)
+    out = {}
+    for name, entry in raw.items():
+        try:
+            out[name] = Material.model_validate({"name": name, **entry})
+        except ValidationError as exc:
+            err = exc.errors()[0]
+            key = ".".join(str(p) for p in err["loc"])
+            raise ConfigError(f"{path}: material `{name}`, key `{key}`: {err['msg']}") from None
+    return out
+
+
+def get_material(name: str, *, path: str | os.PathLike | None = None) -> Material:
+    table = load_materials(path)
+    if name not in table:
+        raise ConfigError(f"unknown material `{name}`; known: {', '.join(sorted(table))} "
+                          f"(add it to {path or MATERIALS_TOML})")
+    return table[name]

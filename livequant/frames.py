@@ -1,0 +1,353 @@
+"""Frames: the image, its metadata, and the readers for files on disk.
+
+A frame on disk is ``NAME.tif``/``NAME.tiff`` (one 2D page) or ``NAME.npy``
+(2D), with an optional JSON sidecar ``NAME.json`` holding the keys of
+:class:`Sidecar`.  Every way a file can be wrong raises :class:`FrameError`
+with a message that names the file, says what is wrong and how to fix it.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+from dataclasses import dataclass, field
+from datetime import datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+
+__all__ = [
+    "Frame",
+    "FrameMeta",
+    "FrameError",
+    "Sidecar",
+    "IMAGE_SUFFIXES",
+    "read_frame",
+    "read_image",
+    "read_sidecar",
+    "sidecar_path",
+    "frame_from_array",
+    "MAX_FRAME_PIXELS",
+]
+
+IMAGE_SUFFIXES = (".tif", ".tiff", ".npy")
+
+#: Largest frame we accept (pixels).  16384 x 16384 is past any STEM scan
+#: generator in use; a larger declared size is a corrupt header, not data.
+MAX_FRAME_PIXELS = 16384 * 16384
+
+_ALLOWED_KINDS = "biuf"  # bool, signed and unsigned integers, floats
+
+
+class FrameError(ValueError):
+    """A frame that cannot be analysed.  ``reason`` is a short machine tag."""
+
+    def __init__(self, message: str, *, reason: str, path: str | os.PathLike | None = None):
+        super().__init__(message)
+        self.reason = reason
+        self.path = None if path is None else str(path)
+
+
+class Sidecar(BaseModel):
+    """The JSON sidecar of a frame.  Unknown keys are kept in ``extra``."""
+
+    model_config = ConfigDict(extra="allow", frozen=True, strict=False)
+
+    frame_id: str | None = None
+    pixel_size_pm: float | None = Field(default=None, gt=0, allow_inf_nan=False)
+    dwell_time_us: float | None = Field(default=None, gt=0, allow_inf_nan=False)
+    stage_x_nm: float | None = Field(default=None, allow_inf_nan=False)
+    stage_y_nm: float | None = Field(default=None, allow_inf_nan=False)
+    scan_rotation_deg: float | None = Field(default=None, allow_inf_nan=False)
+    acquired_at: datetime | None = None
+    detector: str | None = None
+
+    @field_validator("frame_id", "detector", mode="before")
+    @classmethod
+    def _must_be_text(cls, value):
+        if value is not None and not isinstance(value, str):
+            raise ValueError(f"must be a string, got {type(value).__name__}")
+        return value
+
+    @field_validator(
+        "pixel_size_pm", "dwell_time_us", "stage_x_nm", "stage_y_nm", "scan_rotation_deg",
+        mode="before",
+    )
+    @classmethod
+    def _must_be_number(cls, value):
+        # JSON true/false and numeric strings are mistakes in a sidecar, not numbers.
+        if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))):
+            raise ValueError(f"must be a number, got {type(value).__name__} {value!r}")
+        return value
+
+    @classmethod
+    def parse(cls, data: Any, *, where: str) -> "Sidecar":
+        """Validate a decoded JSON object; raise FrameError naming `where`."""
+        if not isinstance(data, dict):
+            raise FrameError(
+                f"{where}: the sidecar must be a JSON object ({{...}}), got {type(data).__name__}",
+                reason="sidecar-not-object",
+            )
+        try:
+            return cls.model_validate(data)
+        except ValidationError as exc:
+            problems = "; ".join(
+                f"`{'.'.join(str(p) for p in e['loc'])}` {e['msg']} (got {e.get('input')!r})"
+                for e in exc.errors()
+            )
+            raise FrameError(
+                f"{where}: invalid sidecar: {problems}. Fix the value or remove the key "
+                "to use the configured default.",
+                reason="sidecar-invalid",
+            ) from None
+
+
+@dataclass(frozen=True)
+class FrameMeta:
+    """Resolved metadata of a frame (sidecar merged over configured defaults)."""
+
+    frame_id: str
+    pixel_size_pm: float
+    dwell_time_us: float | None = None
+    stage_x_nm: float = 0.0
+    stage_y_nm: float = 0.0
+    scan_rotation_deg: float = 0.0
+    acquired_at: str | None = None
+    detector: str = "HAADF"
+    extra: dict = field(default_factory=dict)
+
+    def to_json(self) -> dict:
+        d = {k: getattr(self, k) for k in (
+            "frame_id", "pixel_size_pm", "dwell_time_us", "stage_x_nm", "stage_y_nm",
+            "scan_rotation_deg", "acquired_at", "detector")}
+        d["extra"] = dict(self.extra)
+        return d
+
+
+@dataclass(frozen=True)
+class Frame:
+    """One image with its metadata.  The pixel array is read-only."""
+
+    pixels: np.ndarray
+    meta: FrameMeta
+    path: str | None = None
+
+    @property
+    def frame_id(self) -> str:
+        return self.meta.frame_id
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return tuple(self.pixels.shape)  # type: ignore[return-value]
+
+
+def sidecar_path(image_path: str | os.PathLike) -> Path:
+    """The sidecar that belongs to `image_path` (same stem, ``.json``)."""
+    p = Path(image_path)
+    return p.with_suffix(".json")
+
+
+def read_sidecar(path: str | os.PathLike) -> Sidecar:
+    """Read and validate one sidecar file."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise FrameError(f"{path}: sidecar vanished before it could be read",
+                         reason="vanished", path=path) from None
+    except UnicodeDecodeError as exc:
+        raise FrameError(f"{path}: sidecar is not UTF-8 text ({exc.reason} at byte {exc.start})",
+                         reason="sidecar-not-json", path=path) from None
+    except OSError as exc:
+        raise FrameError(f"{path}: cannot read sidecar: {exc.strerror}", reason="unreadable",
+                         path=path) from None
+    try:
+        data = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise FrameError(
+            f"{path}: sidecar is not valid JSON ({exc.msg} at line {exc.lineno}, column "
+            f"{exc.colno}); write it as a JSON object of the documented keys",
+            reason="sidecar-not-json", path=path) from None
+    try:
+        return Sidecar.parse(data, where=str(path))
+    except FrameError as exc:
+        exc.path = str(path)
+        raise
+
+
+def read_image(path: str | os.PathLike) -> np.ndarray:
+    """Read the pixels of a TIFF or NPY frame and check they are usable.
+
+    Raises
+    ------
+    FrameError
+        For a missing, empty, truncated or unreadable file, an unsupported
+        suffix or dtype, a shape that is not 2D, an absurd size, or NaN/inf.
+    """
+    path = Path(path)
+    suffix = path.suffix.lower()
+    if suffix not in IMAGE_SUFFIXES:
+        raise FrameError(f"{path}: not a frame file; expected one of {', '.join(IMAGE_SUFFIXES)}",
+                         reason="unsupported-format", path=path)
+    try:
+        size = path.stat().st_size
+    except FileNotFoundError:
+        raise FrameError(f"{path}: file vanished before it could be read", reason="vanished",
+                         path=path) from None
+    if size == 0:
+        raise FrameError(f"{path}: file is empty (0 bytes); was it still being written?",
+                         reason="empty-file", path=path)
+    try:
+        pixels = _read_npy(path) if suffix == ".npy" else _read_tiff(path)
+    except FrameError:
+        raise
+    except FileNotFoundError:
+        raise FrameError(f"{path}: file vanished while being read", reason="vanished",
+                         path=path) from None
+    except MemoryError:
+        raise FrameError(f"{path}: declared image size does not fit in memory",
+                         reason="too-large", path=path) from None
+    except Exception as exc:  # any decoder failure is a property of the file
+        raise FrameError(f"{path}: cannot decode image ({type(exc).__name__}: {exc}); the file "
+                         "is truncated or not a valid image", reason="unreadable",
+                         path=path) from None
+    return check_pixels(pixels, where=str(path))
+
+
+def check_pixels(pixels: np.ndarray, *, where: str) -> np.ndarray:
+    """Validate an image array (2D, numeric, finite, not empty) and return it."""
+    pixels = np.asarray(pixels)
+    if pixels.dtype.kind not in _ALLOWED_KINDS:
+        raise FrameError(f"{where}: unsupported pixel type {pixels.dtype}; use an integer or "
+                         "float image", reason="bad-dtype", path=None)
+    if pixels.ndim == 3 and 1 in pixels.shape:
+        pixels = pixels.reshape([n for n in pixels.shape if n != 1][:2] or (1, 1))
+    if pixels.ndim != 2:
+        raise FrameError(f"{where}: image must be 2D, got shape {pixels.shape}; save one frame "
+                         "per file", reason="not-2d")
+    if pixels.size == 0 or min(pixels.shape) < 8:
+        raise FrameError(f"{where}: image of shape {pixels.shape} is too small to hold a lattice "
+                         "(need at least 8 x 8 pixels)", reason="too-small")
+    if pixels.size > MAX_FRAME_PIXELS:
+        raise FrameError(f"{where}: image of shape {pixels.shape} is larger than the "
+                         f"{MAX_FRAME_PIXELS} pixels accepted", reason="too-large")
+    if pixels.dtype.kind == "f":
+        bad = ~np.isfinite(pixels)
+        if bad.any():
+            n = int(bad.sum())
+            r, c = np.argwhere(bad)[0]
+            raise FrameError(f"{where}: {n} pixel(s) are NaN or infinite (first at row {r}, "
+                             f"col {c}); the detector read-out is corrupt", reason="non-finite")
+    return pixels
+
+
+def _read_npy(path: Path) -> np.ndarray:
+    with open(path, "rb") as fh:
+        try:
+            version = np.lib.format.read_magic(fh)
+            shape, _fortran, dtype = np.lib.format._read_array_header(fh, version)  # noqa: SLF001
+        except ValueError as exc:
+            raise FrameError(f"{path}: not a valid .npy file ({exc})", reason="unreadable",
+                             path=path) from None
+        n_items = math.prod(shape)
+        if n_items > MAX_FRAME_PIXELS:
+            raise FrameError(f"{path}: declared shape {shape} is larger than the "
+                             f"{MAX_FRAME_PIXELS} pixels accepted", reason="too-large", path=path)
+        if dtype.hasobject:
+            raise FrameError(f"{path}: .npy holds Python objects; only numeric images are read "
+                             "(objects would need unpickling, which we never do)",
+                             reason="bad-dtype", path=path)
+        expected = n_items * dtype.itemsize
+        remaining = path.stat().st_size - fh.tell()
+        if remaining < expected:
+            raise FrameError(f"{path}: truncated: header declares {expected} bytes of pixels, "
+                             f"file holds {remaining}", reason="truncated", path=path)
+    return np.load(path, allow_pickle=False)
+
+
+def _read_tiff(path: Path) -> np.ndarray:
+    import tifffile
+
+    try:
+        with tifffile.TiffFile(path) as tif:
+            if len(tif.pages) == 0:
+                raise FrameError(f"{path}: TIFF holds no image pages", reason="unreadable",
+                                 path=path)
+            page = tif.pages[0]
+            n_items = math.prod(page.shape)
+            if n_items > MAX_FRAME_PIXELS:
+                raise FrameError(f"{path}: declared shape {page.shape} is larger than the "
+                                 f"{MAX_FRAME_PIXELS} pixels accepted", reason="too-large",
+                                 path=path)
+            if len(tif.pages) > 1 and len(tif.series) and len(tif.series[0].shape) > 2:
+                raise FrameError(f"{path}: TIFF holds a stack of {len(tif.pages)} pages; save "
+                                 "one frame per file", reason="not-2d", path=path)
+            return page.asarray()
+    except tifffile.TiffFileError as exc:
+        raise FrameError(f"{path}: not a readable TIFF ({exc}); the file is truncated or not "
+                         "an image", reason="unreadable", path=path) from None
+
+
+def resolve_meta(sidecar: Sidecar | None, *, default_id: str, defaults: dict | None = None,
+                 where: str) -> FrameMeta:
+    """Merge a sidecar over configured defaults into a :class:`FrameMeta`.
+
+    `defaults` maps sidecar keys to configured fallback values (``None`` for
+    no fallback).  A frame with no pixel size from either is rejected.
+    """
+    defaults = dict(defaults or {})
+    values: dict[str, Any] = {}
+    known = ("frame_id", "pixel_size_pm", "dwell_time_us", "stage_x_nm", "stage_y_nm",
+             "scan_rotation_deg", "acquired_at", "detector")
+    extra: dict = {}
+    if sidecar is not None:
+        for key in known:
+            v = getattr(sidecar, key)
+            if v is not None:
+                values[key] = v
+        extra = dict(sidecar.model_extra or {})
+    for key in known:
+        if key not in values and defaults.get(key) is not None:
+            values[key] = defaults[key]
+    if values.get("pixel_size_pm") is None:
+        raise FrameError(
+            f"{where}: no pixel size: put \"pixel_size_pm\" in the frame's sidecar or set "
+            "`frame_defaults.pixel_size_pm` in the configuration", reason="no-pixel-size")
+    if isinstance(values.get("acquired_at"), datetime):
+        values["acquired_at"] = values["acquired_at"].isoformat()
+    values.setdefault("frame_id", default_id)
+    return FrameMeta(**values, extra=extra)
+
+
+def read_frame(path: str | os.PathLike, *, defaults: dict | None = None) -> Frame:
+    """Read an image file and its optional sidecar into a :class:`Frame`.
+
+    Parameters
+    ----------
+    path : path-like
+        ``.tif``, ``.tiff`` or ``.npy`` file.
+    defaults : dict, optional
+        Fallback metadata for keys the sidecar does not give (e.g. from
+        ``Settings.frame_defaults``).
+    """
+    path = Path(path)
+    pixels = read_image(path)
+    sc_path = sidecar_path(path)
+    sidecar = read_sidecar(sc_path) if sc_path.exists() else None
+    try:
+        meta = resolve_meta(sidecar, default_id=path.stem, defaults=defaults, where=str(path))
+    except FrameError as exc:
+        exc.path = str(path)
+        raise
+    return frame_from_array(pixels, meta, path=str(path))
+
+
+def frame_from_array(pixels, meta: FrameMeta, *, path: str | None = None) -> Frame:
+    """Wrap an array (validated, made read-only) and metadata into a Frame."""
+    pixels = check_pixels(np.asarray(pixels), where=path or meta.frame_id)
+    pixels = np.array(pixels, copy=True)
+    pixels.flags.writeable = False
+    return Frame(pixels=pixels, meta=meta, path=path)
