@@ -31,6 +31,10 @@ __all__ = [
     "sidecar_path",
     "frame_from_array",
     "MAX_FRAME_PIXELS",
+    "write_frame",
+    "write_json_atomic",
+    "check_pixels",
+    "resolve_meta",
 ]
 
 IMAGE_SUFFIXES = (".tif", ".tiff", ".npy")
@@ -351,3 +355,41 @@ def frame_from_array(pixels, meta: FrameMeta, *, path: str | None = None) -> Fra
     pixels = np.array(pixels, copy=True)
     pixels.flags.writeable = False
     return Frame(pixels=pixels, meta=meta, path=path)
+
+
+def write_frame(directory: str | os.PathLike, stem: str, pixels: np.ndarray,
+                sidecar: dict | None = None, *, fmt: str = "tif") -> Path:
+    """Write a frame the way a well-behaved acquisition writer does.
+
+    The image is written to a hidden temporary name and renamed into place,
+    then the sidecar likewise, so a watcher that waits for the sidecar never
+    sees a partial file.  Returns the image path.
+    """
+    import tifffile
+
+    directory = Path(directory)
+    directory.mkdir(parents=True, exist_ok=True)
+    if fmt not in ("tif", "tiff", "npy"):
+        raise ValueError(f"`fmt` must be 'tif', 'tiff' or 'npy', got {fmt!r}")
+    final = directory / f"{stem}.{fmt}"
+    tmp = directory / f".{stem}.{fmt}.part"
+    if fmt == "npy":
+        with open(tmp, "wb") as fh:
+            np.save(fh, np.asarray(pixels), allow_pickle=False)
+    else:
+        tifffile.imwrite(tmp, np.asarray(pixels))
+    os.replace(tmp, final)
+    if sidecar is not None:
+        write_json_atomic(directory / f"{stem}.json", sidecar)
+    return final
+
+
+def write_json_atomic(path: str | os.PathLike, data: Any) -> None:
+    """Write JSON to a temporary file in the same folder, then rename it into place."""
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.part")
+    with open(tmp, "w", encoding="utf-8") as fh:
+        json.dump(data, fh, indent=1, default=str)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
