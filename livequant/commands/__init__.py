@@ -1,0 +1,1 @@
+"""Sub-commands of the livequant command line, one module each."""

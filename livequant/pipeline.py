@@ -1,0 +1,213 @@
+"""One frame through the analysis stages: a pure function, no I/O, no threads.
+
+``analyze_frame(frame, settings) -> FrameResult`` is what ``livequant
+analyze``, the daemon's worker processes and (later) a cluster task all call.
+It is picklable and keeps no state between calls.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from livequant.analysis.calibration import check_calibration
+from livequant.analysis.columns import detect_columns
+from livequant.analysis.lattice import NoLatticeError, find_lattice, lattice_from_columns
+from livequant.analysis.refine import refine_columns
+from livequant.analysis.sublattice import assign_sites
+from livequant.analysis.types import Columns, Lattice
+from livequant.config import Settings
+from livequant.frames import Frame, FrameMeta
+
+__all__ = ["FrameResult", "analyze_frame", "STATUS_OK", "STATUS_NO_LATTICE"]
+
+STATUS_OK = "ok"
+STATUS_NO_LATTICE = "no-lattice"
+
+
+@dataclass(frozen=True)
+class FrameResult:
+    """Everything the analysis found in one frame.
+
+    Attributes
+    ----------
+    status : str
+        ``"ok"`` or ``"no-lattice"`` (blank, noise, amorphous: no columns made).
+    lattice : Lattice or None
+        Basis vectors refined from the fitted A-site columns (or from the
+        Fourier transform when too few columns were found).
+    columns : Columns or None
+    cells : object or None
+        Per-cell descriptors (filled by the descriptor stage).  It provides
+        ``csv_fields() -> list[str]`` (starting ``i, j, x_pm, y_pm``),
+        ``csv_rows() -> list[dict]`` and ``summary() -> dict`` (JSON-ready).
+    calibration : dict or None
+        The implied calibration error against a reference material, when
+        one is configured.
+    timings_s : dict
+        Seconds spent per stage.
+    """
+
+    frame_id: str
+    meta: FrameMeta
+    shape: tuple[int, int]
+    status: str
+    message: str = ""
+    lattice: Lattice | None = None
+    columns: Columns | None = None
+    cells: Any = None
+    calibration: dict | None = None
+    timings_s: dict = field(default_factory=dict)
+    extra: dict = field(default_factory=dict)
+
+    @property
+    def pixel_size_pm(self) -> float:
+        return self.meta.pixel_size_pm
+
+    @property
+    def ok(self) -> bool:
+        return self.status == STATUS_OK
+
+    def lattice_summary(self) -> dict | None:
+        """Lattice parameters in pm and degrees with their uncertainties."""
+        if self.lattice is None:
+            return None
+        lat, px = self.lattice, self.pixel_size_pm
+        return {
+            "a_pm": lat.a_px * px,
+            "sigma_a_pm": lat.sigma_a_px * px,
+            "b_pm": lat.b_px * px,
+            "sigma_b_pm": lat.sigma_b_px * px,
+            "angle_deg": lat.angle_deg,
+            "sigma_angle_deg": lat.sigma_angle_deg,
+            "orientation_deg": lat.orientation_deg,
+            "quality": lat.quality,
+            "method": lat.method,
+        }
+
+    def summary(self) -> dict[str, Any]:
+        """A JSON-ready summary: the content of ``summary.json`` and the ``frame`` event."""
+        counts: dict[str, int] = {}
+        n_converged = 0
+        median_sigma_pm = None
+        if self.columns is not None and len(self.columns):
+            labels, n = np.unique(self.columns.sublattice, return_counts=True)
+            counts = {str(k): int(v) for k, v in zip(labels, n)}
+            n_converged = int(self.columns.converged.sum())
+            ok = self.columns.converged
+            if ok.any():
+                median_sigma_pm = float(np.median(self.columns.sigma_positions_px[ok]) *
+                                        self.pixel_size_pm)
+        out = {
+            "frame_id": self.frame_id,
+            "status": self.status,
+            "message": self.message,
+            "shape": list(self.shape),
+            "pixel_size_pm": self.pixel_size_pm,
+            "n_columns": 0 if self.columns is None else len(self.columns),
+            "n_converged": n_converged,
+            "columns_per_sublattice": counts,
+            "median_sigma_position_pm": median_sigma_pm,
+            "lattice": self.lattice_summary(),
+            "calibration": self.calibration,
+            "timings_s": dict(self.timings_s),
+            "meta": self.meta.to_json(),
+        }
+        if self.cells is not None:
+            out["cells"] = self.cells.summary()
+        out.update(self.extra)
+        return out
+
+
+def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult:
+    """Run lattice finding, column detection, site assignment and refinement.
+
+    Parameters
+    ----------
+    frame : Frame
+    settings : Settings, optional
+        Defaults to the built-in defaults.
+
+    Returns
+    -------
+    FrameResult
+        With ``status == "no-lattice"`` and no columns when the frame holds no
+        periodic lattice.  Never raises for a valid frame; programming errors
+        still propagate.
+    """
+    settings = settings or Settings()
+    cfg = settings.analysis
+    image = np.asarray(frame.pixels, dtype=np.float64)
+    timings: dict[str, float] = {}
+    base = dict(frame_id=frame.frame_id, meta=frame.meta, shape=frame.shape)
+
+    t0 = time.perf_counter()
+    try:
+        fft_lattice = find_lattice(
+            image,
+            min_spacing_px=cfg.lattice.min_spacing_px,
+            max_spacing_fraction=cfg.lattice.max_spacing_fraction,
+            min_quality=cfg.lattice.min_quality,
+        )
+    except NoLatticeError as exc:
+        timings["lattice"] = time.perf_counter() - t0
+        return FrameResult(**base, status=STATUS_NO_LATTICE, message=str(exc), timings_s=timings)
+    timings["lattice"] = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    candidates = detect_columns(
+        image,
+        fft_lattice,
+        min_distance_fraction=cfg.detection.min_distance_fraction,
+        min_prominence_sigma=cfg.detection.min_prominence_sigma,
+        border_fraction=cfg.detection.border_fraction,
+    )
+    timings["detect"] = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    sites = assign_sites(
+        image,
+        candidates,
+        fft_lattice,
+        projection=cfg.sublattice.projection,
+        oxygen=cfg.sublattice.oxygen,
+        detector=frame.meta.detector,
+    )
+    timings["sublattice"] = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    columns = refine_columns(
+        image,
+        sites.positions_px,
+        sublattice=sites.sublattice,
+        ij=sites.ij,
+        spacing_px=min(fft_lattice.a_px, fft_lattice.b_px),
+        window_fraction=cfg.refine.window_fraction,
+        max_iterations=cfg.refine.max_iterations,
+        tolerance_px=cfg.refine.tolerance_px,
+        elliptical=cfg.refine.elliptical,
+        joint_neighbours=cfg.refine.joint_neighbours,
+        weighting=cfg.refine.weighting,
+        gain=cfg.refine.gain_counts_per_electron,
+        invert=sites.inverted,
+    )
+    timings["refine"] = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    lattice = lattice_from_columns(columns, fallback=fft_lattice)
+    calibration = None
+    if cfg.calibration.reference_material:
+        calibration = check_calibration(
+            lattice,
+            pixel_size_pm=frame.meta.pixel_size_pm,
+            material=cfg.calibration.reference_material,
+            axis=cfg.calibration.axis,
+        )
+    timings["lattice_refine"] = time.perf_counter() - t0
+    timings["total"] = float(sum(timings.values()))
+    return FrameResult(**base, status=STATUS_OK, lattice=lattice, columns=columns,
+                       calibration=calibration, timings_s=timings,
+                       message=columns.message)
