@@ -61,7 +61,7 @@ class FrameDefaults(_Model):
 class LatticeSettings(_Model):
     min_spacing_px: float = Field(default=4.0, gt=1)
     max_spacing_fraction: float = Field(default=0.25, gt=0, le=0.5)
-    min_quality: float = Field(default=8.0, gt=0)
+    min_quality: float = Field(default=15.0, gt=0)
 
 
 class DetectionSettings(_Model):
@@ -140,7 +140,7 @@ def _set_dotted(tree: dict, dotted: str, value: Any) -> None:
     node[parts[-1]] = value
 
 
-def _parse_scalar(text: str) -> Any:
+def parse_scalar(text: str) -> Any:
     """Parse an environment or command-line value as a TOML scalar, else a string."""
     try:
         return tomllib.loads(f"v = {text}")["v"]
@@ -155,7 +155,7 @@ def env_overrides(environ: Mapping[str, str] | None = None) -> dict:
         if not name.startswith(ENV_PREFIX) or name == ENV_PREFIX + "CONFIG":
             continue
         dotted = name[len(ENV_PREFIX):].lower().replace("__", ".")
-        _set_dotted(tree, dotted, _parse_scalar(text))
+        _set_dotted(tree, dotted, parse_scalar(text))
     return tree
 
 

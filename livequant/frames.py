@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import struct
 from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
@@ -214,7 +215,8 @@ def read_image(path: str | os.PathLike) -> np.ndarray:
     except MemoryError:
         raise FrameError(f"{path}: declared image size does not fit in memory",
                          reason="too-large", path=path) from None
-    except Exception as exc:  # any decoder failure is a property of the file
+    except (ValueError, OSError, EOFError, KeyError, IndexError, struct.error) as exc:
+        # decoder failures on a damaged file; programming errors still propagate
         raise FrameError(f"{path}: cannot decode image ({type(exc).__name__}: {exc}); the file "
                          "is truncated or not a valid image", reason="unreadable",
                          path=path) from None
@@ -252,7 +254,10 @@ def _read_npy(path: Path) -> np.ndarray:
     with open(path, "rb") as fh:
         try:
             version = np.lib.format.read_magic(fh)
-            shape, _fortran, dtype = np.lib.format._read_array_header(fh, version)  # noqa: SLF001
+            if version == (1, 0):
+                shape, _fortran, dtype = np.lib.format.read_array_header_1_0(fh)
+            else:
+                shape, _fortran, dtype = np.lib.format.read_array_header_2_0(fh)
         except ValueError as exc:
             raise FrameError(f"{path}: not a valid .npy file ({exc})", reason="unreadable",
                              path=path) from None

@@ -91,7 +91,7 @@ def perovskite_frame(shape=(256, 256), *, a_pm=390.53, c_pm=None, pixel_size_pm=
     i, j = i.ravel(), j.ravel()
     shift_px = np.asarray(b_shift_pm, float) / pixel_size_pm
     sites = [("A", 0.0, 0.0, peak_a, np.zeros(2)), ("B", 0.5, 0.5, peak_b, shift_px)]
-    if peak_o > 0:
+    if peak_o != 0:
         sites += [("Oa", 0.5, 0.0, peak_o, np.zeros(2)), ("Ob", 0.0, 0.5, peak_o, np.zeros(2))]
     pos, lab, ijs, amp = [], [], [], []
     for name, fa, fb, peak, shift in sites:

@@ -11,6 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import ndimage as ndi
+from scipy.spatial import cKDTree
 
 from livequant.analysis.types import Lattice, readonly
 
@@ -80,8 +81,11 @@ def detect_columns(image, lattice: Lattice, *, min_distance_fraction=0.3,
     # sampling we accept, so it removes shot noise without merging columns.
     smoothing = max(0.7, 0.1 * spacing)
     smooth = ndi.gaussian_filter(work, smoothing, mode="nearest")
-    min_dist = max(1, int(min_distance_fraction * spacing))
-    size = 2 * min_dist + 1
+    min_dist = max(1.0, min_distance_fraction * spacing)
+    # Local maxima in a small footprint (a tenth of a spacing), then the minimum
+    # separation among them.  A footprint as wide as the separation would let the
+    # shoulder of a bright column hide a dim neighbour (an O column beside A).
+    size = 2 * max(1, int(0.1 * spacing)) + 1
     is_max = (smooth == ndi.maximum_filter(smooth, size=size, mode="nearest"))
     # Local background: the minimum within one spacing, smoothed.  (A moving
     # percentile would be more robust but costs seconds on a 2048 frame; the
@@ -98,11 +102,25 @@ def detect_columns(image, lattice: Lattice, *, min_distance_fraction=0.3,
     rr, cc = rr[keep], cc[keep]
     # plateaus of equal maxima: keep one per connected group of pixels
     rr, cc = _one_per_plateau(rr, cc, image.shape)
+    rr, cc = _enforce_separation(rr, cc, height_map[rr, cc], min_dist)
     pos = _centroid3(height_map, rr, cc)
     height = height_map[rr, cc]
     return Candidates(positions_px=readonly(pos), height=readonly(height),
                       prominence_sigma=readonly(height / max(sigma_s, 1e-12)),
                       inverted=bool(inverted), smoothing_px=float(smoothing))
+
+
+def _enforce_separation(rr, cc, height, min_dist):
+    """Of two maxima closer than `min_dist`, drop the lower one."""
+    if len(rr) < 2:
+        return rr, cc
+    pairs = cKDTree(np.stack([rr, cc], 1)).query_pairs(min_dist, output_type="ndarray")
+    if len(pairs) == 0:
+        return rr, cc
+    lower = np.where(height[pairs[:, 0]] < height[pairs[:, 1]], pairs[:, 0], pairs[:, 1])
+    keep = np.ones(len(rr), bool)
+    keep[lower] = False
+    return rr[keep], cc[keep]
 
 
 def _one_per_plateau(rr, cc, shape):

@@ -25,7 +25,7 @@ class NoLatticeError(ValueError):
     """The frame holds no periodic lattice (blank, noise, amorphous, ...)."""
 
 
-def find_lattice(image, *, min_spacing_px=4.0, max_spacing_fraction=0.25, min_quality=8.0):
+def find_lattice(image, *, min_spacing_px=4.0, max_spacing_fraction=0.25, min_quality=15.0):
     """Find the two shortest lattice vectors of a 2D periodic image.
 
     Parameters
@@ -101,38 +101,41 @@ def _power_spectrum(crop):
 
 
 def _whitened(power, kr, kc, k_min, k_max):
-    """Locally averaged power divided by the median power in its frequency ring.
+    """Locally averaged power divided by the typical power at its spatial frequency.
 
     Averaging over 3x3 bins turns the exponential speckle of noise power into a
-    narrow distribution, so a fixed ratio threshold separates lattice peaks
-    from noise for any frame size; dividing by the ring median removes the
-    isotropic ring of an amorphous region.
+    narrow distribution (a Gamma law of shape 9), so a fixed ratio threshold
+    separates lattice peaks from noise for any frame size; dividing by the
+    background of its frequency ring removes the isotropic ring of an
+    amorphous region.  The background is a low quantile over five adjacent
+    rings, so the lattice peaks themselves (which can fill much of a small
+    ring near the centre) do not raise it; dividing by 0.77, the lower
+    quartile of that Gamma law relative to its mean, makes noise ratio ~1.
     """
     smooth = ndi.uniform_filter(power, size=3, mode="wrap")
     h, w = power.shape
-    # ring index in units of the coarser frequency step
     step = 1.0 / min(h, w)
-    ring = np.rint(np.hypot(kr, kc) / step).astype(np.int64)
+    kmag = np.hypot(kr, kc)
+    ring = np.rint(kmag / step).astype(np.int64)
     n_rings = int(ring.max()) + 1
-    med = _ring_median(smooth, ring, n_rings)
-    ratio = smooth / np.maximum(med[ring], np.finfo(float).tiny)
-    band = (np.hypot(kr, kc) >= k_min) & (np.hypot(kr, kc) <= k_max)
-    ratio[~band] = 0.0
+    background = _ring_quantile(smooth, ring, n_rings, q=0.25, half_width=2) / 0.77
+    ratio = smooth / np.maximum(background[ring], np.finfo(float).tiny)
+    ratio[(kmag < k_min) | (kmag > k_max)] = 0.0
     return ratio
 
 
-def _ring_median(values, ring, n_rings):
+def _ring_quantile(values, ring, n_rings, *, q, half_width):
     order = np.argsort(ring, axis=None, kind="stable")
     r_sorted = ring.ravel()[order]
     v_sorted = values.ravel()[order]
-    starts = np.searchsorted(r_sorted, np.arange(n_rings), side="left")
-    ends = np.searchsorted(r_sorted, np.arange(n_rings), side="right")
-    med = np.zeros(n_rings)
-    # one sort per ring of a few hundred values: n_rings ~ frame size / 2, not per pixel
+    lo = np.searchsorted(r_sorted, np.arange(n_rings) - half_width, side="left")
+    hi = np.searchsorted(r_sorted, np.arange(n_rings) + half_width, side="right")
+    out = np.zeros(n_rings)
+    # one partial sort per ring band: n_rings ~ frame size / 2 calls, not one per pixel
     for k in range(n_rings):
-        if ends[k] > starts[k]:
-            med[k] = np.median(v_sorted[starts[k]:ends[k]])
-    return med
+        if hi[k] > lo[k]:
+            out[k] = np.quantile(v_sorted[lo[k]:hi[k]], q)
+    return out
 
 
 def _peaks(ratio, power, kr, kc, min_quality):
@@ -182,9 +185,10 @@ def _reciprocal_basis(peaks):
     """Choose g1, g2 among the peaks and refine them on all indexed harmonics."""
     k = peaks[:, :2]
     strength = peaks[:, 2]
-    # Consider the strong peaks only (at least 5 % of the strongest in ratio), then the
+    # Consider the strong peaks only (at least 0.1 % of the strongest in ratio; the
+    # (1,0) reflection of A and B columns of similar brightness is weak), then the
     # two shortest non-collinear ones generate the lattice (2D successive minima).
-    strong = strength >= max(strength.max() * 0.02, strength.min())
+    strong = strength >= max(strength.max() * 1e-3, strength.min())
     ks = k[strong]
     order = np.argsort(np.hypot(ks[:, 0], ks[:, 1]))
     ks = ks[order]

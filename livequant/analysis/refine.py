@@ -25,23 +25,32 @@ from __future__ import annotations
 
 import numpy as np
 
+from livequant.analysis import _kernels
 from livequant.analysis.types import Columns, readonly
 
 __all__ = ["refine_columns", "FitWindows", "extract_windows", "gaussian_model"]
 
-_CHUNK = 4096  # columns per batch: bounds the Jacobian to ~60 MB for 13x13 windows
+_CHUNK = 4096  # columns per batch: bounds the per-pixel weight and model arrays
 
 
 class FitWindows:
     """Pixel windows around columns: ``(K, P)`` arrays of coordinates, data and mask."""
 
-    def __init__(self, rows, cols, flat, data, valid, radius_px):
+    def __init__(self, rows, cols, flat, data, valid, radius_px, centres=None, offsets=None):
+        self.centres = centres      # (K, 2) integer window centres
+        self.offsets = offsets      # (2, P) pixel offsets shared by every window
         self.rows = rows
         self.cols = cols
         self.flat = flat
         self.data = data
         self.valid = valid
         self.radius_px = radius_px
+
+    def take(self, idx) -> "FitWindows":
+        """The windows of columns `idx`."""
+        return FitWindows(self.rows[idx], self.cols[idx], self.flat[idx], self.data[idx],
+                          self.valid[idx], self.radius_px, centres=self.centres[idx],
+                          offsets=self.offsets)
 
 
 def extract_windows(image, centres_px, radius_px) -> FitWindows:
@@ -60,7 +69,8 @@ def extract_windows(image, centres_px, radius_px) -> FitWindows:
     cols_c = np.clip(cols, 0, w - 1)
     flat = rows_c * w + cols_c
     data = image.ravel()[flat]
-    return FitWindows(rows.astype(float), cols.astype(float), flat, data, valid, radius_px)
+    return FitWindows(rows.astype(float), cols.astype(float), flat, data, valid, radius_px,
+                      centres=ctr, offsets=np.stack([orow, ocol]))
 
 
 def gaussian_model(theta, rows, cols, *, elliptical=True, jacobian=False):
@@ -161,12 +171,32 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
 
     others = np.zeros_like(win.data)
     passes = 1 + (neighbour_passes if joint_neighbours and n > 1 else 0)
-    for k in range(passes):
-        if k > 0:
-            others = _neighbour_contribution(theta, win, image.shape, elliptical)
-        theta, state = _fit_batched(theta, win, others, elliptical=elliptical,
-                                    max_iterations=max_iterations, tolerance_px=tolerance_px,
-                                    weighting=weighting, gain=gain, start=pos0)
+    render = None
+    theta, state = _fit_batched(theta, win, others, elliptical=elliptical,
+                                max_iterations=max_iterations, tolerance_px=tolerance_px,
+                                weighting=weighting, gain=gain, start=pos0)
+    for _ in range(passes - 1):
+        if not _neighbours_reach(theta, radius, gain, elliptical).any():
+            break
+        if render is None:
+            render = extract_windows(image, pos0, _render_radius(theta, radius, spacing_px,
+                                                                 elliptical))
+        others = _neighbour_contribution(theta, win, render, image.shape, elliptical)
+        # Refit only the columns whose neighbours reach into their window by more
+        # than a tenth of the local noise somewhere: for well-separated columns
+        # the second pass would change nothing but cost as much as the first.
+        noise = np.sqrt(np.maximum(np.abs(win.data), 1.0) * gain)
+        touched = (np.abs(others) * win.valid > 0.1 * noise).any(axis=1)
+        if not touched.any():
+            break
+        sub = np.nonzero(touched)[0]
+        th_sub, st_sub = _fit_batched(theta[sub], win.take(sub), others[sub],
+                                      elliptical=elliptical, max_iterations=max_iterations,
+                                      tolerance_px=tolerance_px, weighting=weighting, gain=gain,
+                                      start=pos0[sub])
+        theta[sub] = th_sub
+        for key in state:
+            state[key][sub] = st_sub[key]
     return _to_columns(theta, state, win, others, pos0, sublattice, ij, elliptical, weighting,
                        gain)
 
@@ -182,28 +212,33 @@ def _empty_columns() -> Columns:
 
 
 def _initial_theta(win: FitWindows, pos0, sublattice, elliptical):
-    d = np.where(win.valid, win.data, np.nan)
-    r2 = (win.rows - np.rint(pos0[:, 0:1])) ** 2 + (win.cols - np.rint(pos0[:, 1:2])) ** 2
-    outer = r2 > (0.7 * win.radius_px) ** 2
-    with np.errstate(all="ignore"):
-        B0 = np.nanmedian(np.where(outer, d, np.nan), axis=1)
-        centre = r2 <= 1.0
-        peak = np.nanmean(np.where(centre, d, np.nan), axis=1)
-    B0 = np.where(np.isfinite(B0), B0, np.nanmedian(d))
+    off_r, off_c = win.offsets
+    r2_off = off_r.astype(float) ** 2 + off_c.astype(float) ** 2
+    # background: lower quartile of the outer ring (robust to a neighbour's tail);
+    # pixels outside the frame are pushed to the top so they never count
+    outer = np.nonzero(r2_off > (0.7 * win.radius_px) ** 2)[0]
+    ring = np.where(win.valid[:, outer], win.data[:, outer], np.inf)
+    kth = max(0, len(outer) // 4)
+    B0 = np.partition(ring, kth, axis=1)[:, kth]
+    B0 = np.where(np.isfinite(B0), B0, np.median(win.data))
+    centre = np.nonzero(r2_off <= 1.0)[0]
+    peak = (win.data[:, centre] * win.valid[:, centre]).sum(1) / np.maximum(
+        win.valid[:, centre].sum(1), 1)
     A0 = peak - B0
     # width from the second moment of the background-subtracted window, then the
     # median per sublattice (a single window's moment is too noisy to start from)
-    wgt = np.clip(np.nan_to_num(d - B0[:, None]) * np.sign(A0)[:, None], 0, None)
-    wgt = np.where(win.valid, wgt, 0.0)
-    dr = win.rows - pos0[:, 0:1]
-    dc = win.cols - pos0[:, 1:2]
+    wgt = np.clip((win.data - B0[:, None]) * np.sign(A0)[:, None], 0, None) * win.valid
+    sub = pos0 - win.centres
+    dr = off_r[None, :] - sub[:, 0:1]
+    dc = off_c[None, :] - sub[:, 1:2]
     with np.errstate(all="ignore"):
         var = (wgt * (dr**2 + dc**2)).sum(1) / (2.0 * wgt.sum(1))
     var = np.where(np.isfinite(var) & (var > 0), var, (win.radius_px / 3) ** 2)
     # moments inside a truncated window underestimate; clamp to a sane range
     var = np.clip(var, 0.25, (win.radius_px / 1.5) ** 2)
-    for lab in np.unique(sublattice):
-        sel = sublattice == lab
+    labels, inverse = np.unique(sublattice, return_inverse=True)
+    for k in range(len(labels)):  # a handful of sublattices, not columns
+        sel = inverse == k
         var[sel] = np.median(var[sel])
     p0 = 1.0 / var
     cols = [pos0[:, 0], pos0[:, 1], A0, B0, p0]
@@ -224,11 +259,12 @@ def _fit_batched(theta, win, others, *, elliptical, max_iterations, tolerance_px
     n = len(theta)
     out = theta.copy()
     state = {"converged": np.zeros(n, bool), "iterations": np.zeros(n, int),
-             "H": np.zeros((n, theta.shape[1], theta.shape[1]))}
+             "H": np.zeros((n, theta.shape[1], theta.shape[1])),
+             "model": np.zeros_like(win.data)}
     floor = max(1e-6, 1e-3 * float(np.nanmedian(np.abs(win.data))))
     for lo in range(0, n, _CHUNK):
         sl = slice(lo, min(n, lo + _CHUNK))
-        th, conv, it, H = _lm_chunk(theta[sl].copy(), win.rows[sl], win.cols[sl], win.data[sl],
+        th, conv, it, H, m = _lm_chunk(theta[sl].copy(), win.centres[sl], win.offsets, win.data[sl],
                                     win.valid[sl], others[sl], start[sl], win.radius_px,
                                     elliptical=elliptical, max_iterations=max_iterations,
                                     tolerance_px=tolerance_px, weighting=weighting, gain=gain,
@@ -237,6 +273,7 @@ def _fit_batched(theta, win, others, *, elliptical, max_iterations, tolerance_px
         state["converged"][sl] = conv
         state["iterations"][sl] = it
         state["H"][sl] = H
+        state["model"][sl] = m
     return out, state
 
 
@@ -246,17 +283,30 @@ def _physical(theta, start, radius, sign0, elliptical):
     ok &= theta[:, 4] > 0
     if elliptical:
         ok &= (theta[:, 6] > 0) & (theta[:, 4] * theta[:, 6] - theta[:, 5] ** 2 > 0)
+        tr, det = theta[:, 4] + theta[:, 6], theta[:, 4] * theta[:, 6] - theta[:, 5] ** 2
+        lam_min = tr / 2 - np.sqrt(np.maximum(tr**2 / 4 - det, 0))
+    else:
+        lam_min = theta[:, 4]
+    # a Gaussian wider than the fit window is background, not a column
+    ok &= lam_min > 1.0 / radius**2
     ok &= np.hypot(theta[:, 0] - start[:, 0], theta[:, 1] - start[:, 1]) < 0.5 * radius
     # widths narrower than a tenth of a pixel are not columns
     ok &= theta[:, 4] < 100.0
     return ok
 
 
-def _lm_chunk(theta, rows, cols, data, valid, others, start, radius, *, elliptical, max_iterations,
-              tolerance_px, weighting, gain, floor):
+def _lm_chunk(theta, centres, offsets, data, valid, others, start, radius, *, elliptical,
+              max_iterations, tolerance_px, weighting, gain, floor):
     k, n_par = theta.shape
-    vmask = valid.astype(float)
-    target = data - others
+    cen = np.ascontiguousarray(centres, dtype=np.float64)
+    off_r = np.ascontiguousarray(offsets[0], dtype=np.float64)
+    off_c = np.ascontiguousarray(offsets[1], dtype=np.float64)
+    data = np.ascontiguousarray(data, dtype=np.float64)
+    others = np.ascontiguousarray(others, dtype=np.float64)
+    valid = np.ascontiguousarray(valid, dtype=np.bool_)
+    uniform = weighting == "uniform"
+    W = np.zeros_like(data)
+    M = np.zeros_like(data)
     sign0 = np.sign(theta[:, 2])
     sign0[sign0 == 0] = 1.0
     theta[:, 2] = np.where(theta[:, 2] == 0, sign0, theta[:, 2])
@@ -266,47 +316,46 @@ def _lm_chunk(theta, rows, cols, data, valid, others, start, radius, *, elliptic
     iterations = np.zeros(k, int)
     eye = np.eye(n_par)
 
-    def evaluate(th, rr, cc, tgt, oth, vm):
-        m, _, J = gaussian_model(th, rr, cc, elliptical=elliptical, jacobian=True)
-        W = _weights(m + oth, weighting, gain, floor) * vm
-        res = tgt - m
-        cost = (W * res * res).sum(1)
-        return J, W, res, cost
+    def equations(idx):
+        H = np.empty((len(idx), n_par, n_par))
+        g = np.empty((len(idx), n_par))
+        cost = np.empty(len(idx))
+        _kernels.normal_equations(theta, cen, off_r, off_c, data, valid, others, idx,
+                                  float(gain), float(floor), uniform, elliptical, W, M, H, g,
+                                  cost)
+        return H, g, cost
 
-    J, W, res, cost = evaluate(theta, rows, cols, target, others, vmask)
+    H_last = np.zeros((k, n_par, n_par))
+    fresh = np.zeros(k, bool)  # H_last and M hold the values at the current theta
     for _ in range(max_iterations):
         idx = np.nonzero(active)[0]
         if len(idx) == 0:
             break
-        Ji, Wi, ri = J[idx], W[idx], res[idx]
-        JW = Ji * Wi[:, None, :]
-        H = np.matmul(JW, Ji.transpose(0, 2, 1))
-        g = np.matmul(JW, ri[..., None])[..., 0]
+        # one weighted least-squares problem per iteration (IRLS): weights at the
+        # current point, the step judged with those same weights
+        H, g, cost = equations(idx)
+        H_last[idx] = H
+        fresh[idx] = True
         diag = np.einsum("kii->ki", H)
         A_mat = H + (lam[idx, None] * np.maximum(diag, 1e-12))[:, :, None] * eye
         try:
             step = np.linalg.solve(A_mat, g[..., None])[..., 0]
         except np.linalg.LinAlgError:
             step = np.stack([_safe_solve(a, b) for a, b in zip(A_mat, g)])  # rare: singular batch
-        trial = theta[idx] + step
-        ok = _physical(trial, start[idx], radius, sign0[idx], elliptical)
-        # Judge the step with the weights of the current point (one fixed
-        # weighted least-squares problem per iteration, as in IRLS); the
-        # weights are then renewed at the accepted point.
-        m_t, _, _ = gaussian_model(trial, rows[idx], cols[idx], elliptical=elliptical)
-        r_t = target[idx] - m_t
-        ct_fixed = (Wi * r_t * r_t).sum(1)
-        better = ok & np.isfinite(ct_fixed) & (ct_fixed <= cost[idx])
+        trial = theta.copy()
+        trial[idx] = theta[idx] + step
+        ok = _physical(trial[idx], start[idx], radius, sign0[idx], elliptical)
+        ct = np.empty(len(idx))
+        _kernels.weighted_cost(trial, cen, off_r, off_c, data, others, idx, W, elliptical, ct)
+        better = ok & np.isfinite(ct) & (ct <= cost)
         acc = idx[better]
-        theta[acc] = trial[better]
-        if len(acc):
-            J[acc], W[acc], res[acc], cost[acc] = evaluate(theta[acc], rows[acc], cols[acc],
-                                                           target[acc], others[acc], vmask[acc])
+        theta[acc] = trial[acc]
+        moved = np.hypot(step[:, 0], step[:, 1])
+        fresh[idx[better & (moved >= tolerance_px)]] = False
         lam[acc] = np.maximum(lam[acc] / 3.0, 1e-7)
         rej = idx[~better]
         lam[rej] = lam[rej] * 5.0
         iterations[idx] += 1
-        moved = np.hypot(step[:, 0], step[:, 1])
         # converged: an accepted step that barely moves the centre, or a
         # rejected one whose full Gauss-Newton size would already be tiny
         done = (better & (moved < tolerance_px)) | (~better & (moved * (1 + lam[idx]) < tolerance_px))
@@ -314,10 +363,15 @@ def _lm_chunk(theta, rows, cols, data, valid, others, start, radius, *, elliptic
         active[idx[done]] = False
         # a column whose damping has run away is stuck: stop it, unconverged
         active[rej[lam[rej] > 1e8]] = False
-    # Hessian at the final parameters for the covariance
-    H = np.matmul(J * W[:, None, :], J.transpose(0, 2, 1))
+    # Fisher information at the final parameters, for the covariance.  Columns
+    # whose last accepted step was below the tolerance keep the matrix of the
+    # point before it (a difference far below the uncertainty); the others get
+    # a fresh evaluation.
+    stale = np.nonzero(~fresh | ~converged)[0]
+    if len(stale):
+        H_last[stale], _, _ = equations(stale)
     converged &= _physical(theta, start, radius, sign0, elliptical)
-    return theta, converged, iterations, H
+    return theta, converged, iterations, H_last, M.copy()
 
 
 def _safe_solve(a, b):
@@ -327,12 +381,60 @@ def _safe_solve(a, b):
         return np.zeros_like(b)
 
 
-def _neighbour_contribution(theta, win: FitWindows, shape, elliptical):
-    """For each window, the sum of all *other* columns' fitted Gaussians."""
-    _, AG, _ = gaussian_model(theta, win.rows, win.cols, elliptical=elliptical)
-    AG = np.where(win.valid, AG, 0.0)
-    total = np.bincount(win.flat.ravel(), weights=AG.ravel(), minlength=shape[0] * shape[1])
-    return total[win.flat] - AG
+def _neighbours_reach(theta, radius, gain, elliptical):
+    """Cheap bound: which columns have a neighbour whose Gaussian exceeds a tenth of
+    the noise inside their window?  (Nearest eight neighbours, widest axis.)"""
+    from scipy.spatial import cKDTree
+
+    n = len(theta)
+    pos = theta[:, :2]
+    k = min(9, n)
+    dist, nb = cKDTree(pos).query(pos, k=k)
+    dist, nb = dist[:, 1:], nb[:, 1:]
+    p = theta[:, 4]
+    if elliptical:
+        tr, det = theta[:, 4] + theta[:, 6], theta[:, 4] * theta[:, 6] - theta[:, 5] ** 2
+        p = tr / 2 - np.sqrt(np.maximum(tr**2 / 4 - det, 0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sig2 = np.where(p > 0, 1.0 / p, np.inf)
+    gap = np.clip(dist - radius, 0, None)
+    reach = np.abs(theta[nb, 2]) * np.exp(-0.5 * gap**2 / sig2[nb])
+    noise = np.sqrt(np.maximum(np.abs(theta[:, 3]), 1.0) * gain)
+    return (reach > 0.1 * noise[:, None]).any(axis=1)
+
+
+def _render_radius(theta, fit_radius, spacing_px, elliptical):
+    """Footprint for rendering neighbours: 4 sigma of the widest typical column.
+
+    It must reach beyond the fit window, because the tail of a neighbour that
+    matters is the part inside *this* column's window, far from its own centre.
+    """
+    p = theta[:, 4]
+    if elliptical:
+        # largest eigenvalue of Q^-1 = 1 / smallest eigenvalue of Q
+        tr, det = theta[:, 4] + theta[:, 6], theta[:, 4] * theta[:, 6] - theta[:, 5] ** 2
+        lam_min = tr / 2 - np.sqrt(np.maximum(tr**2 / 4 - det, 0))
+        p = lam_min
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sig = np.sqrt(1.0 / p)
+    sig = sig[np.isfinite(sig)]
+    typical = float(np.percentile(sig, 90)) if len(sig) else fit_radius / 3
+    return float(np.clip(4.0 * typical, fit_radius, 1.5 * spacing_px))
+
+
+def _neighbour_contribution(theta, win: FitWindows, render: FitWindows, shape, elliptical):
+    """For each fit window, the sum of all *other* columns' fitted Gaussians.
+
+    Every column is rendered over its (larger) `render` footprint; the fit
+    window pixels are a subset of it, so subtracting the column's own
+    Gaussian on its window leaves exactly the neighbours.
+    """
+    _, AG_render, _ = gaussian_model(theta, render.rows, render.cols, elliptical=elliptical)
+    AG_render = np.where(render.valid, AG_render, 0.0)
+    total = np.bincount(render.flat.ravel(), weights=AG_render.ravel(),
+                        minlength=shape[0] * shape[1])
+    _, AG_own, _ = gaussian_model(theta, win.rows, win.cols, elliptical=elliptical)
+    return total[win.flat] - np.where(win.valid, AG_own, 0.0)
 
 
 def _to_columns(theta, state, win, others, pos0, sublattice, ij, elliptical, weighting, gain):
@@ -354,7 +456,7 @@ def _to_columns(theta, state, win, others, pos0, sublattice, ij, elliptical, wei
                     converged[k] = False
     # reduced chi-square per column with the final weights
     floor = max(1e-6, 1e-3 * float(np.nanmedian(np.abs(win.data))))
-    m, _, _ = gaussian_model(theta, win.rows, win.cols, elliptical=elliptical)
+    m = state["model"]
     W = _weights(m + others, weighting, gain, floor) * win.valid
     res = (win.data - others) - m
     dof = np.maximum(win.valid.sum(1) - n_par, 1)
@@ -370,6 +472,10 @@ def _to_columns(theta, state, win, others, pos0, sublattice, ij, elliptical, wei
     diag = np.einsum("kii->ki", cov)
     sig_pos = np.sqrt(np.clip(diag[:, 0:2], 0, None))
     sig_amp = np.sqrt(np.clip(diag[:, 2], 0, None))
+    # an amplitude indistinguishable from zero is noise fitted as a column
+    with np.errstate(invalid="ignore", divide="ignore"):
+        significant = np.abs(theta[:, 2]) > 3.0 * sig_amp
+    converged &= significant
     bad = ~converged
     pos = theta[:, 0:2].copy()
     pos[bad] = pos0[bad]

@@ -1,0 +1,41 @@
+"""Command-line options shared by several sub-commands, mapped onto Settings keys."""
+
+from __future__ import annotations
+
+from livequant.config import ConfigError, Settings, load_settings, parse_scalar
+
+__all__ = ["add_settings_arguments", "settings_from_args"]
+
+#: flag -> dotted settings key
+_FLAGS = {
+    "pixel_size_pm": "frame_defaults.pixel_size_pm",
+    "detector": "frame_defaults.detector",
+    "material": "analysis.material",
+    "reference_material": "analysis.calibration.reference_material",
+}
+
+
+def add_settings_arguments(parser) -> None:
+    g = parser.add_argument_group("settings (override config files and LIVEQUANT_* variables)")
+    g.add_argument("--config", metavar="FILE", help="a TOML file of settings (see config/default.toml)")
+    g.add_argument("--pixel-size-pm", type=float, metavar="PM",
+                   help="pixel size for frames whose sidecar gives none, picometres")
+    g.add_argument("--detector", metavar="NAME", help="detector for frames whose sidecar gives "
+                   "none (HAADF, ABF, BF)")
+    g.add_argument("--material", metavar="NAME",
+                   help="material of the specimen (an entry of config/materials.toml)")
+    g.add_argument("--reference-material", metavar="NAME",
+                   help="check the pixel size against this material's lattice parameter")
+    g.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                   help="any setting by its dotted key, e.g. analysis.refine.max_iterations=50")
+
+
+def settings_from_args(args) -> Settings:
+    overrides = {key: getattr(args, flag, None) for flag, key in _FLAGS.items()}
+    for item in getattr(args, "set", []) or []:
+        if "=" not in item:
+            raise ConfigError(f"--set {item!r}: expected KEY=VALUE, e.g. "
+                              "analysis.refine.max_iterations=50")
+        key, _, text = item.partition("=")
+        overrides[key.strip()] = parse_scalar(text.strip())
+    return load_settings(getattr(args, "config", None), overrides=overrides)
