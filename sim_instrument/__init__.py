@@ -1,0 +1,1 @@
+"""Simulated STEM instrument: a virtual perovskite specimen and a scan engine."""
