@@ -597,14 +597,36 @@ class ScanEngine:
         arrays["drift_per_line_nm"] = drift_lines
 
         def feature_px(xy):
-            p = locate_in_frame(raster, rows, np.asarray(xy, float)[None, :])[0]
-            return None if not np.isfinite(p).all() else [float(p[0]), float(p[1])]
+            xy = np.asarray(xy, float)[None, :]
+            p = locate_in_frame(raster, rows, xy)[0]
+            if not np.isfinite(p).all():  # off the frame: extrapolate the raster
+                row = float(_row_guess(raster, xy)[0])
+                line = int(np.clip(round(row), 0, rows - 1))
+                p = np.array([row, float((xy[0] - raster.line_start_nm[line]) @ raster.u_hat)
+                              / raster.step_len_nm])
+            return [float(p[0]), float(p[1])]
 
+        def in_frame(p):
+            return bool(-0.5 <= p[0] <= rows - 0.5 and -0.5 <= p[1] <= cols - 0.5)
+
+        centre_xy = raster.line_start_nm[rows // 2] + ((cols - 1) / 2) * raster.step_nm
         walls = []
         for w in self.specimen.walls_truth():
             d = np.asarray(w["direction"])
             w = dict(w)
-            w["point_px"] = feature_px(w["point_nm"])
+            # The point of the wall line nearest the frame centre, and whether
+            # the wall crosses the frame (to within half its width).
+            p0 = np.asarray(w["point_nm"])
+            near = p0 + ((centre_xy - p0) @ d) * d
+            w["point_nm"] = near.tolist()
+            w["point_px"] = feature_px(near)
+            half_diag_px = 0.5 * math.hypot(rows, cols)
+            dist_px = math.hypot(w["point_px"][0] - (rows - 1) / 2,
+                                 w["point_px"][1] - (cols - 1) / 2)
+            # Walls act only in polar layers.
+            polar_here = bool(len(c)) and any(
+                self.specimen.layers[k].polar for k in np.unique(c.layer))
+            w["crosses_frame"] = bool(dist_px <= half_diag_px and polar_here)
             # Direction in image (x, y) = (col, row) components.
             w["direction_image_xy"] = [float(d @ e_f), float(d @ e_s)]
             walls.append(w)
@@ -612,6 +634,7 @@ class ScanEngine:
         for v in self.specimen.vortex_truth():
             v = dict(v)
             v["position_px"] = feature_px(v["xy_nm"])
+            v["in_frame"] = in_frame(v["position_px"])
             vortices.append(v)
         meta = {
             "frame_id": fid,
@@ -631,15 +654,13 @@ class ScanEngine:
                 "note": "specimen displacement on the stage: a specimen point r sits at "
                         "stage position r + offset; per-line offsets in drift_per_line_nm",
             },
-            "specimen_center_nm": (np.asarray(sidecar["stage_x_nm"]), ),
             "n_columns": int(len(c)),
             "walls": walls,
             "vortex_cores": vortices,
             "interfaces": self.specimen.interfaces_truth(),
             "probe_sigma_pm": self.instrument.probe.sigma_pm,
         }
-        centre_line = raster.line_start_nm[rows // 2] + ((cols - 1) / 2) * raster.step_nm
-        meta["specimen_center_nm"] = centre_line.tolist()
+        meta["specimen_center_nm"] = centre_xy.tolist()
         return FrameTruth(arrays=arrays, meta=meta)
 
 

@@ -183,7 +183,6 @@ class _Kink:
     half_width_nm: float
     b: np.ndarray          # displacement gradient jump is b (x) n
     layer: int | None      # masked to this layer, or None for everywhere
-    anchor_plus: bool = False  # True: the positive side stays put, the negative moves
 
 
 class Specimen:
@@ -295,11 +294,12 @@ class Specimen:
                         f"{(angle + 45) % 180:.0f} or {(angle - 45) % 180:.0f}")
                 # Rank-one connection: sym(b (x) n) = m when n.m.n = 0.
                 b = 2.0 * (m @ n) - nmn * n
-                # Keep the side holding the specimen centre in place, so the
-                # rigid offset a band of rotated cells brings falls on the far side.
-                keep_plus = float(-p @ n) > 0
+                # The displacement b H(s) is zero on the negative side, so the rigid
+                # offset that a band of rotated cells brings (b times the band width)
+                # falls on the positive side of the last wall: orient walls so that
+                # is the smaller part of the film.
                 kinks.append(_Kink(normal=n, point_nm=p, half_width_nm=wall.half_width_nm,
-                                   b=b, layer=layer.index, anchor_plus=keep_plus))
+                                   b=b, layer=layer.index))
         return kinks
 
     def _build_vacancies(self) -> dict:
@@ -348,8 +348,6 @@ class Specimen:
         for kink in self.kinks:
             s = (r0 - kink.point_nm) @ kink.normal
             h = _ramp(s, kink.half_width_nm)
-            if kink.anchor_plus:
-                h = h - s
             if kink.layer is not None:
                 h = h * self._layer_mask(r0[:, 1], self.layers[kink.layer])
             u += h[:, None] * kink.b[None, :]
