@@ -277,7 +277,7 @@ def test_flyback_warp_is_in_the_truth():
     # Residual warp inside one blob biases the centroid a little where the lag still
     # changes fast (the first column of cells); further right the centroid is exact.
     assert np.abs(err).max() < 0.05, np.abs(err).max()
-    assert np.abs(err[tr.positions_px[sel, 1] > 80]).max() < 0.002
+    assert np.abs(err[tr.positions_px[sel, 1] > 120]).max() < 0.002
     # Against the undistorted scan, the first columns moved right by ~A exp(-t/tau) / pixel.
     key = {tuple(ij) + (s,): p for ij, s, p in zip(plain.ij, plain.sublattice,
                                                    plain.positions_px)}
