@@ -26,11 +26,12 @@ __all__ = ["survey_positions", "run_survey", "run_replay", "run_serve", "list_fr
 log = logging.getLogger("sim_instrument")
 
 
-def survey_positions(n_frames: int, start_nm, step_nm: float) -> np.ndarray:
+def survey_positions(n_frames: int, start_nm, step_nm) -> np.ndarray:
     """Frame centres of a serpentine raster: (n_frames, 2) stage (x, y), nm.
 
     Rows of ``ceil(sqrt(n))`` frames run along x, alternating direction, so
-    the stage never jumps back across the whole raster.
+    the stage never jumps back across the whole raster.  `step_nm` is one
+    distance for both axes or ``(step_x, step_y)``.
     """
     if n_frames < 1:
         raise ValueError(f"`frames` must be >= 1, got {n_frames}")
@@ -39,7 +40,8 @@ def survey_positions(n_frames: int, start_nm, step_nm: float) -> np.ndarray:
     row, col = np.divmod(k, per_row)
     col = np.where(row % 2 == 0, col, per_row - 1 - col)
     start = np.asarray(start_nm, float)
-    return start[None, :] + step_nm * np.column_stack([col, row]).astype(float)
+    step = np.broadcast_to(np.asarray(step_nm, float), (2,))
+    return start[None, :] + step[None, :] * np.column_stack([col, row]).astype(float)
 
 
 def _pace(next_at: float, stop: threading.Event) -> None:
@@ -61,7 +63,8 @@ def run_survey(engine: ScanEngine, sinks: Sequence, *, frames: int, fov_nm: floa
     """
     stop = stop or threading.Event()
     rows, cols = shape_px
-    step = step_nm if step_nm is not None else fov_nm * max(rows / cols, 1.0)
+    # Default: tile the specimen, one frame width along x and one height along y.
+    step = step_nm if step_nm is not None else (fov_nm, fov_nm * rows / cols)
     ids = []
     next_at = time.monotonic()
     for centre in survey_positions(frames, start_nm, step):

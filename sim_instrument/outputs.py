@@ -97,6 +97,8 @@ class ZmqSink:
         try:
             if bind:
                 self.socket.bind(endpoint)
+                # With a wildcard port ("tcp://127.0.0.1:*") report the one chosen.
+                self.endpoint = self.socket.getsockopt_string(zmq.LAST_ENDPOINT)
             else:
                 self.socket.connect(endpoint)
         except zmq.ZMQError as exc:
