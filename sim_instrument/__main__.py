@@ -100,6 +100,10 @@ def _add_outputs(p: argparse.ArgumentParser, *, truth: bool = True) -> None:
                        help="folder for the ground truth (default: OUT-truth; never inside OUT)")
     g.add_argument("--format", choices=["tif", "npy"], default="tif",
                    help="image file format (default: tif)")
+    if truth:
+        g.add_argument("--dtype", choices=["float32", "uint16", "uint32"], default="float32",
+                       help="pixel type: detector counts as float32 (default) or rounded "
+                            "integers, as many scan generators deliver")
     g.add_argument("--zmq", metavar="ENDPOINT",
                    help="also (or only) send frames on a ZeroMQ PUSH socket, e.g. "
                         "tcp://127.0.0.1:5557, as [b'frame', header, pixels]")
@@ -193,7 +197,7 @@ def _engine(args):
 
 
 def _sinks(args, *, truth: bool):
-    from sim_instrument.outputs import FolderSink, ZmqSink
+    from sim_instrument.outputs import FolderSink, TruthSink, ZmqSink
 
     sinks = []
     if not args.out and not args.zmq:
@@ -201,6 +205,8 @@ def _sinks(args, *, truth: bool):
     if args.out:
         sinks.append(FolderSink(args.out, truth_dir=getattr(args, "truth", None) if truth
                                 else False, fmt=args.format))
+    elif truth and getattr(args, "truth", None):
+        sinks.append(TruthSink(args.truth))
     if args.zmq:
         sinks.append(ZmqSink(args.zmq, bind=not args.zmq_connect))
     return sinks
@@ -228,6 +234,7 @@ def _run(args) -> int:
             sinks = _sinks(args, truth=True)
             kw = {k: v for k, v in (("dwell_time_us", args.dwell_us),
                                     ("beam_current_pa", args.current_pa)) if v is not None}
+            kw["dtype"] = args.dtype
             if args.mode == "survey":
                 ids = modes.run_survey(engine, sinks, frames=args.frames, fov_nm=args.fov_nm,
                                        shape_px=args.shape, start_nm=args.start_nm,
@@ -241,7 +248,7 @@ def _run(args) -> int:
                     duration = 3600.0
                 ids = modes.run_serve(engine, sinks, args.events,
                                       max_requests=args.max_requests, duration_s=duration,
-                                      stop=stop)
+                                      stop=stop, acquire_kw=kw)
     finally:
         for sink in sinks:
             sink.close()

@@ -139,13 +139,16 @@ def run_replay(source_dir, sinks: Sequence, *, interval_s: float = 1.0, loops: i
 def run_serve(engine: ScanEngine, sinks: Sequence, events_endpoint: str, *,
               max_requests: int | None = None, duration_s: float | None = None,
               stop: threading.Event | None = None, context=None,
-              poll_ms: int = 100, on_frame: Callable | None = None) -> list[str]:
+              poll_ms: int = 100, on_frame: Callable | None = None,
+              acquire_kw: dict | None = None) -> list[str]:
     """Acquire the regions asked for by ``scan-request`` events.
 
     Subscribes to `events_endpoint` (the daemon's events PUB socket), topic
     ``scan-request``.  A malformed request is logged with its reason and
     skipped.  Ends after `max_requests` frames, after `duration_s`, or when
-    `stop` is set; at least one of the first two must be given.
+    `stop` is set; at least one of the first two must be given.  `acquire_kw`
+    holds defaults (``dwell_time_us``, ``beam_current_pa``, ``dtype``) that a
+    request's own fields override.
     """
     import zmq
 
@@ -177,12 +180,16 @@ def run_serve(engine: ScanEngine, sinks: Sequence, events_endpoint: str, *,
             extra = {"request_id": req.id}
             if req.extra:
                 extra["request_extra"] = req.extra
+            kw = dict(acquire_kw or {})
+            for key in ("dwell_time_us", "beam_current_pa", "detector"):
+                if getattr(req, key) is not None:
+                    kw[key] = getattr(req, key)
             try:
                 acq = engine.acquire(
                     (req.center_x_nm, req.center_y_nm), req.fov_nm, req.shape_px,
-                    scan_rotation_deg=req.scan_rotation_deg, dwell_time_us=req.dwell_time_us,
-                    beam_current_pa=req.beam_current_pa, detector=req.detector,
-                    frame_id=f"req_{_safe(req.id)}_{engine.frame_count + 1:05d}", extra=extra)
+                    scan_rotation_deg=req.scan_rotation_deg,
+                    frame_id=f"req_{_safe(req.id)}_{engine.frame_count + 1:05d}", extra=extra,
+                    **kw)
             except ValueError as exc:
                 log.warning("scan-request %r cannot be acquired: %s", req.id, exc)
                 continue

@@ -23,7 +23,7 @@ import numpy as np
 from livequant.frames import write_frame
 from livequant.wire import encode_frame_message
 
-__all__ = ["FolderSink", "ZmqSink", "default_truth_dir"]
+__all__ = ["FolderSink", "TruthSink", "ZmqSink", "default_truth_dir"]
 
 log = logging.getLogger("sim_instrument")
 
@@ -62,6 +62,20 @@ class FolderSink:
         if truth is not None and self.truth_dir is not None:
             truth.save(self.truth_dir)
         return write_frame(self.out_dir, sidecar["frame_id"], pixels, sidecar, fmt=self.fmt)
+
+    def close(self) -> None:
+        pass
+
+
+class TruthSink:
+    """Write only the ground truth (for socket-only sessions)."""
+
+    def __init__(self, truth_dir):
+        self.truth_dir = Path(truth_dir)
+
+    def send(self, pixels, sidecar: dict, truth=None) -> None:
+        if truth is not None:
+            truth.save(self.truth_dir)
 
     def close(self) -> None:
         pass

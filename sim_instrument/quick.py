@@ -63,7 +63,7 @@ def perovskite_frame(material: str = "SrTiO3", shape=(256, 256), *, pixel_size_p
     Examples
     --------
     >>> acq = perovskite_frame("SrTiO3", (64, 64), noise=False)
-    >>> acq.pixels.shape, sorted(set(acq.truth.sublattice))
+    >>> acq.pixels.shape, sorted(set(acq.truth.sublattice.tolist()))
     ((64, 64), ['A', 'B', 'Oa', 'Ob'])
     """
     rows, cols = (int(v) for v in shape)

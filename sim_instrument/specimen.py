@@ -195,7 +195,7 @@ class Specimen:
     --------
     >>> spec = Specimen.from_scenario("demo")
     >>> cols = spec.columns_in((-2.0, 2.0, 20.0, 24.0))
-    >>> sorted(set(cols.sublattice))
+    >>> sorted(set(cols.sublattice.tolist()))
     ['A', 'B', 'Oa', 'Ob']
     """
 

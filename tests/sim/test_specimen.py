@@ -180,3 +180,27 @@ def test_region_errors():
         spec.columns_in((5, 1, 0, 2))
     with pytest.raises(ValueError, match="smaller field of view"):
         spec.columns_in((-2000, 2000, -2000, 2000))
+
+
+def test_octahedral_tilt_moves_o_columns():
+    phi = 5.0
+    raw = {"name": "t", "size_nm": [50.0, 50.0], "reference_material": "SrTiO3",
+           "layers": [{"material": "SrTiO3", "tilt_deg": phi}]}
+    cols = Specimen.from_scenario(raw).columns_in((-2, 2, -2, 2))
+    a = _by_ij(cols, "A")
+    shifts = []
+    for site, axis, step in (("Oa", 0, (1, 0)), ("Ob", 1, (0, 1))):
+        for (i, j), p in _by_ij(cols, site).items():
+            if (i, j) in a and (i + step[0], j + step[1]) in a:
+                mid = 0.5 * (a[(i, j)] + a[(i + step[0], j + step[1])])
+                # The O on a B-B bond moves perpendicular to that bond, i.e. along the
+                # A-A line it sits on, alternating in sign from cell to cell.
+                shifts.append(((p - mid)[axis] * 1000, 1 if (i + j) % 2 == 0 else -1, axis))
+    shifts = np.array(shifts)
+    # CHECK-VALUES section 8: delta = (a/2) tan(phi); SrTiO3 at 5 deg -> 17.1 pm.
+    delta = A_STO / 2 * math.tan(math.radians(phi))
+    np.testing.assert_allclose(np.abs(shifts[:, 0]), delta, rtol=1e-9)
+    for axis in (0, 1):
+        sel = shifts[:, 2] == axis
+        signs = np.sign(shifts[sel, 0]) * shifts[sel, 1]
+        assert sel.sum() > 10 and len(set(signs)) == 1  # alternates with cell parity
