@@ -25,20 +25,14 @@ beam reaching the detector; gain, offset and read noise follow.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 
 import numpy as np
 from scipy import ndimage
 from scipy.special import ndtr
 
-from sim_instrument.scenario import (
-    DetectorSpec,
-    DistortionSpec,
-    DriftSpec,
-    InstrumentSpec,
-    ProbeSpec,
-)
+from sim_instrument.scenario import DriftSpec, InstrumentSpec
 from sim_instrument.specimen import Specimen
 
 __all__ = [

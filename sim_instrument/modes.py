@@ -145,7 +145,9 @@ def run_serve(engine: ScanEngine, sinks: Sequence, events_endpoint: str, *,
 
     Subscribes to `events_endpoint` (the daemon's events PUB socket), topic
     ``scan-request``.  A malformed request is logged with its reason and
-    skipped.  Ends after `max_requests` frames, after `duration_s`, or when
+    skipped, and so is a repeat of an id already served (a publisher may
+    re-send; a new acquisition of the same region needs a new id).  Ends
+    after `max_requests` frames, after `duration_s`, or when
     `stop` is set; at least one of the first two must be given.  `acquire_kw`
     holds defaults (``dwell_time_us``, ``beam_current_pa``, ``dtype``) that a
     request's own fields override.
@@ -161,6 +163,7 @@ def run_serve(engine: ScanEngine, sinks: Sequence, events_endpoint: str, *,
     sub.setsockopt(zmq.LINGER, 0)
     sub.setsockopt(zmq.SUBSCRIBE, SCAN_REQUEST_TOPIC)
     done: list[str] = []
+    served_ids: set[str] = set()
     try:
         sub.connect(events_endpoint)
         deadline = None if duration_s is None else time.monotonic() + duration_s
@@ -176,6 +179,9 @@ def run_serve(engine: ScanEngine, sinks: Sequence, events_endpoint: str, *,
                 req = decode_scan_request(parts)
             except ScanRequestError as exc:
                 log.warning("ignored scan-request: %s", exc)
+                continue
+            if req.id in served_ids:
+                log.info("scan-request %r already served; ignored", req.id)
                 continue
             extra = {"request_id": req.id}
             if req.extra:
@@ -195,6 +201,7 @@ def run_serve(engine: ScanEngine, sinks: Sequence, events_endpoint: str, *,
                 continue
             for sink in sinks:
                 sink.send(acq.pixels, acq.sidecar, acq.truth)
+            served_ids.add(req.id)
             done.append(acq.frame_id)
             log.info("acquired %s for request %s", acq.frame_id, req.id)
             if on_frame:

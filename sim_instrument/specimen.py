@@ -30,7 +30,7 @@ from __future__ import annotations
 
 import math
 import os
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -422,8 +422,8 @@ class Specimen:
         ii, jj = np.meshgrid(i, j, indexing="xy")
         return ii.ravel(), jj.ravel()
 
-    def _site_positions(self, ii, jj, site: str, layer_of_cell, zfield=None):
-        """Positions (N, 2) nm of one sublattice for cells (ii, jj)."""
+    def _site_positions(self, ii, jj, site: str):
+        """Reference and displaced positions (N, 2) nm of one sublattice for cells (ii, jj)."""
         fx, fy = SITE_OFFSETS[site]
         r0 = np.column_stack([(ii + fx) * self.a_ref_nm, (jj + fy) * self.a_ref_nm])
         pos = r0 + self.displacement_nm(r0)
@@ -443,7 +443,7 @@ class Specimen:
         pos = {}
         r0s = {}
         for site in ("A", "B", "Oa", "Ob"):
-            r0s[site], pos[site] = self._site_positions(ii, jj, site, cell_layer)
+            r0s[site], pos[site] = self._site_positions(ii, jj, site)
         pos["B"] = pos["B"] + shift_b_pm / 1000.0
         # Octahedral rotation about [001], antiphase from cell to cell: the O
         # on a B-B bond moves perpendicular to it by (a/2) tan(phi)

@@ -130,8 +130,10 @@ def test_scan_request_schema():
 def test_serve_acquires_requested_region(tmp_path, specimen, ctx):
     """1. the test binds a PUB socket, as the daemon's events socket;
     2. serve subscribes to it on a thread;
-    3. the test publishes a malformed request, then a valid one, until a frame appears;
-    4. the frame reports the requested centre and shape; serve stops after one frame."""
+    3. the test publishes a malformed request, then a valid one (repeated: the first
+       copies may be lost before the subscription lands), then a second valid one;
+    4. repeats of an id are served once; the frames report the requested centre and
+       shape; serve stops after two frames."""
     pub = ctx.socket(zmq.PUB)
     pub.setsockopt(zmq.LINGER, 0)
     pub.bind("tcp://127.0.0.1:*")
@@ -141,7 +143,7 @@ def test_serve_acquires_requested_region(tmp_path, specimen, ctx):
     result, stop = {}, threading.Event()
 
     def serve():
-        result["ids"] = run_serve(engine, [FolderSink(out)], endpoint, max_requests=1,
+        result["ids"] = run_serve(engine, [FolderSink(out)], endpoint, max_requests=2,
                                   duration_s=20.0, stop=stop, context=ctx, poll_ms=20)
 
     thread = threading.Thread(target=serve, daemon=True)
@@ -154,13 +156,16 @@ def test_serve_acquires_requested_region(tmp_path, specimen, ctx):
             # Subscriptions take a moment to arrive (slow joiner): repeat until served.
             pub.send_multipart([b"scan-request", b"{broken"])
             pub.send_multipart(encode_scan_request(req))
+            if out.exists() and any(out.glob("*.tif")):
+                pub.send_multipart(encode_scan_request({**req, "id": "prop-2"}))
             thread.join(0.1)
     finally:
         stop.set()
         thread.join(5.0)
         pub.close(linger=0)
     assert not thread.is_alive()
-    assert len(result["ids"]) == 1
+    assert len(result["ids"]) == 2
+    assert [i.split("_")[1] for i in result["ids"]] == ["prop-1", "prop-2"]
     frame = read_frame(out / f"{result['ids'][0]}.tif")
     assert frame.shape == (64, 96)
     assert (frame.meta.stage_x_nm, frame.meta.stage_y_nm) == (-40.0, 10.0)
