@@ -458,12 +458,17 @@ class Specimen:
             pos[site] = p
 
         x0, x1, y0, y1 = region
+        # Beyond the specimen edges there is vacuum (by reference position).
+        bx0, bx1, by0, by1 = self.bounds_nm
+        cell_in = ((b_r0[:, 0] >= bx0) & (b_r0[:, 0] < bx1)
+                   & (b_r0[:, 1] >= by0) & (b_r0[:, 1] < by1))
         za = np.array([l.z_a for l in self.layers])
         zb = np.array([l.z_b for l in self.layers])
         parts = []
         for site in ("A", "B", "Oa", "Ob"):
             p = pos[site]
-            inside = (p[:, 0] >= x0) & (p[:, 0] < x1) & (p[:, 1] >= y0) & (p[:, 1] < y1)
+            inside = (cell_in & (p[:, 0] >= x0) & (p[:, 0] < x1)
+                      & (p[:, 1] >= y0) & (p[:, 1] < y1))
             lay = self.layer_index(r0s[site][:, 1])
             if site == "A":
                 zz, zp = za[lay], np.zeros_like(lay)
@@ -488,7 +493,7 @@ class Specimen:
                          + np.hypot(*(corners[3] - corners[2]).T)) * 1000.0
         c_local = 0.5 * (np.hypot(*(corners[2] - corners[0]).T)
                          + np.hypot(*(corners[3] - corners[1]).T)) * 1000.0
-        inside = ((pos["B"][:, 0] >= x0) & (pos["B"][:, 0] < x1)
+        inside = (cell_in & (pos["B"][:, 0] >= x0) & (pos["B"][:, 0] < x1)
                   & (pos["B"][:, 1] >= y0) & (pos["B"][:, 1] < y1))
         psign = np.array([l.p_sign for l in self.layers])[cell_layer]
         norm = np.hypot(*shift_b_pm.T)

@@ -285,3 +285,16 @@ def test_flyback_warp_is_in_the_truth():
                       zip(tr.ij[sel], tr.sublattice[sel], tr.positions_px[sel])])
     col = tr.positions_px[sel, 1]
     assert shift[np.argmin(col)] > shift[np.argmax(col)] + 1.0
+
+
+def test_beyond_the_specimen_edge_is_vacuum():
+    spec = Specimen.from_scenario("tilted-substrate")  # 300 nm wide: x from -150 to 150
+    engine = ScanEngine(spec, drift=DriftModel.none(), seed=1)
+    kw = dict(noise=False, detector="HAADF", dwell_time_us=2.0, beam_current_pa=20.0)
+    edge = engine.acquire((150.0, 0.0), 4.0, (128, 128), **kw)
+    cols = edge.truth.positions_px[:, 1]
+    assert len(cols) > 0 and cols.max() < 63.5 + 1   # columns only left of the edge
+    outside = engine.acquire((200.0, 0.0), 4.0, (64, 64), **kw)
+    assert outside.truth.meta["n_columns"] == 0
+    # Only the diffuse background remains (haadf_background_fraction of the beam).
+    np.testing.assert_allclose(outside.pixels, 0.02 * electrons_per_pixel(20.0, 2.0), rtol=1e-6)
