@@ -35,7 +35,7 @@ from livequant.analysis.strain import (CORNER_OFFSETS, local_lattice, reference_
 from livequant.analysis.tilt import NEIGHBOUR_OFFSETS, O_DETECTORS, octahedral_tilt
 from livequant.analysis.topology import find_cores
 from livequant.analysis.types import Columns, Lattice, readonly
-from livequant.analysis.walls import WIDTH_CONVENTION, find_wall
+from livequant.analysis.walls import WIDTH_CONVENTION, DisplacementNoise, find_wall
 
 __all__ = ["Cells", "compute_cells", "DESCRIPTORS", "VALUE_FIELDS", "MaterialConstants"]
 
@@ -355,7 +355,14 @@ def compute_cells(columns: Columns, lattice: Lattice, *, pixel_size_pm: float, m
     x_pm, y_pm = centre_px[:, 1] * px, centre_px[:, 0] * px
     d_xy = np.column_stack([values["dx_pm"], values["dy_pm"]])
     sd_xy = np.column_stack([values["sigma_dx_pm"], values["sigma_dy_pm"]])
-    wall = find_wall(np.column_stack([x_pm, y_pm]), d_xy, sd_xy) if n else None
+    wall = None
+    if n:
+        ni_, nj_ = a_grid.shape
+        corner_ids = np.stack([(gi + di) * nj_ + (gj + dj) for di, dj in CORNER_OFFSETS], axis=1)
+        noise = DisplacementNoise(sigma_b_xy=sb[:, ::-1] * px, corner_ids=corner_ids,
+                                  sigma_corner_xy=a_grid.sigma_positions_px.reshape(-1, 2)[:, ::-1]
+                                  * px)
+        wall = find_wall(np.column_stack([x_pm, y_pm]), d_xy, sd_xy, noise=noise)
     wall_info = None
     if wall is not None:
         wall_info = {**wall.to_json(), "units": "pm (x0, width, position); p0 in pm of B-site "
