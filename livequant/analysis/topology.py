@@ -66,7 +66,7 @@ def winding_numbers(ux, uy, *, valid=None, periodic=False, handedness=1) -> np.n
     Examples
     --------
     >>> y, x = np.mgrid[-2:2, -2:2] + 0.5
-    >>> winding_numbers(-y.T, x.T)[1, 1]   # counter-clockwise vortex: i along x
+    >>> float(winding_numbers(-y.T, x.T)[1, 1])   # counter-clockwise vortex, i along x
     1.0
     """
     ux = np.asarray(ux, float)
