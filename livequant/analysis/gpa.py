@@ -25,7 +25,7 @@ Speed: the masked spectrum is band-limited around ``g``, so instead of
 inverse-transforming the whole frame the spectrum is cut to a small window
 centred on ``g`` and inverse-transformed there.  That is the same Bragg
 image, demodulated and sampled on a coarse grid (steps of a fraction of the
-filter width), and costs one full FFT plus two small inverse FFTs; strain
+filter width), and costs one real FFT plus two small inverse FFTs; strain
 values at arbitrary points are interpolated from that grid (cubic).
 
 The spatial resolution is set by the mask: a Gaussian of standard deviation
@@ -39,6 +39,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import fft as sp_fft
 from scipy import ndimage
 
 __all__ = ["GPAResult", "gpa_strain"]
@@ -133,6 +134,22 @@ def _phase_gradient(z: np.ndarray, axis: int) -> np.ndarray:
     return np.angle(ahead * np.conj(behind)) / 2.0
 
 
+def _spectrum_window(half, rows, cols, width):
+    """Entries ``S[rows, cols]`` of the full spectrum of a real image from its ``rfft2``.
+
+    ``S[p, q] = conj(S[-p, -q])`` for a real image, so the half spectrum
+    (columns ``0 .. width // 2``) holds everything; it costs half the full FFT.
+    """
+    h = half.shape[0]
+    r, c = np.meshgrid(rows % h, cols % width, indexing="ij")
+    direct = c <= width // 2
+    out = np.empty(r.shape, dtype=complex)
+    out[direct] = half[r[direct], c[direct]]
+    mirror = ~direct
+    out[mirror] = np.conj(half[(-r[mirror]) % h, width - c[mirror]])
+    return out
+
+
 def _window_size(n_pixels: int, half_width_bins: float) -> int:
     """Even window length holding +-half_width_bins, at most the full axis."""
     n = int(2 * np.ceil(half_width_bins) + 2)
@@ -200,7 +217,7 @@ def gpa_strain(image, basis_px, *, reference_xy_px=None, reflections=((1, 0), (0
                          "is under 2 pixels; use lower-order `reflections`")
     sigma_k = mask_sigma_fraction * float(np.min(np.hypot(*g.T)))
     h, w = img.shape
-    spectrum = np.fft.fft2(img - img.mean())
+    half = sp_fft.rfft2(img - img.mean())
     ny = _window_size(h, _WINDOW_SIGMAS * sigma_k * h)
     nx = _window_size(w, _WINDOW_SIGMAS * sigma_k * w)
     step = (h / ny, w / nx)
@@ -217,7 +234,7 @@ def gpa_strain(image, basis_px, *, reference_xy_px=None, reflections=((1, 0), (0
         cy, cx = int(round(gy * h)), int(round(gx * w))
         fy = (cy + dp)[:, None] / h
         fx = (cx + dq)[None, :] / w
-        window = spectrum[np.ix_((cy + dp) % h, (cx + dq) % w)]
+        window = _spectrum_window(half, cy + dp, cx + dq, w)
         mask = np.exp(-((fx - gx) ** 2 + (fy - gy) ** 2) / (2.0 * sigma_k**2))
         # Inverse transform of the window = the Bragg image demodulated by the bin frequency
         # (cy/h, cx/w), sampled every `step` pixels; then remove the rest of g exactly.
