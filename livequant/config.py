@@ -97,6 +97,7 @@ class CellsSettings(_Model):
     gpa: bool = True
     gpa_mask_sigma_fraction: float = Field(default=0.2, gt=0, le=0.35)
     min_snr_topology: float = Field(default=3.0, ge=0)
+    max_wall_chi2: float = Field(default=5.0, gt=0)
 
 
 class AnalysisSettings(_Model):

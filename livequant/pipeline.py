@@ -236,6 +236,7 @@ def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult
             detector=frame.meta.detector or "HAADF",
             gpa_mask_sigma_fraction=cfg.cells.gpa_mask_sigma_fraction,
             min_snr_topology=cfg.cells.min_snr_topology,
+            max_wall_chi2=cfg.cells.max_wall_chi2,
         )
     except ValueError as exc:  # e.g. reference="material" without a material: say so per frame
         cells_message = f"no cell descriptors: {exc}"

@@ -175,7 +175,8 @@ def _cell_mask_from_region(region, centres_px) -> np.ndarray:
 
 def compute_cells(columns: Columns, lattice: Lattice, *, pixel_size_pm: float, material=None,
                   reference="median", image=None, detector: str = "HAADF",
-                  gpa_mask_sigma_fraction: float = 0.2, min_snr_topology: float = 3.0) -> Cells:
+                  gpa_mask_sigma_fraction: float = 0.2, min_snr_topology: float = 3.0,
+                  max_wall_chi2: float = 5.0) -> Cells:
     """Per-cell descriptors of one frame, with uncertainties.
 
     Parameters
@@ -206,6 +207,10 @@ def compute_cells(columns: Columns, lattice: Lattice, *, pixel_size_pm: float, m
     min_snr_topology : float
         A cell's displacement direction counts for the winding numbers only
         where ``|u| / sigma(|u|)`` reaches this.
+    max_wall_chi2 : float
+        A tanh fit is reported as the frame's wall only when its reduced
+        chi-square is at most this; a worse fit (several walls, a vortex
+        texture) goes to ``wall_candidate`` in the summary with the reason.
 
     Returns
     -------
@@ -364,7 +369,7 @@ def compute_cells(columns: Columns, lattice: Lattice, *, pixel_size_pm: float, m
                                   sigma_corner_xy=a_grid.sigma_positions_px.reshape(-1, 2)[:, ::-1]
                                   * px)
         wall = find_wall(np.column_stack([x_pm, y_pm]), d_xy, sd_xy, noise=noise)
-    wall_info = None
+    wall_info = wall_candidate = None
     if wall is not None:
         wall_info = {**wall.to_json(), "units": "pm (x0, width, position); p0 in pm of B-site "
                                                 "displacement", "convention": WIDTH_CONVENTION}
@@ -372,12 +377,18 @@ def compute_cells(columns: Columns, lattice: Lattice, *, pixel_size_pm: float, m
             k = abs(polarization_per_pm(mat))
             wall_info["p0_C_per_m2"] = wall.p0 * k
             wall_info["sigma_p0_C_per_m2"] = wall.sigma_p0 * k
+        if not wall.reduced_chi2 <= max_wall_chi2:
+            wall_candidate = {**wall_info, "rejected": f"reduced chi-square {wall.reduced_chi2:.3g}"
+                                                      f" > {max_wall_chi2}: not one straight "
+                                                      "tanh wall"}
+            wall_info = None
     topo_info = _topology(ii, jj, x_pm, y_pm, values, lattice, box, plaquette, min_snr_topology)
 
     frozen = {k: readonly(values[k], float) for k in VALUE_FIELDS}
     info = {"pixel_size_pm": px, "material": None if mat is None else mat.name,
             "detector": str(detector), "reference": ref_info, "polarization": pol_info,
-            "gpa": gpa_info, "tilt": tilt_info, "wall": wall_info, "topology": topo_info,
+            "gpa": gpa_info, "tilt": tilt_info, "wall": wall_info,
+            "wall_candidate": wall_candidate, "topology": topo_info,
             "sign_conventions": "x = image column, y = image row (down); angles and rotations "
                                 "from +x towards +y", "notes": notes}
     return Cells(i=readonly(ii, np.int64), j=readonly(jj, np.int64), x_pm=readonly(x_pm, float),

@@ -134,3 +134,13 @@ def test_noise_below_threshold_makes_no_cores():
                            rng=np.random.default_rng(2))
     topo = compute_cells(cols, lattice_for(), pixel_size_pm=PX).summary()["topology"]
     assert topo["cores"] == [] and topo["n_plaquettes"] < 10
+
+
+def test_vortex_texture_is_not_reported_as_a_wall():
+    # The displacement reverses across a vortex pair too, but no single tanh wall fits it.
+    c1, c2 = (15 + 5 * A_PX, 15 + 6 * A_PX), (15 + 11 * A_PX, 15 + 6 * A_PX)
+    cols = _vortex_columns([(c1, 1, 0.0), (c2, 1, -np.pi / 2)], sigma_px=0.05,
+                           rng=np.random.default_rng(4))
+    summary = compute_cells(cols, lattice_for(), pixel_size_pm=PX).summary()
+    assert summary["wall"] is None
+    assert "chi-square" in summary["wall_candidate"]["rejected"]
