@@ -29,7 +29,7 @@ import numpy as np
 __all__ = ["Tilt", "octahedral_tilt", "O_DETECTORS", "NEIGHBOUR_OFFSETS"]
 
 #: Detectors that image the oxygen columns (compared upper-case).
-O_DETECTORS = frozenset({"ABF", "BF", "IBF", "IABF", "INVERTED-BF", "INVERTED-ABF", "IDPC", "DPC"})
+O_DETECTORS = frozenset({"ABF", "BF", "IBF", "IABF", "INVERTED-BF", "INVERTED-ABF", "IDPC"})
 
 #: For B cell (i, j): (offset of the neighbouring B cell, O sublattice, offset of that O column).
 #: Ob(i+1, j) lies half way to B(i+1, j); Ob(i, j) to B(i-1, j); Oa(i, j+1) to B(i, j+1);

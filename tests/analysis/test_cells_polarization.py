@@ -174,3 +174,26 @@ def test_rigid_translation_of_all_atoms_leaves_displacement_unchanged():
         c2 = compute_cells(make_columns(moved), lat, pixel_size_pm=PX)
     np.testing.assert_allclose(c1.dx_pm, c2.dx_pm, atol=1e-9)
     np.testing.assert_allclose(c1.dy_pm, c2.dy_pm, atol=1e-9)
+
+
+def test_bifeo3_projected_fe_shift_check_7():
+    # Check 7 (Palewicz et al., Acta Cryst. B63, 537 (2007), R3c at 298 K): Fe at z = 0.22021 of
+    # c_hex = 1386.932 pm sits (0.25 - 0.22021) c_hex = 41.3 pm below the Bi-cage midpoint along
+    # [111]pc, i.e. 41.3 / sqrt(3) = 23.9 pm along each pseudocubic axis; seen along [100]pc the
+    # in-plane shift is 23.9 pm along both in-plane axes (33.7 pm in magnitude).  Columns built
+    # with a_pc = 396.46 pm and that shift must return it within 0.5 pm.
+    along_111 = (0.25 - 0.22021) * 1386.932
+    assert along_111 == pytest.approx(41.3, abs=0.05)
+    per_axis = along_111 / np.sqrt(3)
+    a_px = 396.46 / PX
+    shift_rc = -np.array([per_axis, per_axis]) / PX  # "below": against the [111] direction
+    sites = perovskite(8, 8, a_xy_px=(a_px, 0), b_xy_px=(0, a_px),
+                       b_shift=lambda r: np.tile(shift_rc, (len(r), 1)))
+    cells = compute_cells(make_columns(sites, sigma_px=0.02, rng=np.random.default_rng(7)),
+                          lattice_for((a_px, 0), (0, a_px)), pixel_size_pm=PX)
+    assert np.median(cells.dx_pm) == pytest.approx(-23.9, abs=0.5)
+    assert np.median(cells.dy_pm) == pytest.approx(-23.9, abs=0.5)
+    assert np.median(cells.d_pm) == pytest.approx(33.7, abs=0.5)
+    # The table records P antiparallel to that shift, and no Born charges (not charge neutral).
+    bfo = load_materials()["BiFeO3"]
+    assert bfo.p_sign_b_vs_a == -1 and bfo.born_b is None
