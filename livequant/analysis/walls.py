@@ -90,6 +90,7 @@ class WallFit:
     convention: str = WIDTH_CONVENTION
     axis_deg: float | None = None
     normal_deg: float | None = None
+    sigma_normal_deg: float | None = None
     x_pm: float | None = None
     y_pm: float | None = None
 
@@ -207,22 +208,39 @@ class DisplacementNoise:
     sigma_corner_xy: np.ndarray
 
 
-def _sandwich_sigmas(s, p_fit, sp, axis, noise: DisplacementNoise, keep):
+def _wall_model(r, centre):
+    """``p(r) = P0 tanh(((r - centre) . n(theta) - x0) / w)`` for a straight wall."""
+
+    def model(_, p0, x0, w, theta):
+        s = (r[:, 0] - centre[0]) * np.cos(theta) + (r[:, 1] - centre[1]) * np.sin(theta)
+        return p0 * np.tanh((s - x0) / w)
+
+    return model
+
+
+def _wall_jacobian(r, centre, params):
+    p0, x0, w, theta = params
+    dx, dy = r[:, 0] - centre[0], r[:, 1] - centre[1]
+    s = dx * np.cos(theta) + dy * np.sin(theta)
+    t = -dx * np.sin(theta) + dy * np.cos(theta)    # coordinate along the wall
+    z = (s - x0) / w
+    sech2 = 1.0 / np.cosh(z) ** 2
+    return np.column_stack([np.tanh(z), -p0 * sech2 / w, -p0 * sech2 * z / w,
+                            p0 * sech2 * t / w])
+
+
+def _sandwich_sigmas(jac, sp, axis, noise: DisplacementNoise, keep):
     """Parameter sigmas of the weighted fit under the full column covariance.
 
     ``cov = A (G^T C G) A`` with ``A = (J^T W J)^-1``, ``G = W J`` and ``C``
     the covariance of the profile values implied by the column sigmas.
     """
-    p0, x0, w = p_fit
-    z = (s - x0) / w
-    sech2 = 1.0 / np.cosh(z) ** 2
-    jac = np.column_stack([np.tanh(z), -p0 * sech2 / w, -p0 * sech2 * z / w])
     g = jac / sp[:, None] ** 2
     a = np.linalg.inv(jac.T @ g)
     var_b = (np.asarray(noise.sigma_b_xy)[keep] ** 2) @ axis**2
     meat = (g * var_b[:, None]).T @ g
     ids = np.asarray(noise.corner_ids)[keep]
-    h = np.zeros((len(noise.sigma_corner_xy), 3))
+    h = np.zeros((len(noise.sigma_corner_xy), jac.shape[1]))
     np.add.at(h, ids.ravel(), np.repeat(g, 4, axis=0))
     var_c = (np.asarray(noise.sigma_corner_xy) ** 2) @ axis**2 / 16.0
     good = np.isfinite(var_c)
@@ -234,6 +252,13 @@ def _sandwich_sigmas(s, p_fit, sp, axis, noise: DisplacementNoise, keep):
 def find_wall(positions_xy, d_xy, sigma_d_xy, *, noise: DisplacementNoise | None = None,
               min_fraction=0.1, min_snr=3.0) -> WallFit | None:
     """Find and fit one straight wall in a per-cell displacement map.
+
+    The polar axis is the dominant direction of the displacements (second
+    moment), ``p = d . axis`` its component; the wall is fitted in 2D as
+    ``p(r) = P0 tanh(((r - c) . n - x0) / w)`` with the normal's angle free,
+    started from the direction joining the centroids of the two signs (a
+    normal fixed from the centroids would smear the profile when the cells on
+    either side cover different areas).
 
     Parameters
     ----------
@@ -253,8 +278,9 @@ def find_wall(positions_xy, d_xy, sigma_d_xy, *, noise: DisplacementNoise | None
     -------
     WallFit or None
         None when the map shows no reversal of the polar component (a single
-        domain, or a displacement below the noise).  ``p0 > 0`` always: the
-        normal points from the negative to the positive domain.
+        domain, or a displacement below the noise) or the fit fails.
+        ``p0 > 0`` always: the normal points from the negative to the positive
+        domain.
     """
     r = np.asarray(positions_xy, float)
     d = np.asarray(d_xy, float)
@@ -278,18 +304,37 @@ def find_wall(positions_xy, d_xy, sigma_d_xy, *, noise: DisplacementNoise | None
     centre = r.mean(axis=0)
     s = (r - centre) @ normal
     try:
-        fit = fit_wall_profile(s, p, sp)
+        first = fit_wall_profile(s, p, sp)
     except ValueError:
         return None
-    fields = asdict(fit)
+    theta0 = float(np.arctan2(normal[1], normal[0]))
+    span = float(np.ptp(s)) or 1.0
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", OptimizeWarning)
+            popt, _ = curve_fit(_wall_model(r, centre), None, p,
+                                p0=[first.p0, first.x0, first.width, theta0], sigma=sp,
+                                absolute_sigma=True,
+                                bounds=([-np.inf, -2 * span, 1e-6 * span, theta0 - np.pi / 4],
+                                        [np.inf, 2 * span, 10 * span, theta0 + np.pi / 4]),
+                                max_nfev=2000)
+    except (RuntimeError, OptimizeWarning, ValueError):
+        return None
+    jac = _wall_jacobian(r, centre, popt)
+    resid = p - _wall_model(r, centre)(None, *popt)
+    chi2 = float(np.sum((resid / sp) ** 2) / max(len(p) - 4, 1))
     if noise is not None:
-        sig = _sandwich_sigmas(s, (fit.p0, fit.x0, fit.width), sp, axis, noise, ok)
-        fields.update(sigma_p0=float(sig[0]), sigma_x0=float(sig[1]), sigma_width=float(sig[2]))
-    if fit.p0 < 0:  # flip the axis so that P0 > 0 with the normal as defined
-        axis = -axis
-        fields["p0"] = -fit.p0
-    at = centre + fit.x0 * normal
-    fields.update(axis_deg=float(np.degrees(np.arctan2(axis[1], axis[0]))),
-                  normal_deg=float(np.degrees(np.arctan2(normal[1], normal[0]))),
-                  x_pm=float(at[0]), y_pm=float(at[1]))
-    return WallFit(**fields)
+        sig = _sandwich_sigmas(jac, sp, axis, noise, ok)
+    else:
+        g = jac / sp[:, None] ** 2
+        sig = np.sqrt(np.clip(np.diag(np.linalg.inv(jac.T @ g)), 0, None))
+    p0, x0, w, theta = (float(v) for v in popt)
+    if p0 < 0:  # describe the same wall with P0 > 0: flip the polar axis
+        axis, p0 = -axis, -p0
+    n_vec = np.array([np.cos(theta), np.sin(theta)])
+    at = centre + x0 * n_vec
+    return WallFit(x0=x0, sigma_x0=float(sig[1]), width=w, sigma_width=float(sig[2]), p0=p0,
+                   sigma_p0=float(sig[0]), reduced_chi2=chi2, n_points=int(len(p)),
+                   axis_deg=float(np.degrees(np.arctan2(axis[1], axis[0]))),
+                   normal_deg=float(np.degrees(theta)), sigma_normal_deg=float(np.degrees(sig[3])),
+                   x_pm=float(at[0]), y_pm=float(at[1]))

@@ -158,3 +158,29 @@ def test_vortex_pair_through_the_pipeline():
         assert np.hypot(core["x_pm"] - cx * PX, core["y_pm"] - cy * PX) < 390.53
         assert (core["winding"], core["kind"]) == (1, "vortex")
     assert cores[0]["chirality"] == -cores[1]["chirality"] != 0
+
+
+@pytest.mark.slow
+def test_wall_fit_sigmas_are_calibrated_over_renders():
+    # Fifty rendered frames of one tanh wall (w = 1.5 cells), each through the whole pipeline:
+    # the pulls of the fitted width, position and P0 have a standard deviation in [0.8, 1.25]
+    # (issue 4 acceptance); this includes the refinement's own position sigmas.  Measured when
+    # written: 1.18 (width), 0.94 (position), 1.20 (P0); the same geometry with independent
+    # column errors gives 1.03 / 0.97 / 1.02, so the extra ~20 % comes from frame-coherent
+    # errors upstream of the descriptors (the column pulls themselves are 1.00).
+    a_px = 390.53 / PX
+    w_px, x0_px = 1.5 * a_px, 250.0
+
+    def shift(r):
+        return np.column_stack([2.0 * np.tanh((r[:, 1] - x0_px) / w_px), np.zeros(len(r))])
+
+    sites = perovskite(14, 10, a_xy_px=(a_px, 0.0), b_xy_px=(0.0, a_px), origin_px=(-5.0, -5.0),
+                       b_shift=shift)
+    pulls = {"width": [], "x": [], "p0": []}
+    for seed in range(50):
+        wall = analyze_frame(_frame(_render(sites, (360, 512), 100 + seed))).cells.summary()["wall"]
+        pulls["width"].append((wall["width"] - w_px * PX) / wall["sigma_width"])
+        pulls["x"].append((wall["x_pm"] - x0_px * PX) / wall["sigma_x0"])
+        pulls["p0"].append((wall["p0"] - 20.0) / wall["sigma_p0"])
+    for name, values in pulls.items():
+        assert 0.8 < np.std(values) < 1.25, (name, np.std(values))
