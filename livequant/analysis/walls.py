@@ -13,9 +13,11 @@ correlation length ``xi = w / sqrt(2)``, and the -0.8 P0 -> +0.8 P0 distance
 ``2 atanh(0.8) w = 2.197 w`` that a reader measuring by eye would quote.
 
 :func:`find_wall` looks for one straight wall in a per-cell displacement map:
-it takes the displacement component along the dominant polar axis, sets the
-wall normal from the centroids of the two signs, and fits the profile along
-that normal.  Several walls in one frame give a poor fit, which the reduced
+it takes the displacement component along the dominant polar axis and fits
+the tanh profile in 2D with the wall's position, width, amplitude and
+orientation free.  Parameter sigmas follow from the column sigmas, including
+the correlation between neighbouring cells that share A corners.  Several
+walls in one frame (or a vortex texture) give a poor fit, which the reduced
 chi-square reports.
 """
 
@@ -75,8 +77,9 @@ class WallFit:
 
     ``reduced_chi2`` is about 1 for a good fit with honest sigmas.  The
     direction fields are set by :func:`find_wall` only: ``axis_deg`` is the
-    polar axis whose component reverses, ``normal_deg`` the wall normal, both
-    ``atan2(y, x)``; ``x_pm, y_pm`` a point on the wall.
+    polar axis whose component reverses, ``normal_deg`` (with
+    ``sigma_normal_deg``) the wall normal, both ``atan2(y, x)``;
+    ``x_pm, y_pm`` a point on the wall.
     """
 
     x0: float
@@ -103,8 +106,13 @@ class WallFit:
         return WIDTH_80_FACTOR * self.width
 
     def to_json(self) -> dict:
-        out = {k: (None if v is None else (v if isinstance(v, str) else float(v)))
-               for k, v in asdict(self).items()}
+        def clean(v):
+            if v is None or isinstance(v, str):
+                return v
+            v = float(v)
+            return v if np.isfinite(v) else None  # strict JSON has no NaN
+
+        out = {k: clean(v) for k, v in asdict(self).items()}
         out["n_points"] = int(self.n_points)
         out["correlation_length"] = float(self.correlation_length)
         out["width_80"] = float(self.width_80)
