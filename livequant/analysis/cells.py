@@ -184,7 +184,10 @@ def compute_cells(columns: Columns, lattice: Lattice, *, pixel_size_pm: float, m
     columns : Columns
         Refined columns with sublattice labels and cell indices.
     lattice : Lattice
-        The frame's basis (sets the handedness and the GPA reflections).
+        The frame's lattice.  The descriptors (GPA reflections and the
+        handedness of the winding loops included) use the local basis of the
+        indexed cells instead, so they follow the ``(i, j)`` axes even if the
+        lattice was reported in another, equivalent basis.
     pixel_size_pm : float
         Calibrated pixel size.
     material : MaterialConstants or object with its attributes, optional
@@ -294,6 +297,8 @@ def compute_cells(columns: Columns, lattice: Lattice, *, pixel_size_pm: float, m
             mode, cell_mask = "region", _cell_mask_from_region(reference, centre_px)
         ref_xy, ref_desc = reference_basis(loc, reference=mode, pixel_size_pm=px, material=mat,
                                            cell_mask=cell_mask)
+        median_xy, _ = reference_basis(loc, reference="median")
+        frame_basis_px = median_xy.T[:, ::-1]  # rows a, b as (d_row, d_col)
         st = strain_from_corners(a4, sa4, ref_xy)
         for name in strain_names:
             values[name] = getattr(st, name)
@@ -318,7 +323,9 @@ def compute_cells(columns: Columns, lattice: Lattice, *, pixel_size_pm: float, m
         gpa_info["reason"] = "no reference lattice"
     else:
         try:
-            g = gpa_strain(image, lattice.basis_px, reference_xy_px=ref_xy,
+            # Reflections from the frame's own median cell along the (i, j) axes, so that
+            # (1, 0) and (0, 1) are the duals of the same vectors the reference describes.
+            g = gpa_strain(image, frame_basis_px, reference_xy_px=ref_xy,
                            mask_sigma_fraction=gpa_mask_sigma_fraction)
         except ValueError as exc:
             gpa_info["reason"] = str(exc)
@@ -382,7 +389,8 @@ def compute_cells(columns: Columns, lattice: Lattice, *, pixel_size_pm: float, m
                                                       f" > {max_wall_chi2}: not one straight "
                                                       "tanh wall"}
             wall_info = None
-    topo_info = _topology(ii, jj, x_pm, y_pm, values, lattice, box, plaquette, min_snr_topology)
+    topo_info = _topology(ii, jj, x_pm, y_pm, values, frame_basis_px if n else np.eye(2)[::-1],
+                          box, plaquette, min_snr_topology)
 
     frozen = {k: readonly(values[k], float) for k in VALUE_FIELDS}
     info = {"pixel_size_pm": px, "material": None if mat is None else mat.name,
@@ -395,7 +403,7 @@ def compute_cells(columns: Columns, lattice: Lattice, *, pixel_size_pm: float, m
                  y_pm=readonly(y_pm, float), values=frozen, info=info)
 
 
-def _topology(ii, jj, x_pm, y_pm, values, lattice, box, plaquette, min_snr) -> dict:
+def _topology(ii, jj, x_pm, y_pm, values, basis_px, box, plaquette, min_snr) -> dict:
     """Winding numbers of the displacement field on the cell grid, and its cores."""
     shape = plaquette.shape
     gi, gj = ii - box[0], jj - box[1]
@@ -408,7 +416,7 @@ def _topology(ii, jj, x_pm, y_pm, values, lattice, box, plaquette, min_snr) -> d
     with np.errstate(invalid="ignore", divide="ignore"):
         snr = values["d_pm"] / values["sigma_d_pm"]
     valid = dense(np.where(np.isfinite(snr) & (snr >= min_snr), 1.0, 0.0)) == 1.0
-    a, b = lattice.basis_px  # (d_row, d_col): handedness in the (x, y) = (col, row) frame
+    a, b = basis_px  # rows (d_row, d_col) along i and j: handedness in the (x, y) frame
     cross = a[1] * b[0] - a[0] * b[1]
     handedness = 1 if cross >= 0 else -1
     w, cores = find_cores(dense(x_pm), dense(y_pm), dense(values["dx_pm"]),

@@ -108,3 +108,23 @@ def test_gpa_input_errors():
         gpa_strain(np.zeros((64, 64)), basis, mask_sigma_fraction=0.6)
     with pytest.raises(ValueError, match="Nyquist"):
         gpa_strain(np.zeros((64, 64)), np.array([[0.0, 1.5], [1.5, 0.0]]))
+
+
+def test_gpa_follows_the_cell_axes_not_the_reported_basis():
+    # An equivalent lattice basis (a + b, b) must not change the per-cell GPA strain: the
+    # reflections are taken from the indexed cells, the same axes the reference describes.
+    x0 = SIZE / 2
+
+    def field(r):
+        return np.column_stack([np.zeros(len(r)), 0.004 * (r[:, 1] - x0)])
+
+    sites, img = _frame((A_STO, 0.0), (0.0, A_STO), field=field, rng=np.random.default_rng(9))
+    cols = make_columns(sites)
+    plain = lattice_for((A_STO, 0), (0, A_STO), (-20, -20))
+    skew = lattice_for((A_STO, A_STO), (0, A_STO), (-20, -20))
+    c1 = compute_cells(cols, plain, pixel_size_pm=PX, image=img)
+    c2 = compute_cells(cols, skew, pixel_size_pm=PX, image=img)
+    ok = np.isfinite(c1.gpa_exx)
+    assert ok.sum() > 30
+    np.testing.assert_allclose(c2.gpa_exx, c1.gpa_exx, atol=1e-9, equal_nan=True)
+    assert abs(np.median(c1.gpa_exx[ok] - c1.exx[ok])) < 5e-4
