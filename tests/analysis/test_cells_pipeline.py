@@ -184,3 +184,21 @@ def test_wall_fit_sigmas_are_calibrated_over_renders():
         pulls["p0"].append((wall["p0"] - 20.0) / wall["sigma_p0"])
     for name, values in pulls.items():
         assert 0.8 < np.std(values) < 1.25, (name, np.std(values))
+
+
+def test_pto_polarization_through_the_pipeline():
+    # Check 3 end to end: a rendered tetragonal PbTiO3 frame (a = 389.87, c = 413.80 pm, Bull.
+    # Mater. Sci. 34, 1495 (2011)) with Ti shifted 25 pm along x, material from the table:
+    # P = -16.022 x 6.71 x 0.25 / 62.90 = -0.427 C/m^2 (tetragonal Z*, Zhong et al. 1994; the
+    # minus sign: Ti against the Pb cage is antiparallel to P), c/a = 1.0614.
+    f = perovskite_frame((384, 384), a_pm=389.87, c_pm=413.80, pixel_size_pm=PX,
+                         rotation_deg=4.0, b_shift_pm=(0.0, 25.0), seed=2)
+    settings = Settings.model_validate({"analysis": {"material": "PbTiO3",
+                                                     "cells": {"reference": "material"}}})
+    c = analyze_frame(_frame(f.pixels), settings).cells
+    expected = -16.022 * 6.71 * 0.25 / 62.90
+    # The shift is along the image x axis; the lattice is turned by 4 deg but u is not.
+    assert np.median(c.pol_x_C_per_m2) == pytest.approx(expected, rel=0.02)
+    assert abs(np.median(c.pol_y_C_per_m2)) < 0.01
+    assert np.median(c.c_over_a) == pytest.approx(1.0614, abs=0.002)
+    assert abs(np.median(c.exx)) < 1e-3 and abs(np.median(c.eyy)) < 1e-3
