@@ -45,6 +45,8 @@ DESCRIPTORS: tuple[tuple[str, bool, str], ...] = (
     ("dy_pm", True, "same, y (image rows, pointing down) (pm)"),
     ("d_pm", True, "magnitude of the B-site displacement (pm)"),
     ("d_angle_deg", True, "direction of the B-site displacement, atan2(dy, dx) (deg)"),
+    ("d_a_pm", True, "B-site displacement along the cell's own a axis (pm)"),
+    ("d_b_pm", True, "B-site displacement along the cell's own b axis (pm)"),
     ("pol_x_C_per_m2", True, "polarization estimate, x: " + POLARIZATION_LABEL + " (C/m^2)"),
     ("pol_y_C_per_m2", True, "polarization estimate, y (C/m^2)"),
     ("a_pm", True, "local lattice parameter along a (pm)"),
@@ -287,6 +289,16 @@ def compute_cells(columns: Columns, lattice: Lattice, *, pixel_size_pm: float, m
     for name in ("a_pm", "b_pm", "b_over_a", "c_over_a"):
         values[name] = getattr(loc, name)
         values["sigma_" + name] = getattr(loc, "sigma_" + name)
+    # Displacement on the crystal axes: a rotated frame then still reads "along c" directly.
+    # The sigma is that of the projection (the axis direction is known to ~sigma/a, which
+    # changes the projection only in second order for shifts much smaller than a cell).
+    d_xy = np.column_stack([disp.dx_pm, disp.dy_pm])
+    var_xy = np.column_stack([disp.sigma_dx_pm, disp.sigma_dy_pm]) ** 2
+    for name, vec in (("d_a_pm", loc.a_xy_px), ("d_b_pm", loc.b_xy_px)):
+        with np.errstate(invalid="ignore", divide="ignore"):
+            unit = vec / np.hypot(*vec.T)[:, None]
+        values[name] = np.sum(d_xy * unit, axis=1)
+        values["sigma_" + name] = np.sqrt(np.sum(var_xy * unit**2, axis=1))
     strain_names = ("exx", "eyy", "exy", "rotation_deg")
     ref_xy = None
     ref_info: dict[str, Any] = {}
@@ -366,7 +378,6 @@ def compute_cells(columns: Columns, lattice: Lattice, *, pixel_size_pm: float, m
 
     # Frame-level findings: one domain wall, topological cores.
     x_pm, y_pm = centre_px[:, 1] * px, centre_px[:, 0] * px
-    d_xy = np.column_stack([values["dx_pm"], values["dy_pm"]])
     sd_xy = np.column_stack([values["sigma_dx_pm"], values["sigma_dy_pm"]])
     wall = None
     if n:

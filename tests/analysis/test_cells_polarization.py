@@ -197,3 +197,20 @@ def test_bifeo3_projected_fe_shift_check_7():
     # The table records P antiparallel to that shift, and no Born charges (not charge neutral).
     bfo = load_materials()["BiFeO3"]
     assert bfo.p_sign_b_vs_a == -1 and bfo.born_b is None
+
+
+def test_displacement_on_the_crystal_axes_of_a_rotated_frame():
+    # Lattice turned by 30 deg, Ti shifted 25 pm along the c (= b) axis: d_b = 25, d_a = 0,
+    # whatever the image axes.
+    th = np.radians(30.0)
+    a_px, c_px = 389.87 / PX, 413.80 / PX
+    ua, ub = np.array([np.cos(th), np.sin(th)]), np.array([-np.sin(th), np.cos(th)])
+    shift_xy = 25.0 / PX * ub
+    sites = perovskite(7, 7, a_xy_px=tuple(a_px * ua), b_xy_px=tuple(c_px * ub),
+                       origin_px=(60.0, 200.0),
+                       b_shift=lambda r: np.tile(shift_xy[::-1], (len(r), 1)))
+    cells = compute_cells(make_columns(sites), lattice_for(tuple(a_px * ua), tuple(c_px * ub)),
+                          pixel_size_pm=PX)
+    np.testing.assert_allclose(cells.d_b_pm, 25.0, atol=1e-9)
+    np.testing.assert_allclose(cells.d_a_pm, 0.0, atol=1e-9)
+    np.testing.assert_allclose(cells.sigma_d_a_pm, cells.sigma_dx_pm, rtol=1e-9)  # isotropic
