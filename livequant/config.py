@@ -90,12 +90,23 @@ class CalibrationSettings(_Model):
     axis: Literal["a", "c", "mean"] = "mean"
 
 
+class CellsSettings(_Model):
+    """Per-cell descriptors (livequant.analysis.cells)."""
+
+    reference: Literal["median", "material"] = "median"
+    gpa: bool = True
+    gpa_mask_sigma_fraction: float = Field(default=0.2, gt=0, le=0.35)
+    min_snr_topology: float = Field(default=3.0, ge=0)
+    max_wall_chi2: float = Field(default=5.0, gt=0)
+
+
 class AnalysisSettings(_Model):
     lattice: LatticeSettings = LatticeSettings()
     detection: DetectionSettings = DetectionSettings()
     refine: RefineSettings = RefineSettings()
     sublattice: SublatticeSettings = SublatticeSettings()
     calibration: CalibrationSettings = CalibrationSettings()
+    cells: CellsSettings = CellsSettings()
     material: str | None = None
 
 

@@ -14,6 +14,8 @@ from typing import Any
 import numpy as np
 
 from livequant.analysis.calibration import check_calibration
+from livequant.analysis.cells import compute_cells
+from livequant.analysis.polarization import MaterialConstants
 from livequant.analysis.columns import detect_columns
 from livequant.analysis.lattice import NoLatticeError, find_lattice, lattice_from_columns
 from livequant.analysis.refine import refine_columns
@@ -220,7 +222,27 @@ def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult
             material=ref.name,
         )
     timings["lattice_refine"] = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    cells, cells_message = None, ""
+    try:
+        cells = compute_cells(
+            columns,
+            lattice,
+            pixel_size_pm=frame.meta.pixel_size_pm,
+            material=None if material is None else MaterialConstants.from_object(material),
+            reference=cfg.cells.reference,
+            image=image if cfg.cells.gpa else None,
+            detector=frame.meta.detector or "HAADF",
+            gpa_mask_sigma_fraction=cfg.cells.gpa_mask_sigma_fraction,
+            min_snr_topology=cfg.cells.min_snr_topology,
+            max_wall_chi2=cfg.cells.max_wall_chi2,
+        )
+    except ValueError as exc:  # e.g. reference="material" without a material: say so per frame
+        cells_message = f"no cell descriptors: {exc}"
+    timings["cells"] = time.perf_counter() - t0
     timings["total"] = float(sum(timings.values()))
-    return FrameResult(**base, status=STATUS_OK, lattice=lattice, columns=columns,
+    return FrameResult(**base, status=STATUS_OK, lattice=lattice, columns=columns, cells=cells,
                        calibration=calibration, timings_s=timings,
-                       message="; ".join(m for m in (sites.message, columns.message) if m))
+                       message="; ".join(m for m in (sites.message, columns.message,
+                                                     cells_message) if m))
