@@ -232,7 +232,9 @@ def _wall_jacobian(r, centre, params):
     s = dx * np.cos(theta) + dy * np.sin(theta)
     t = -dx * np.sin(theta) + dy * np.cos(theta)    # coordinate along the wall
     z = (s - x0) / w
-    sech2 = 1.0 / np.cosh(z) ** 2
+    # sech^2 z = 4 e^{-2|z|} / (1 + e^{-2|z|})^2: no overflow far from the wall
+    e = np.exp(-2.0 * np.abs(z))
+    sech2 = 4.0 * e / (1.0 + e) ** 2
     return np.column_stack([np.tanh(z), -p0 * sech2 / w, -p0 * sech2 * z / w,
                             p0 * sech2 * t / w])
 
