@@ -7,7 +7,6 @@ place, so a reader never sees half a file and a crash never leaves one.
 from __future__ import annotations
 
 import csv
-import io
 import os
 from pathlib import Path
 
@@ -32,32 +31,38 @@ def write_text_atomic(path: str | os.PathLike, text: str) -> None:
     os.replace(tmp, path)
 
 
-def columns_rows(result) -> list[dict]:
-    """One dict per column with the DESIGN.md fields (x = column axis, y = row axis)."""
+def _column_table(result) -> list[list[str]]:
+    """The DESIGN.md columns of ``columns.csv`` as lists of text, one list per field."""
     cols = result.columns
     if cols is None or len(cols) == 0:
-        return []
+        return [[] for _ in COLUMN_FIELDS]
     px = result.pixel_size_pm
     pos, sig = cols.positions_px, cols.sigma_positions_px
     width_pm = np.sqrt(cols.width_px[:, 0] * cols.width_px[:, 1]) * px
-    rows = []
-    for k in range(len(cols)):
-        rows.append({
-            "x_px": f"{pos[k, 1]:.4f}", "y_px": f"{pos[k, 0]:.4f}",
-            "x_pm": f"{pos[k, 1] * px:.3f}", "y_pm": f"{pos[k, 0] * px:.3f}",
-            "sigma_x_pm": f"{sig[k, 1] * px:.4f}", "sigma_y_pm": f"{sig[k, 0] * px:.4f}",
-            "amplitude": f"{cols.amplitude[k]:.6g}", "width_pm": f"{width_pm[k]:.3f}",
-            "sublattice": str(cols.sublattice[k]), "i": int(cols.ij[k, 0]), "j": int(cols.ij[k, 1]),
-        })
-    return rows
+
+    def fmt(spec, values):
+        return [spec % v for v in values.tolist()]
+
+    # x is the column axis, y the row axis (DESIGN.md); %-formatting over lists is
+    # several times faster than csv.DictWriter over one dict per column
+    return [fmt("%.4f", pos[:, 1]), fmt("%.4f", pos[:, 0]),
+            fmt("%.3f", pos[:, 1] * px), fmt("%.3f", pos[:, 0] * px),
+            fmt("%.4f", sig[:, 1] * px), fmt("%.4f", sig[:, 0] * px),
+            fmt("%.6g", cols.amplitude), fmt("%.3f", width_pm),
+            [str(v) for v in cols.sublattice.tolist()],
+            [str(v) for v in cols.ij[:, 0].tolist()], [str(v) for v in cols.ij[:, 1].tolist()]]
 
 
-def _csv_text(fieldnames, rows) -> str:
-    buf = io.StringIO()
-    writer = csv.DictWriter(buf, fieldnames=list(fieldnames), lineterminator="\n")
-    writer.writeheader()
-    writer.writerows(rows)
-    return buf.getvalue()
+def columns_rows(result) -> list[dict]:
+    """One dict per column with the DESIGN.md fields (x = column axis, y = row axis)."""
+    return [dict(zip(COLUMN_FIELDS, row)) for row in zip(*_column_table(result))]
+
+
+def _csv_text(fieldnames, table_columns) -> str:
+    """CSV text from a header and one list of already formatted text per field."""
+    lines = [",".join(fieldnames)]
+    lines += [",".join(row) for row in zip(*table_columns)]
+    return "\n".join(lines) + "\n"
 
 
 def write_frame_outputs(result, frames_dir: str | os.PathLike) -> Path:
@@ -67,10 +72,13 @@ def write_frame_outputs(result, frames_dir: str | os.PathLike) -> Path:
     """
     folder = Path(frames_dir) / result.frame_id
     folder.mkdir(parents=True, exist_ok=True)
-    write_text_atomic(folder / "columns.csv", _csv_text(COLUMN_FIELDS, columns_rows(result)))
+    write_text_atomic(folder / "columns.csv", _csv_text(COLUMN_FIELDS, _column_table(result)))
     cells = result.cells
     if cells is not None:
-        write_text_atomic(folder / "cells.csv", _csv_text(cells.csv_fields(), cells.csv_rows()))
+        fields = cells.csv_fields()
+        rows = cells.csv_rows()
+        table = [[str(r[f]) for r in rows] for f in fields]
+        write_text_atomic(folder / "cells.csv", _csv_text(fields, table))
     write_json_atomic(folder / "summary.json", result.summary())
     return folder
 
