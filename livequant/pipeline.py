@@ -19,13 +19,16 @@ from livequant.analysis.lattice import NoLatticeError, find_lattice, lattice_fro
 from livequant.analysis.refine import refine_columns
 from livequant.analysis.sublattice import assign_sites
 from livequant.analysis.types import Columns, Lattice
-from livequant.config import Settings
+from livequant.config import Settings, get_material
 from livequant.frames import Frame, FrameMeta
 
 __all__ = ["FrameResult", "analyze_frame", "STATUS_OK", "STATUS_NO_LATTICE"]
 
 STATUS_OK = "ok"
 STATUS_NO_LATTICE = "no-lattice"
+
+#: Detectors whose columns are dark on a bright background.
+INVERTED_DETECTORS = ("ABF", "BF", "IBF")
 
 
 @dataclass(frozen=True)
@@ -157,6 +160,8 @@ def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult
         return FrameResult(**base, status=STATUS_NO_LATTICE, message=str(exc), timings_s=timings)
     timings["lattice"] = time.perf_counter() - t0
 
+    inverted = (frame.meta.detector or "").upper() in INVERTED_DETECTORS
+    material = get_material(cfg.material) if cfg.material else None
     t0 = time.perf_counter()
     candidates = detect_columns(
         image,
@@ -164,19 +169,25 @@ def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult
         min_distance_fraction=cfg.detection.min_distance_fraction,
         min_prominence_sigma=cfg.detection.min_prominence_sigma,
         border_fraction=cfg.detection.border_fraction,
+        inverted=inverted,
     )
     timings["detect"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()
+    keep_oxygen = cfg.sublattice.oxygen == "always" or (cfg.sublattice.oxygen == "auto" and inverted)
     sites = assign_sites(
-        image,
         candidates,
         fft_lattice,
         projection=cfg.sublattice.projection,
-        oxygen=cfg.sublattice.oxygen,
-        detector=frame.meta.detector,
+        keep_oxygen=keep_oxygen,
+        a_is_brighter=True if material is None else material.z_a >= material.z_b,
     )
     timings["sublattice"] = time.perf_counter() - t0
+    if len(sites) == 0:
+        timings["total"] = float(sum(timings.values()))
+        return FrameResult(**base, status=STATUS_NO_LATTICE, lattice=fft_lattice,
+                           message="a periodic pattern was found but no indexable columns "
+                                   f"({sites.message})", timings_s=timings)
 
     t0 = time.perf_counter()
     columns = refine_columns(
@@ -192,7 +203,6 @@ def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult
         joint_neighbours=cfg.refine.joint_neighbours,
         weighting=cfg.refine.weighting,
         gain=cfg.refine.gain_counts_per_electron,
-        invert=sites.inverted,
     )
     timings["refine"] = time.perf_counter() - t0
 
@@ -200,14 +210,17 @@ def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult
     lattice = lattice_from_columns(columns, fallback=fft_lattice)
     calibration = None
     if cfg.calibration.reference_material:
+        ref = get_material(cfg.calibration.reference_material)
         calibration = check_calibration(
             lattice,
             pixel_size_pm=frame.meta.pixel_size_pm,
-            material=cfg.calibration.reference_material,
+            reference_a_pm=ref.a_pm,
+            reference_c_pm=ref.c_pm,
             axis=cfg.calibration.axis,
+            material=ref.name,
         )
     timings["lattice_refine"] = time.perf_counter() - t0
     timings["total"] = float(sum(timings.values()))
     return FrameResult(**base, status=STATUS_OK, lattice=lattice, columns=columns,
                        calibration=calibration, timings_s=timings,
-                       message=columns.message)
+                       message="; ".join(m for m in (sites.message, columns.message) if m))
