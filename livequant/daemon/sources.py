@@ -273,7 +273,7 @@ class SocketSource:
     """Receive frames on a ZeroMQ PULL socket and save each into ``incoming``.
 
     A frame message (DESIGN.md) is decoded, its metadata resolved, and the
-    frame written to ``incoming/FRAME_ID.npy`` with its sidecar before it is
+    frame written to ``incoming/FRAME_ID.tif`` with its sidecar before it is
     queued, so a received frame survives any crash.  Messages that are not
     valid frames are rejected with a logged reason and counted; the daemon
     keeps running.  A frame whose id is already in ``incoming`` is rejected
@@ -353,7 +353,7 @@ class SocketSource:
                 raise FrameError(f"frame message: `frame_id` {frame_id!r} cannot name a file; "
                                  "use letters, digits, '.', '_' and '-' (at most 128)",
                                  reason="bad-frame-id")
-            target = self.incoming / f"{frame_id}.npy"
+            target = self.incoming / f"{frame_id}.tif"
             if target.exists():
                 raise FrameError(f"frame message: frame id {frame_id!r} was already received "
                                  f"({target}); give each frame its own id",
@@ -368,7 +368,7 @@ class SocketSource:
                              where=f"frame message {frame_id}")
             except FrameError as exc:
                 log.warning("%s (saved; it will be quarantined)", exc)
-            path = write_frame(self.incoming, frame_id, pixels, meta, fmt="npy")
+            path = write_frame(self.incoming, frame_id, pixels, meta, fmt="tif")
         except FrameError as exc:
             self.n_rejected += 1
             log.warning("ingest socket: rejected a message: %s", exc)

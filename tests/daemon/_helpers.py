@@ -46,12 +46,13 @@ def sidecar(frame_id: str, **extra) -> dict:
             "detector": "HAADF", **extra}
 
 
-def fast_settings(**daemon_overrides) -> Settings:
+def fast_settings(*, frame_defaults: dict | None = None, **daemon_overrides) -> Settings:
     """Fast settings: one worker, any free ports, short settle and heartbeat times."""
     daemon = dict(ingest_port=0, events_port=0, commands_port=0, settle_time_s=0.6,
                   rescan_interval_s=0.2, heartbeat_s=1.0, grace_s=60.0, tick_s=0.05)
     daemon.update(daemon_overrides)
-    return Settings.model_validate({"workers": 1, "daemon": daemon})
+    return Settings.model_validate({"workers": 1, "daemon": daemon,
+                                    "frame_defaults": frame_defaults or {}})
 
 
 def wait_for(condition, *, timeout_s=60.0, poll_s=0.05, what="condition"):
@@ -117,3 +118,35 @@ def plain_analyze(frame, settings):
     if extra.get("raise"):
         raise RuntimeError("analysis bug on purpose")
     return _PlainResult(frame.frame_id, float(np.mean(frame.pixels)))
+
+
+def cli_argv() -> list[str]:
+    """The command line that starts ``livequant`` in a subprocess.
+
+    ``python -m livequant`` once every sub-command module on the list exists;
+    until then a launcher with only the daemon's sub-commands (same code path
+    from argument parsing on).
+    """
+    import importlib.util
+    import sys
+
+    from livequant.cli import COMMAND_MODULES
+
+    if all(importlib.util.find_spec(m) is not None for m in COMMAND_MODULES):
+        return [sys.executable, "-m", "livequant", "-v"]
+    launcher = ("import argparse, logging, sys\n"
+                "from livequant.commands import run, status\n"
+                "logging.basicConfig(level=logging.INFO, stream=sys.stderr)\n"
+                "p = argparse.ArgumentParser(prog='livequant')\n"
+                "sub = p.add_subparsers()\n"
+                "run.register(sub); status.register(sub)\n"
+                "a = p.parse_args(sys.argv[1:])\n"
+                "sys.exit(a.func(a))\n")
+    return [sys.executable, "-c", launcher]
+
+
+def frame_events_by_id(session) -> dict[str, int]:
+    counts: dict[str, int] = {}
+    for e in read_events(session, "frame"):
+        counts[e["data"]["frame_id"]] = counts.get(e["data"]["frame_id"], 0) + 1
+    return counts
