@@ -321,9 +321,10 @@ def test_sigkill_mid_burst_loses_nothing_and_does_nothing_twice(tmp_path):
     watch.mkdir()
     proc = _start_cli_daemon(tmp_path)
     try:
+        burst = [lattice_image((384, 384), seed=k) for k in range(8)]
         wait_for(lambda: (tmp_path / "session" / "daemon.json").exists(), what="daemon up")
-        for k in range(8):
-            write_frame(watch, f"burst{k}", lattice_image((384, 384), seed=k), sidecar(f"burst{k}"))
+        for k, pixels in enumerate(burst):
+            write_frame(watch, f"burst{k}", pixels, sidecar(f"burst{k}"))
         wait_for(lambda: _ledger_counts(tmp_path / "session").get("done", 0) >= 2,
                  what="two frames done")
         os.killpg(proc.pid, signal.SIGKILL)
@@ -334,7 +335,7 @@ def test_sigkill_mid_burst_loses_nothing_and_does_nothing_twice(tmp_path):
             proc.wait(30)
     before = _ledger_counts(tmp_path / "session")
     assert before["done"] < 8, "the kill came too late to test anything"
-    assert before["processing"] >= 1, "nothing was in flight at the kill"
+    assert before["processing"] >= 1, f"nothing was in flight at the kill: {before}"
     assert (tmp_path / "session" / "daemon.json").exists()  # stale: nobody removed it
     d = Daemon(fast_settings(), session=tmp_path / "session", watch=watch)
     with running_daemon(d):
