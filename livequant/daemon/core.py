@@ -389,8 +389,10 @@ class Daemon:
         if out.state == "done":
             self._one_at_a_time = False
             t = out.timings_s
-            self.ledger.finish(seq, frame_id=out.frame_id, read_s=t.get("read"),
-                               analyze_s=t.get("analyze"), write_s=t.get("write"))
+            if not self.ledger.finish(seq, frame_id=out.frame_id, read_s=t.get("read"),
+                                      analyze_s=t.get("analyze"), write_s=t.get("write")):
+                log.info("%s changed while it was analysed; queued again", out.path)
+                return
             row = self.ledger.row(seq)
             latency = None if row is None else time.time() - row.complete_at
             summary = dict(out.summary or {})
@@ -405,8 +407,10 @@ class Daemon:
                            f"{summary.get('message', '')}")
         else:
             self._one_at_a_time = False
-            self.ledger.quarantine(seq, reason=out.reason or "unknown", message=out.message or "",
-                                   frame_id=out.frame_id)
+            if not self.ledger.quarantine(seq, reason=out.reason or "unknown",
+                                          message=out.message or "", frame_id=out.frame_id):
+                log.info("%s changed while it was analysed; queued again", out.path)
+                return
             self._warn(f"quarantined {Path(out.path).name}: {out.reason}")
             log.warning("quarantined %s: %s", out.path, out.message)
             self.publisher.publish("status", {"event": "quarantined", "path": out.path,

@@ -41,6 +41,7 @@ flags, proposals, decisions
 
 from __future__ import annotations
 
+import contextlib
 import json
 import sqlite3
 import threading
@@ -53,6 +54,7 @@ __all__ = ["Ledger", "LedgerRow", "STATES", "SCHEMA_VERSION", "LEDGER_NAME", "Re
 
 LEDGER_NAME = "ledger.sqlite"
 SCHEMA_VERSION = 1
+_CHANGED = "changed-while-processing"  # transient `reason` of a processing frame
 STATES = ("queued", "processing", "done", "quarantined")
 
 _SCHEMA = """
@@ -203,16 +205,22 @@ class Ledger:
     def __exit__(self, *exc) -> None:
         self.close()
 
-    def _tx(self, sql_params: list[tuple[str, tuple]]) -> None:
+    @contextlib.contextmanager
+    def _transaction(self):
+        """One write transaction under the lock (BEGIN IMMEDIATE: take the write lock now)."""
         with self._lock:
             self._db.execute("BEGIN IMMEDIATE")
             try:
-                for sql, params in sql_params:
-                    self._db.execute(sql, params)
+                yield self._db
             except BaseException:
                 self._db.execute("ROLLBACK")
                 raise
             self._db.execute("COMMIT")
+
+    def _tx(self, sql_params: list[tuple[str, tuple]]) -> None:
+        with self._transaction() as db:
+            for sql, params in sql_params:
+                db.execute(sql, params)
 
     def _one(self, sql: str, params: tuple = ()) -> tuple | None:
         with self._lock:
@@ -235,17 +243,9 @@ class Ledger:
     def register(self, path: str, *, origin: str, sha256: str, sidecar_sha256: str | None,
                  size_bytes: int, mtime_ns: int, complete_at: float) -> Registration:
         """Record a frame found complete; queue it unless its content is already known."""
-        now = time.time()
-        with self._lock:
-            self._db.execute("BEGIN IMMEDIATE")
-            try:
-                reg = self._register_locked(path, origin, sha256, sidecar_sha256, size_bytes,
-                                            mtime_ns, complete_at, now)
-            except BaseException:
-                self._db.execute("ROLLBACK")
-                raise
-            self._db.execute("COMMIT")
-        return reg
+        with self._transaction():
+            return self._register_locked(path, origin, sha256, sidecar_sha256, size_bytes,
+                                         mtime_ns, complete_at, time.time())
 
     def _register_locked(self, path, origin, sha256, sidecar_sha256, size_bytes, mtime_ns,
                          complete_at, now) -> Registration:
@@ -261,11 +261,13 @@ class Ledger:
                            (size_bytes, mtime_ns, seq))
                 return Registration("unchanged", seq)
             if state in ("queued", "processing"):
-                # Not analysed yet (or being analysed): the worker reads the file again
-                # when it runs, so record the new content and keep its place in the queue.
+                # Not analysed yet: the worker reads the file when it runs, so record the
+                # new content and keep the frame's place in the queue.  Being analysed:
+                # the worker may have read the old content, so `finish` queues it again.
                 db.execute("UPDATE frames SET sha256=?, sidecar_sha256=?, size_bytes=?, "
-                           "mtime_ns=?, version=version+1 WHERE seq=?",
-                           (sha256, sidecar_sha256, size_bytes, mtime_ns, seq))
+                           "mtime_ns=?, version=version+1, reason=? WHERE seq=?",
+                           (sha256, sidecar_sha256, size_bytes, mtime_ns,
+                            _CHANGED if state == "processing" else None, seq))
                 return Registration("unchanged", seq)
             db.execute(
                 "UPDATE frames SET sha256=?, sidecar_sha256=?, size_bytes=?, mtime_ns=?, "
@@ -304,25 +306,18 @@ class Ledger:
         and always when nothing newer arrived, the oldest.  Returns
         ``(seq, path, origin)`` or None when the queue is empty.
         """
-        with self._lock:
-            db = self._db
-            db.execute("BEGIN IMMEDIATE")
-            try:
-                row = None
-                if newest_first:
-                    row = db.execute("SELECT seq, path, origin FROM frames WHERE state='queued' "
-                                     "AND seq>? ORDER BY seq DESC LIMIT 1",
-                                     (newer_than_seq,)).fetchone()
-                if row is None:
-                    row = db.execute("SELECT seq, path, origin FROM frames WHERE state='queued' "
-                                     "ORDER BY seq LIMIT 1").fetchone()
-                if row is not None:
-                    db.execute("UPDATE frames SET state='processing', attempts=attempts+1, "
-                               "started_at=? WHERE seq=?", (time.time(), row[0]))
-            except BaseException:
-                db.execute("ROLLBACK")
-                raise
-            db.execute("COMMIT")
+        with self._transaction() as db:
+            row = None
+            if newest_first:
+                row = db.execute("SELECT seq, path, origin FROM frames WHERE state='queued' "
+                                 "AND seq>? ORDER BY seq DESC LIMIT 1",
+                                 (newer_than_seq,)).fetchone()
+            if row is None:
+                row = db.execute("SELECT seq, path, origin FROM frames WHERE state='queued' "
+                                 "ORDER BY seq LIMIT 1").fetchone()
+            if row is not None:
+                db.execute("UPDATE frames SET state='processing', attempts=attempts+1, "
+                           "started_at=? WHERE seq=?", (time.time(), row[0]))
         return row
 
     def requeue(self, seq: int) -> None:
@@ -331,18 +326,39 @@ class Ledger:
                    "state='processing'", (seq,))])
 
     def finish(self, seq: int, *, frame_id: str, read_s: float | None = None,
-               analyze_s: float | None = None, write_s: float | None = None) -> None:
-        """Mark a frame ``done``.  Call only after its output files are in place."""
-        self._tx([("UPDATE frames SET state='done', frame_id=?, reason=NULL, message=NULL, "
-                   "done_count=done_count+1, finished_at=?, read_s=?, analyze_s=?, write_s=? "
-                   "WHERE seq=?", (frame_id, time.time(), read_s, analyze_s, write_s, seq))])
+               analyze_s: float | None = None, write_s: float | None = None) -> bool:
+        """Mark a frame ``done``.  Call only after its output files are in place.
+
+        Returns False, and queues the frame again instead, when its file changed
+        while it was being analysed (the result may describe the old content).
+        """
+        return self._close_out(
+            seq, "UPDATE frames SET state='done', frame_id=?, reason=NULL, message=NULL, "
+                 "done_count=done_count+1, finished_at=?, read_s=?, analyze_s=?, write_s=? "
+                 "WHERE seq=?", (frame_id, time.time(), read_s, analyze_s, write_s, seq))
 
     def quarantine(self, seq: int, *, reason: str, message: str,
-                   frame_id: str | None = None) -> None:
-        """Set a frame aside with a short `reason` tag and a readable `message`."""
-        self._tx([("UPDATE frames SET state='quarantined', reason=?, message=?, "
-                   "frame_id=COALESCE(?, frame_id), finished_at=? WHERE seq=?",
-                   (reason, message, frame_id, time.time(), seq))])
+                   frame_id: str | None = None) -> bool:
+        """Set a frame aside with a short `reason` tag and a readable `message`.
+
+        Like :meth:`finish`, returns False and queues the frame again when its file
+        changed while it was being analysed (a half-written file, since completed).
+        """
+        return self._close_out(
+            seq, "UPDATE frames SET state='quarantined', reason=?, message=?, "
+                 "frame_id=COALESCE(?, frame_id), finished_at=? WHERE seq=?",
+            (reason, message, frame_id, time.time(), seq))
+
+    def _close_out(self, seq: int, sql: str, params: tuple) -> bool:
+        with self._transaction() as db:
+            row = db.execute("SELECT reason FROM frames WHERE seq=?", (seq,)).fetchone()
+            stale = row is not None and row[0] == _CHANGED
+            if stale:
+                db.execute("UPDATE frames SET state='queued', reason=NULL, started_at=NULL "
+                           "WHERE seq=?", (seq,))
+            else:
+                db.execute(sql, params)
+        return not stale
 
     def mark_published(self, seq: int) -> None:
         self._tx([("UPDATE frames SET published_at=? WHERE seq=?", (time.time(), seq))])

@@ -129,3 +129,17 @@ def test_proposals_and_decisions(ledger):
         ledger.decide("nope", "accept")
     with pytest.raises(ValueError, match="`decision`"):
         ledger.decide("p1", "maybe")
+
+
+def test_change_during_processing_runs_again(ledger):
+    """1. a frame is claimed; 2. its file changes while the worker has it; 3. finishing
+    does not mark it done (the result may be of the old bytes) but queues it again."""
+    _reg(ledger, "/w/a.tif")
+    seq = ledger.claim(newest_first=False, newer_than_seq=0)[0]
+    assert _reg(ledger, "/w/a.tif", sha="c" * 64, size=20).action == "unchanged"
+    assert ledger.finish(seq, frame_id="a") is False
+    row = ledger.row(seq)
+    assert (row.state, row.done_count, row.reason) == ("queued", 0, None)
+    seq2 = ledger.claim(newest_first=False, newer_than_seq=0)[0]
+    assert seq2 == seq and ledger.finish(seq, frame_id="a") is True
+    assert ledger.row(seq).done_count == 1
