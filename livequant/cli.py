@@ -26,6 +26,8 @@ EXIT_BAD_INPUT = 2
 COMMAND_MODULES = (
     "livequant.commands.analyze",
     "livequant.commands.bench",
+    "livequant.commands.run",
+    "livequant.commands.status",
 )
 
 

@@ -110,12 +110,37 @@ class AnalysisSettings(_Model):
     material: str | None = None
 
 
+class DaemonSettings(_Model):
+    """The live daemon (``livequant run``): ingest, worker pool, sockets, display.
+
+    The number of analysis processes is the top-level ``workers`` key.
+    """
+
+    settle_time_s: float = Field(default=2.0, gt=0, le=3600)
+    rescan_interval_s: float = Field(default=1.0, gt=0, le=3600)
+    force_polling: bool = False
+    max_in_flight: int = Field(default=0, ge=0, le=256)
+    newest_first: bool = True
+    intake_queue_size: int = Field(default=256, ge=1, le=100_000)
+    host: str = "127.0.0.1"
+    ingest_socket: bool = True
+    ingest_port: int = Field(default=5601, ge=0, le=65535)
+    events_port: int = Field(default=5602, ge=0, le=65535)
+    commands_port: int = Field(default=5603, ge=0, le=65535)
+    tick_s: float = Field(default=0.1, gt=0, le=5)
+    heartbeat_s: float = Field(default=10.0, gt=0, le=3600)
+    refresh_per_second: float = Field(default=4.0, ge=0.5, le=10)
+    grace_s: float = Field(default=30.0, ge=0, le=3600)
+    max_attempts: int = Field(default=3, ge=1, le=100)
+
+
 class Settings(_Model):
     """Every setting of livequant, with its default."""
 
     frame_defaults: FrameDefaults = FrameDefaults()
     analysis: AnalysisSettings = AnalysisSettings()
     workers: int = Field(default=0, ge=0, le=64)
+    daemon: DaemonSettings = DaemonSettings()
 
 
 # ---------------------------------------------------------------- loading

@@ -1,0 +1,102 @@
+"""``livequant run``: the daemon beside an acquisition session."""
+
+from __future__ import annotations
+
+import logging
+import sys
+from pathlib import Path
+
+__all__ = ["register", "run_command"]
+
+log = logging.getLogger("livequant.run")
+
+DEFAULT_SESSION = "livequant-session"
+
+
+def register(subparsers) -> None:
+    p = subparsers.add_parser(
+        "run", help="analyse frames live from a folder and/or a socket",
+        description="Run the daemon: analyse every frame that lands in the watched folder or "
+                    "arrives on the ingest socket, exactly once, and publish the results. "
+                    "Ctrl+C (or SIGTERM) drains and stops; a second Ctrl+C stops at once.")
+    p.add_argument("--watch", metavar="DIR", help="folder the acquisition writes frames to "
+                   "(omit for socket ingest only)")
+    p.add_argument("--session", metavar="DIR", default=DEFAULT_SESSION,
+                   help=f"session folder for the ledger, events and outputs "
+                        f"(default ./{DEFAULT_SESSION}; created if missing; reusing one resumes)")
+    p.add_argument("--config", metavar="FILE", help="user TOML configuration")
+    p.add_argument("--workers", type=int, metavar="N",
+                   help="analysis processes (default: one per core)")
+    p.add_argument("--pixel-size", type=float, metavar="PM", dest="pixel_size_pm",
+                   help="pixel size for frames whose sidecar gives none, picometres")
+    p.add_argument("--settle-time", type=float, metavar="S", dest="settle_time_s",
+                   help="a frame without sidecar is complete once unchanged this long, seconds")
+    p.add_argument("--ingest-port", type=int, metavar="PORT",
+                   help="ZeroMQ PULL port for frames (0 = any free port)")
+    p.add_argument("--events-port", type=int, metavar="PORT",
+                   help="ZeroMQ PUB port for events (0 = any free port)")
+    p.add_argument("--commands-port", type=int, metavar="PORT",
+                   help="ZeroMQ REP port for commands (0 = any free port)")
+    p.add_argument("--no-ingest", action="store_true", help="do not open the ingest socket")
+    p.add_argument("--no-console", action="store_true",
+                   help="no live display: log one status line per heartbeat instead")
+    p.add_argument("--analyze", metavar="MODULE:FUNCTION", default=None,
+                   help="advanced: the per-frame analysis to run "
+                        "(default livequant.pipeline:analyze_frame)")
+    p.set_defaults(func=run_command)
+
+
+def run_command(args) -> int:
+    from livequant.cli import EXIT_BAD_INPUT
+    from livequant.config import ConfigError, load_settings
+    from livequant.daemon import Daemon, SetupError
+    from livequant.daemon.worker import DEFAULT_ANALYZE, resolve_callable
+
+    overrides = {
+        "workers": args.workers,
+        "frame_defaults.pixel_size_pm": args.pixel_size_pm,
+        "daemon.settle_time_s": args.settle_time_s,
+        "daemon.ingest_port": args.ingest_port,
+        "daemon.events_port": args.events_port,
+        "daemon.commands_port": args.commands_port,
+        "daemon.ingest_socket": False if args.no_ingest else None,
+    }
+    try:
+        settings = load_settings(args.config, overrides=overrides)
+    except ConfigError as exc:
+        print(f"livequant run: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    if args.watch is None and not settings.daemon.ingest_socket:
+        print("livequant run: nothing to listen to: give --watch DIR or enable the ingest "
+              "socket", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    analyze = args.analyze or DEFAULT_ANALYZE
+    try:
+        resolve_callable(analyze)  # fail now, not in every worker
+    except ValueError as exc:
+        print(f"livequant run: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+
+    use_console = not args.no_console and sys.stderr.isatty()
+    if not use_console:
+        logging.getLogger("livequant").setLevel(min(logging.getLogger().level, logging.INFO))
+    daemon = Daemon(settings, session=Path(args.session), watch=args.watch, analyze=analyze,
+                    log_heartbeat=not use_console)
+    display = None
+    if use_console:
+        from livequant.display import LiveDisplay
+
+        display = LiveDisplay(lambda: daemon.snapshot,
+                              refresh_per_second=settings.daemon.refresh_per_second)
+    try:
+        code = daemon.run(display=display)
+    except SetupError as exc:
+        print(f"livequant run: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    # Hand a captured signal back to the default behaviour (the exit status a
+    # supervisor expects from a process stopped by SIGTERM or Ctrl+C).
+    for sig in daemon.captured_signals[:1]:
+        import signal
+
+        signal.raise_signal(sig)
+    return code

@@ -1,0 +1,132 @@
+"""The status snapshot: what the display, the ``status`` command and heartbeats show.
+
+The main loop builds a new frozen :class:`Snapshot` every tick; readers on
+other threads (the display's refresh thread, the command server) only ever
+read the latest one, so no lock is needed and nobody sees a half-updated state.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import asdict, dataclass, field
+
+from livequant.daemon.ledger import Ledger
+
+__all__ = ["Snapshot", "LastFrame", "last_frame_from_summary", "snapshot_from_ledger"]
+
+
+@dataclass(frozen=True)
+class LastFrame:
+    """Key numbers of the most recent frame done."""
+
+    frame_id: str
+    status: str
+    n_columns: int
+    a_pm: float | None = None
+    b_pm: float | None = None
+    sigma_a_pm: float | None = None
+    angle_deg: float | None = None
+    mean_displacement_pm: float | None = None
+    median_sigma_position_pm: float | None = None
+    analyze_s: float | None = None
+    latency_s: float | None = None
+
+
+@dataclass(frozen=True)
+class Snapshot:
+    """One consistent view of the daemon.
+
+    Attributes
+    ----------
+    state : str
+        ``starting``, ``running``, ``paused``, ``draining``, ``stopped`` or
+        ``offline`` (built from the ledger alone, no daemon running).
+    counts : dict
+        Frames per ledger state (``queued``, ``processing``, ``done``,
+        ``quarantined``).
+    frames_per_s : float
+        Frames done per second over the recent window.
+    lag_s : float
+        Age of the oldest frame not yet done (0 when caught up): how far the
+        analysis runs behind the microscope.
+    settling : int
+        Files seen in the watched folder but not yet complete.
+    """
+
+    state: str
+    session: str
+    counts: dict
+    watch: str | None = None
+    uptime_s: float = 0.0
+    in_flight: int = 0
+    settling: int = 0
+    workers: int = 0
+    frames_per_s: float = 0.0
+    lag_s: float = 0.0
+    last: LastFrame | None = None
+    warnings: tuple[str, ...] = ()
+    endpoints: dict = field(default_factory=dict)
+    rejected_messages: int = 0
+    taken_at: float = field(default_factory=time.time)
+
+    @property
+    def total(self) -> int:
+        return sum(self.counts.values())
+
+    def as_dict(self) -> dict:
+        d = asdict(self)
+        d["total"] = self.total
+        return d
+
+
+def _num(value) -> float | None:
+    if isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value):
+        return float(value)
+    return None
+
+
+def _mean_displacement(cells: dict | None) -> float | None:
+    """The mean polar displacement from the cells' summary, whatever its exact key."""
+    if not isinstance(cells, dict):
+        return None
+    for key, value in cells.items():
+        k = key.lower()
+        if "displacement" in k and "mean" in k and "sigma" not in k and k.endswith("_pm"):
+            if _num(value) is not None:
+                return _num(value)
+            if isinstance(value, dict):
+                return _num(value.get("mean"))
+    for key, value in cells.items():
+        if "displacement" in key.lower() and isinstance(value, dict):
+            got = _num(value.get("mean_pm", value.get("mean")))
+            if got is not None:
+                return got
+    return None
+
+
+def last_frame_from_summary(summary: dict, *, latency_s: float | None = None) -> LastFrame:
+    lattice = summary.get("lattice") or {}
+    return LastFrame(
+        frame_id=str(summary.get("frame_id")),
+        status=str(summary.get("status")),
+        n_columns=int(summary.get("n_columns") or 0),
+        a_pm=_num(lattice.get("a_pm")),
+        b_pm=_num(lattice.get("b_pm")),
+        sigma_a_pm=_num(lattice.get("sigma_a_pm")),
+        angle_deg=_num(lattice.get("angle_deg")),
+        mean_displacement_pm=_mean_displacement(summary.get("cells")),
+        median_sigma_position_pm=_num(summary.get("median_sigma_position_pm")),
+        analyze_s=_num((summary.get("timings_s") or {}).get("total")),
+        latency_s=latency_s,
+    )
+
+
+def snapshot_from_ledger(ledger: Ledger, *, session: str) -> Snapshot:
+    """What can be said about a session with no daemon running: the ledger's counts."""
+    counts = ledger.counts()
+    warnings = tuple(f"{reason}: {message}" for _path, reason, message
+                     in ledger.recent_quarantined(5))
+    return Snapshot(state="offline", session=session, counts=counts, warnings=warnings,
+                    frames_per_s=0.0, lag_s=0.0)
+

@@ -1,0 +1,117 @@
+"""What a worker process does with one frame: read, analyse, write outputs.
+
+The daemon hands a worker only the path of a frame (not its pixels), so the
+main process never holds more than a message's worth of image data and the
+memory of the whole daemon stays bounded by a few frames whatever the
+backlog.  The worker writes the per-frame outputs itself (``summary.json``
+last) and returns a small :class:`Outcome`; the daemon marks the frame done in
+the ledger only after that, so a frame is never ``done`` without its files.
+
+Settings and the analysis function are installed once per process by
+:func:`init_worker` (the pool initializer), not sent with every frame.
+"""
+
+from __future__ import annotations
+
+import importlib
+import time
+import traceback
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+from livequant.frames import FrameError, read_frame
+
+__all__ = ["Outcome", "init_worker", "process_path", "resolve_callable", "DEFAULT_ANALYZE"]
+
+#: The analysis run on every frame, as ``"module:attribute"``.
+DEFAULT_ANALYZE = "livequant.pipeline:analyze_frame"
+
+_state: dict[str, Any] = {}
+
+
+@dataclass(frozen=True)
+class Outcome:
+    """The result of one frame, as sent back from the worker.
+
+    ``state`` is ``"done"`` or ``"quarantined"``; for a quarantined frame
+    ``reason`` is a short tag (``FrameError.reason``, or ``analysis-error``)
+    and ``message`` says what went wrong.
+    """
+
+    path: str
+    state: str
+    frame_id: str | None = None
+    summary: dict | None = None
+    reason: str | None = None
+    message: str | None = None
+    timings_s: dict = field(default_factory=dict)
+
+
+def resolve_callable(ref: str | Callable) -> Callable:
+    """Turn ``"package.module:function"`` into the function (or pass a callable through).
+
+    Raises
+    ------
+    ValueError
+        For a string not of the form ``module:attribute``, a module that
+        cannot be imported, or a missing attribute; each says which.
+    """
+    if callable(ref):
+        return ref
+    module_name, sep, attr = str(ref).partition(":")
+    if not sep or not module_name or not attr:
+        raise ValueError(f"`analyze` must look like 'package.module:function', got {ref!r}")
+    try:
+        module = importlib.import_module(module_name)
+    except ImportError as exc:
+        raise ValueError(f"`analyze` {ref!r}: cannot import module {module_name!r} ({exc})") \
+            from exc
+    try:
+        return getattr(module, attr)
+    except AttributeError:
+        raise ValueError(f"`analyze` {ref!r}: module {module_name!r} has no attribute "
+                         f"{attr!r}") from None
+
+
+def init_worker(settings, analyze_ref, frames_dir: str) -> None:
+    """Pool initializer: remember settings, analysis function and output folder."""
+    import signal
+
+    # Ctrl+C reaches the whole process group; the daemon decides what to do with
+    # the frames in flight, so a worker must not die half-way through one.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    _state["settings"] = settings
+    _state["analyze"] = resolve_callable(analyze_ref)
+    _state["frames_dir"] = Path(frames_dir)
+    _state["defaults"] = settings.frame_defaults.as_dict()
+
+
+def process_path(path: str) -> Outcome:
+    """Read, analyse and write the outputs of one frame file (runs in a worker).
+
+    A frame the readers reject (:class:`FrameError`) and an exception inside the
+    analysis both come back as ``state="quarantined"`` with the reason: one bad
+    frame must not stop the session.  Errors writing the outputs (disk full,
+    permissions) are not the frame's fault and propagate, so the daemon keeps the
+    frame queued and reports the failure.
+    """
+    from livequant.outputs import write_frame_outputs
+
+    t0 = time.perf_counter()
+    try:
+        frame = read_frame(path, defaults=_state["defaults"])
+    except FrameError as exc:
+        return Outcome(path, "quarantined", reason=exc.reason, message=str(exc))
+    t1 = time.perf_counter()
+    try:
+        result = _state["analyze"](frame, _state["settings"])
+    except Exception as exc:  # noqa: BLE001 - becomes the frame's quarantine reason
+        tb = traceback.format_exception_only(type(exc), exc)[-1].strip()
+        return Outcome(path, "quarantined", frame_id=frame.frame_id, reason="analysis-error",
+                       message=f"{path}: analysis failed: {tb}")
+    t2 = time.perf_counter()
+    write_frame_outputs(result, _state["frames_dir"])
+    t3 = time.perf_counter()
+    return Outcome(path, "done", frame_id=result.frame_id, summary=result.summary(),
+                   timings_s={"read": t1 - t0, "analyze": t2 - t1, "write": t3 - t2})

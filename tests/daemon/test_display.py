@@ -1,0 +1,69 @@
+"""The terminal display: readable in 80 x 24, pure function of the snapshot."""
+
+import io
+
+from rich.console import Console
+
+from livequant.daemon.status import LastFrame, Snapshot, last_frame_from_summary
+from livequant.display.status import format_duration, render_status, shorten_path
+
+
+def _render(snap) -> list[str]:
+    console = Console(file=io.StringIO(), width=80, height=24, color_system=None,
+                      force_terminal=False, legacy_windows=False)
+    console.print(render_status(snap))
+    return console.file.getvalue().rstrip("\n").split("\n")
+
+
+def _busy_snapshot():
+    return Snapshot(
+        state="running", session="/data/" + "deep/" * 30 + "session-2026-12-02",
+        watch="/data/acq/today", counts={"queued": 12, "processing": 2, "done": 345,
+                                         "quarantined": 3},
+        uptime_s=3725, in_flight=2, settling=1, workers=2, frames_per_s=0.87, lag_s=14.2,
+        last=LastFrame(frame_id="scan_0345", status="ok", n_columns=10112, a_pm=390.52,
+                       b_pm=391.04, sigma_a_pm=0.21, angle_deg=90.02, mean_displacement_pm=12.3,
+                       analyze_s=0.84, latency_s=1.31),
+        warnings=tuple(f"10:0{k}:00 quarantined frame_{k}.tif: truncated " + "x" * 60
+                       for k in range(8)),
+        endpoints={"events": "tcp://127.0.0.1:5602", "commands": "tcp://127.0.0.1:5603",
+                   "ingest": "tcp://127.0.0.1:5601"})
+
+
+def test_busy_session_fits_80_by_24_and_shows_the_key_numbers():
+    lines = _render(_busy_snapshot())
+    assert len(lines) <= 24
+    assert max(len(line) for line in lines) <= 80
+    text = "\n".join(lines)
+    for expected in ("running", "345 done", "12 queued", "2 in flight", "3 quarantined",
+                     "0.87 frames/s", "lag 14.2 s", "10112 columns", "390.5 ± 0.2 pm",
+                     "391.0 pm", "12.3 pm", "up 1:02:05", "session-2026-12-02"):
+        assert expected in text, expected
+    # only the five most recent warnings are shown
+    assert "frame_7.tif" in text and "frame_3.tif" in text and "frame_2.tif" not in text
+
+
+def test_empty_session_renders():
+    snap = Snapshot(state="starting", session="/s", counts={})
+    text = "\n".join(_render(snap))
+    assert "no frame analysed yet" in text and "(socket only)" in text and "none" in text
+
+
+def test_summary_to_last_frame():
+    summary = {"frame_id": "f", "status": "ok", "n_columns": 7,
+               "lattice": {"a_pm": 400.0, "b_pm": 401.0, "sigma_a_pm": 0.5, "angle_deg": 90.0},
+               "cells": {"mean_displacement_pm": 8.5, "sigma_mean_displacement_pm": 0.1},
+               "timings_s": {"total": 0.5}}
+    last = last_frame_from_summary(summary, latency_s=1.0)
+    assert (last.a_pm, last.b_pm, last.mean_displacement_pm, last.analyze_s) == (
+        400.0, 401.0, 8.5, 0.5)
+    no_lattice = last_frame_from_summary({"frame_id": "g", "status": "no-lattice",
+                                          "lattice": None, "n_columns": 0})
+    assert no_lattice.a_pm is None and no_lattice.mean_displacement_pm is None
+
+
+def test_helpers():
+    assert format_duration(93.4) == "1:33" and format_duration(7384) == "2:03:04"
+    assert shorten_path("/a/b/c", 80) == "/a/b/c"
+    short = shorten_path("/x" * 100, 20)
+    assert len(short) == 20 and short.startswith("...")
