@@ -119,6 +119,7 @@ class Daemon:
         self._started = False
         self._stopped = False
         self.n_worker_crashes = 0
+        self._extra_commands: dict[str, Callable[[dict], dict]] = {}
 
         self.paths = None
         self.watch = None
@@ -505,12 +506,26 @@ class Daemon:
 
     # ================================================================ commands
 
+    def add_command(self, name: str, handler: Callable[[dict], dict]) -> None:
+        """Answer `name` on the command socket (call before :meth:`start`).
+
+        For the decision loop's proposal commands.  `handler` runs on the command
+        thread with the request dict and returns a dict for the reply; it raises
+        ``ValueError`` or ``KeyError`` for a bad request (sent back as the error).
+        """
+        if self._started:
+            raise RuntimeError("add_command() must be called before start()")
+        if name in self._command_handlers():
+            raise ValueError(f"command {name!r} is built in")
+        self._extra_commands[name] = handler
+
     def _command_handlers(self) -> dict:
         return {
             "status": lambda req: {"status": self.snapshot.as_dict()},
             "pause": self._cmd_pause,
             "resume": self._cmd_resume,
             "shutdown": self._cmd_shutdown,
+            **self._extra_commands,
         }
 
     def _cmd_pause(self, req: dict) -> dict:

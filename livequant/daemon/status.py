@@ -87,22 +87,11 @@ def _num(value) -> float | None:
 
 
 def _mean_displacement(cells: dict | None) -> float | None:
-    """The mean polar displacement from the cells' summary, whatever its exact key."""
+    """Mean B-site displacement magnitude, ``cells.descriptors.d_pm.mean`` of the summary."""
     if not isinstance(cells, dict):
         return None
-    for key, value in cells.items():
-        k = key.lower()
-        if "displacement" in k and "mean" in k and "sigma" not in k and k.endswith("_pm"):
-            if _num(value) is not None:
-                return _num(value)
-            if isinstance(value, dict):
-                return _num(value.get("mean"))
-    for key, value in cells.items():
-        if "displacement" in key.lower() and isinstance(value, dict):
-            got = _num(value.get("mean_pm", value.get("mean")))
-            if got is not None:
-                return got
-    return None
+    d_pm = (cells.get("descriptors") or {}).get("d_pm") or {}
+    return _num(d_pm.get("mean")) if isinstance(d_pm, dict) else None
 
 
 def last_frame_from_summary(summary: dict, *, latency_s: float | None = None) -> LastFrame:

@@ -206,6 +206,9 @@ def test_status_json_from_daemon_and_from_ledger(tmp_path, capsys):
     offline = json.loads(capsys.readouterr().out)
     assert offline["source"] == "ledger" and offline["status"]["state"] == "offline"
     assert offline["status"]["counts"] == live["status"]["counts"]
+    assert status_command(Namespace(**{**vars(args), "json": False})) == 0
+    human = capsys.readouterr()
+    assert human.out == "" and "2 done" in human.err and "1 quarantined" in human.err
     missing = Namespace(session=str(tmp_path / "nowhere"), json=True, timeout=1.0)
     assert status_command(missing) == 2
     assert "no ledger" in capsys.readouterr().err
@@ -213,8 +216,12 @@ def test_status_json_from_daemon_and_from_ledger(tmp_path, capsys):
 
 def test_commands_pause_resume_shutdown(tmp_path):
     d = _daemon(tmp_path)
+    d.add_command("echo", lambda req: {"said": req["text"]})  # as the decision loop will
+    with pytest.raises(ValueError, match="built in"):
+        d.add_command("status", lambda req: {})
     with running_daemon(d):
         ep = d.endpoints["commands"]
+        assert send_command(ep, {"cmd": "echo", "text": "hi"}, timeout_s=5)["said"] == "hi"
         assert send_command(ep, {"cmd": "pause"}, timeout_s=5) == {"ok": True,
                                                                    "state": "paused"}
         write_frame(tmp_path / "watch", "held", lattice_image(SHAPE, seed=6), sidecar("held"))
@@ -337,6 +344,14 @@ def test_sigkill_mid_burst_loses_nothing_and_does_nothing_twice(tmp_path):
     assert before["done"] < 8, "the kill came too late to test anything"
     assert before["processing"] >= 1, f"nothing was in flight at the kill: {before}"
     assert (tmp_path / "session" / "daemon.json").exists()  # stale: nobody removed it
+    # `livequant status --json` sees the daemon is gone and reads the ledger instead
+    status = subprocess.run(cli_argv() + ["status", "--json", "--session",
+                                          str(tmp_path / "session"), "--timeout", "2"],
+                            cwd=REPO, env={**os.environ, "PYTHONPATH": str(REPO)},
+                            capture_output=True, text=True, timeout=120)
+    assert status.returncode == 0, status.stderr
+    reported = json.loads(status.stdout)
+    assert reported["source"] == "ledger" and reported["status"]["counts"] == before
     d = Daemon(fast_settings(), session=tmp_path / "session", watch=watch)
     with running_daemon(d):
         wait_for(lambda: _done(d) == 8, what="all 8 frames done after the restart")

@@ -52,7 +52,9 @@ def test_empty_session_renders():
 def test_summary_to_last_frame():
     summary = {"frame_id": "f", "status": "ok", "n_columns": 7,
                "lattice": {"a_pm": 400.0, "b_pm": 401.0, "sigma_a_pm": 0.5, "angle_deg": 90.0},
-               "cells": {"mean_displacement_pm": 8.5, "sigma_mean_displacement_pm": 0.1},
+               "cells": {"n_cells": 4, "descriptors": {
+                   "d_pm": {"n": 4, "mean": 8.5, "median": 8.4, "median_sigma": 0.3},
+                   "dx_pm": {"n": 4, "mean": -1.0}}},
                "timings_s": {"total": 0.5}}
     last = last_frame_from_summary(summary, latency_s=1.0)
     assert (last.a_pm, last.b_pm, last.mean_displacement_pm, last.analyze_s) == (
@@ -67,3 +69,11 @@ def test_helpers():
     assert shorten_path("/a/b/c", 80) == "/a/b/c"
     short = shorten_path("/x" * 100, 20)
     assert len(short) == 20 and short.startswith("...")
+
+
+def test_status_line_for_logs():
+    from livequant.daemon.core import status_line
+
+    line = status_line(_busy_snapshot())
+    assert line.startswith("[running] done 345, queued 12, processing 2, quarantined 3;")
+    assert "0.87 frames/s" in line and "scan_0345: 10112 columns a=390.5pm" in line
