@@ -25,6 +25,19 @@ __all__ = ["normal_equations", "weighted_cost", "render_gaussians"]
 
 
 @njit(cache=True, inline="always")
+def _unpack(t, centre, elliptical):
+    """Amplitude, shape (p, q, s; round: q = 0, s = p) and the centre's offset
+    from its window centre, for one column's parameters `t`."""
+    if elliptical:
+        q = t[5]
+        s = t[6]
+    else:
+        q = 0.0
+        s = t[4]
+    return t[2], t[4], q, s, t[0] - centre[0], t[1] - centre[1]
+
+
+@njit(cache=True, inline="always")
 def _next_gaussian(row, prev_row, dr, dc, p, q, s, decay, G, step):
     """exp(-(p dr^2 + 2 q dr dc + s dc^2) / 2) along a row of the window.
 
@@ -65,17 +78,8 @@ def normal_equations(theta, centres, off_r, off_c, data, valid, others, idx, gai
     for j in prange(idx.shape[0]):
         k = idx[j]
         t = theta[k]
-        A = t[2]
         B = t[3]
-        p = t[4]
-        if elliptical:
-            q = t[5]
-            s = t[6]
-        else:
-            q = 0.0
-            s = p
-        d_r = t[0] - centres[k, 0]
-        d_c = t[1] - centres[k, 1]
+        A, p, q, s, d_r, d_c = _unpack(t, centres[k], elliptical)
         h00 = 0.0
         h01 = 0.0
         h02 = 0.0
@@ -255,16 +259,7 @@ def weighted_cost(theta, centres, off_r, off_c, data, others, idx, weights, elli
     for j in prange(idx.shape[0]):
         k = idx[j]
         t = theta[k]
-        A = t[2]
-        p = t[4]
-        if elliptical:
-            q = t[5]
-            s = t[6]
-        else:
-            q = 0.0
-            s = p
-        d_r = t[0] - centres[k, 0]
-        d_c = t[1] - centres[k, 1]
+        A, p, q, s, d_r, d_c = _unpack(t, centres[k], elliptical)
         ck = 0.0
         decay = math.exp(-s)
         prev_row = 1e300
@@ -292,16 +287,7 @@ def render_gaussians(theta, centres, off_r, off_c, shape_r, shape_c, elliptical,
     """
     for k in range(theta.shape[0]):
         t = theta[k]
-        A = t[2]
-        p = t[4]
-        if elliptical:
-            q = t[5]
-            s = t[6]
-        else:
-            q = 0.0
-            s = p
-        d_r = t[0] - centres[k, 0]
-        d_c = t[1] - centres[k, 1]
+        A, p, q, s, d_r, d_c = _unpack(t, centres[k], elliptical)
         decay = math.exp(-s)
         prev_row = 1e300
         G = 0.0
