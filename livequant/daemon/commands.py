@@ -14,8 +14,9 @@ from __future__ import annotations
 
 import json
 import logging
-import threading
 from typing import Callable
+
+from livequant.daemon._socket_thread import SocketThread
 
 __all__ = ["CommandServer", "send_command", "CommandError"]
 
@@ -28,7 +29,7 @@ class CommandError(RuntimeError):
     """No reply from the daemon (not running, or not answering in time)."""
 
 
-class CommandServer:
+class CommandServer(SocketThread):
     """Answer JSON commands on a REP socket.
 
     Parameters
@@ -42,34 +43,15 @@ class CommandServer:
         bad argument; the message becomes the error reply.
     """
 
+    thread_name = "commands"
+    label = "command socket"
+
     def __init__(self, context, endpoint: str, handlers: dict[str, Callable[[dict], dict]]):
         self.context = context
-        self.endpoint = endpoint
+        self._init_thread(endpoint)
         self.handlers = dict(handlers)
-        self._stop = threading.Event()
-        self._ready = threading.Event()
-        self._thread: threading.Thread | None = None
-        self._error: BaseException | None = None
-        self.bound_endpoint: str | None = None
         self.n_requests = 0
         self.n_errors = 0
-
-    def start(self, timeout: float = 10.0) -> str:
-        self._thread = threading.Thread(target=self._run, name="commands", daemon=True)
-        self._thread.start()
-        if not self._ready.wait(timeout):
-            raise RuntimeError(f"command socket {self.endpoint}: not ready after {timeout} s")
-        if self._error is not None:
-            raise self._error
-        return self.bound_endpoint
-
-    def stop(self, timeout: float = 5.0) -> None:
-        self._stop.set()
-        if self._thread is not None:
-            self._thread.join(timeout)
-
-    def is_alive(self) -> bool:
-        return self._thread is not None and self._thread.is_alive()
 
     def answer(self, raw: bytes) -> dict:
         """The reply to one raw request (pure apart from the handlers; tested directly)."""

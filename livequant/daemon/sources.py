@@ -20,6 +20,8 @@ import os
 import queue
 import re
 import threading
+
+from livequant.daemon._socket_thread import SocketThread
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -269,7 +271,7 @@ def incoming_candidates(incoming: Path) -> list[Candidate]:
     return [Candidate(str(p), "socket", now) for p in image_files(Path(incoming))]
 
 
-class SocketSource:
+class SocketSource(SocketThread):
     """Receive frames on a ZeroMQ PULL socket and save each into ``incoming``.
 
     A frame message (DESIGN.md) is decoded, its metadata resolved, and the
@@ -282,39 +284,19 @@ class SocketSource:
     The socket is created, used and closed by this source's thread only.
     """
 
+    thread_name = "source-socket"
+    label = "ingest socket"
+
     def __init__(self, context, endpoint: str, incoming: Path, out: queue.Queue, *,
                  frame_defaults: dict, on_reject=None, bind_port: int | None = None):
         self.context = context
-        self.endpoint = endpoint
+        self._init_thread(endpoint)
         self.incoming = Path(incoming)
         self.out = out
         self.frame_defaults = dict(frame_defaults)
         self.on_reject = on_reject
-        self._stop = threading.Event()
-        self._ready = threading.Event()
-        self._thread: threading.Thread | None = None
-        self._error: BaseException | None = None
         self.n_received = 0
         self.n_rejected = 0
-        self.bound_endpoint: str | None = None
-
-    def start(self, timeout: float = 10.0) -> str:
-        """Bind the socket (on the source's own thread) and return the bound endpoint."""
-        self._thread = threading.Thread(target=self._run, name="source-socket", daemon=True)
-        self._thread.start()
-        if not self._ready.wait(timeout):
-            raise RuntimeError(f"ingest socket {self.endpoint}: not ready after {timeout} s")
-        if self._error is not None:
-            raise self._error
-        return self.bound_endpoint
-
-    def stop(self, timeout: float = 5.0) -> None:
-        self._stop.set()
-        if self._thread is not None:
-            self._thread.join(timeout)
-
-    def is_alive(self) -> bool:
-        return self._thread is not None and self._thread.is_alive()
 
     def _run(self) -> None:
         import zmq
