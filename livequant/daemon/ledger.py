@@ -37,6 +37,10 @@ flags, proposals, decisions
     ``open`` -> ``accepted`` / ``rejected`` / ``expired``), ``decisions`` one
     row per operator (or auto-accept) decision on a proposal.  Regions and
     free-form payloads are JSON text.
+drift
+    One row per drift measurement: the specimen drift ``d(t)`` (stage
+    coordinates, nm, relative to the session's first frame) at a frame's
+    acquisition time, with the earlier frame it was measured against.
 """
 
 from __future__ import annotations
@@ -116,6 +120,17 @@ CREATE TABLE IF NOT EXISTS decisions (
     decided_by TEXT NOT NULL,                   -- 'operator', 'auto', ...
     note TEXT,
     decided_at REAL NOT NULL
+);
+CREATE TABLE IF NOT EXISTS drift (
+    id INTEGER PRIMARY KEY AUTOINCREMENT,
+    frame_id TEXT NOT NULL,                     -- the frame whose drift was measured
+    ref_frame_id TEXT,                          -- the earlier frame it was registered against
+    t REAL NOT NULL,                            -- acquisition time of frame_id, unix seconds
+    dx_nm REAL NOT NULL,                        -- specimen drift d(t) since the session's first
+    dy_nm REAL NOT NULL,                        -- frame, stage coordinates, nanometres
+    sigma_nm REAL,                              -- one-sigma uncertainty of each component
+    payload_json TEXT,
+    created_at REAL NOT NULL
 );
 """
 
@@ -435,13 +450,54 @@ class Ledger:
                                                                        proposal_id)),
         ])
 
+    def add_drift(self, *, frame_id: str, t: float, dx_nm: float, dy_nm: float,
+                  sigma_nm: float | None = None, ref_frame_id: str | None = None,
+                  payload: dict | None = None) -> int:
+        """Record the specimen drift measured on `frame_id` (acquired at unix time `t`)."""
+        with self._lock:
+            cur = self._db.execute(
+                "INSERT INTO drift (frame_id, ref_frame_id, t, dx_nm, dy_nm, sigma_nm, "
+                "payload_json, created_at) VALUES (?,?,?,?,?,?,?,?)",
+                (frame_id, ref_frame_id, float(t), float(dx_nm), float(dy_nm),
+                 None if sigma_nm is None else float(sigma_nm), _json_or_none(payload),
+                 time.time()))
+            return cur.lastrowid
+
+    def drift(self) -> list[dict]:
+        """Every drift measurement in acquisition order."""
+        rows = self._all("SELECT frame_id, ref_frame_id, t, dx_nm, dy_nm, sigma_nm, "
+                         "payload_json FROM drift ORDER BY t, id")
+        return [{"frame_id": f, "ref_frame_id": r, "t": t, "dx_nm": dx, "dy_nm": dy,
+                 "sigma_nm": s, "payload": None if p is None else json.loads(p)}
+                for f, r, t, dx, dy, s, p in rows]
+
+    def flags(self, *, frame_id: str | None = None) -> list[dict]:
+        """Every flag (of one frame, or all) in the order they were raised."""
+        sql = ("SELECT id, frame_id, rule, kind, score, region_json, payload_json, created_at "
+               "FROM flags")
+        rows = (self._all(sql + " WHERE frame_id=? ORDER BY id", (frame_id,)) if frame_id
+                else self._all(sql + " ORDER BY id"))
+        return [{"id": i, "frame_id": f, "rule": r, "kind": k, "score": s,
+                 "region": None if g is None else json.loads(g),
+                 "payload": None if p is None else json.loads(p), "created_at": c}
+                for i, f, r, k, s, g, p, c in rows]
+
+    def decisions(self) -> list[dict]:
+        """Every decision on a proposal, oldest first."""
+        rows = self._all("SELECT id, proposal_id, decision, decided_by, note, decided_at "
+                         "FROM decisions ORDER BY id")
+        return [{"id": i, "proposal_id": p, "decision": d, "decided_by": b, "note": n,
+                 "decided_at": t} for i, p, d, b, n, t in rows]
+
     def proposals(self, *, state: str | None = None) -> Iterator[dict]:
-        sql = "SELECT id, frame_id, score, region_json, state, created_at FROM proposals"
+        sql = ("SELECT id, frame_id, score, region_json, state, payload_json, created_at, "
+               "updated_at FROM proposals")
         rows = (self._all(sql + " WHERE state=? ORDER BY created_at", (state,)) if state
                 else self._all(sql + " ORDER BY created_at"))
-        for pid, fid, score, region, st, created in rows:
+        for pid, fid, score, region, st, payload, created, updated in rows:
             yield {"id": pid, "frame_id": fid, "score": score, "region": json.loads(region),
-                   "state": st, "created_at": created}
+                   "state": st, "payload": None if payload is None else json.loads(payload),
+                   "created_at": created, "updated_at": updated}
 
 
 def _json_or_none(value) -> str | None:

@@ -129,6 +129,18 @@ def test_proposals_and_decisions(ledger):
         ledger.decide("nope", "accept")
     with pytest.raises(ValueError, match="`decision`"):
         ledger.decide("p1", "maybe")
+    assert [(f["kind"], f["region"]) for f in ledger.flags()] == [("domain-wall", {"x_nm": 1.0})]
+    assert ledger.flags(frame_id="b") == []
+    assert [(d["proposal_id"], d["decision"]) for d in ledger.decisions()] == [("p1", "accept")]
+
+
+def test_drift_rows_come_back_in_acquisition_order(ledger):
+    ledger.add_drift(frame_id="f2", t=20.0, dx_nm=0.4, dy_nm=-0.1, sigma_nm=0.02,
+                     ref_frame_id="f1")
+    ledger.add_drift(frame_id="f1", t=10.0, dx_nm=0.0, dy_nm=0.0)
+    rows = ledger.drift()
+    assert [r["frame_id"] for r in rows] == ["f1", "f2"]
+    assert rows[1]["dx_nm"] == 0.4 and rows[1]["ref_frame_id"] == "f1"
 
 
 def test_change_during_processing_runs_again(ledger):
