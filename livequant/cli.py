@@ -26,6 +26,7 @@ EXIT_BAD_INPUT = 2
 COMMAND_MODULES = (
     "livequant.commands.analyze",
     "livequant.commands.bench",
+    "livequant.commands.demo",
     "livequant.commands.run",
     "livequant.commands.status",
 )

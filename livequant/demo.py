@@ -1,0 +1,311 @@
+"""``livequant demo``: the simulated instrument and the daemon, one command.
+
+The demo runs the whole loop on this machine with no microscope:
+
+1. a simulated instrument (:mod:`sim_instrument`) surveys the invented
+   ``demo`` specimen (a ferroelectric film with walls, a vortex pair and
+   interfaces) along a tour of overlapping frames, writing each frame into
+   ``SESSION/acquired/`` the way an acquisition program would (ground truth
+   into ``SESSION/truth/``, never watched);
+2. the daemon watches that folder, analyses every frame, runs the rules and
+   proposes regions to look at again;
+3. the simulated instrument also listens for ``scan-request`` events and
+   acquires every accepted proposal at higher magnification (with
+   ``--auto-accept`` the daemon accepts its own proposals -- meant for the
+   simulated instrument only);
+4. after ``duration_s`` the survey stops, the daemon drains its queue and
+   stops, and the demo prints a summary (and writes the session report when
+   that part is installed).
+
+The instrument's clock follows the wall clock (``engine.wait`` before every
+frame), so the specimen drifts in real time as it would at the microscope.
+"""
+
+from __future__ import annotations
+
+import logging
+import tempfile
+import threading
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+
+__all__ = ["DemoOptions", "DemoOutcome", "run_demo", "tour_positions", "demo_settings"]
+
+log = logging.getLogger("livequant.demo")
+
+
+@dataclass(frozen=True)
+class DemoOptions:
+    """What the demo does; every field has the default the command line uses."""
+
+    session: str | None = None            # None: a new temporary folder
+    scenario: str = "demo"
+    duration_s: float = 90.0              # survey and revisits stop after this, seconds
+    frames: int = 14                      # survey frames (the tour is cut to this many)
+    shape_px: tuple[int, int] = (1024, 1024)
+    fov_nm: float = 20.0
+    overlap_nm: float = 6.0               # overlap of consecutive survey frames, for drift
+    cadence_s: float = 3.0                # one survey frame every this many seconds (at least)
+    auto_accept: bool = False
+    seed: int = 7
+    drain_s: float = 60.0                 # after duration_s, wait at most this for the queue
+    config_file: str | None = None
+    workers: int | None = None
+    report: bool = True
+
+
+@dataclass
+class DemoOutcome:
+    session: str
+    counts: dict = field(default_factory=dict)
+    n_survey_frames: int = 0
+    n_revisit_frames: int = 0
+    flags_by_kind: dict = field(default_factory=dict)
+    proposals_by_state: dict = field(default_factory=dict)
+    report: str | None = None
+    report_error: str | None = None
+    instrument_error: str | None = None
+    elapsed_s: float = 0.0
+
+    def as_dict(self) -> dict[str, Any]:
+        return {k: getattr(self, k) for k in self.__dataclass_fields__}
+
+
+def tour_positions(n_frames: int, *, fov_nm: float, overlap_nm: float) -> np.ndarray:
+    """Stage centres (x, y) in nm of the demo specimen's survey tour.
+
+    The tour starts left of the vortex-antivortex pair (at y = 60 nm), runs
+    right along it and across the 180-degree wall at x = -40 nm, then turns
+    down along that wall through the film to the electrode and substrate
+    interfaces (y = -56 and -60 nm).  Consecutive frames overlap by
+    `overlap_nm`, so the drift can be measured between them.
+    """
+    step = fov_nm - overlap_nm
+    if step <= 0:
+        raise ValueError(f"`overlap_nm` ({overlap_nm}) must be smaller than `fov_nm` ({fov_nm})")
+    xs = np.arange(-106.0, -36.0 + 1e-9, step)
+    row = [(x, 60.0) for x in xs]
+    x_end = row[-1][0]
+    col = [(x_end, y) for y in np.arange(60.0 - step, -52.0 - 1e-9, -step)]
+    tour = np.array(row + col, dtype=float)
+    return tour[:max(1, int(n_frames))]
+
+
+def demo_settings(options: DemoOptions):
+    """Settings for the demo: the user's files, then the demo's own needs on top."""
+    from livequant.config import load_settings
+
+    overrides: dict[str, Any] = {
+        # any free ports: a demo must not collide with a daemon already running here
+        "daemon.events_port": 0, "daemon.commands_port": 0, "daemon.ingest_port": 0,
+        "daemon.ingest_socket": False,
+        "daemon.heartbeat_s": 5.0,
+        "workers": options.workers,
+    }
+    settings = load_settings(options.config_file, overrides=overrides)
+    extra: dict[str, Any] = {}
+    if settings.analysis.material is None:
+        extra["analysis.material"] = "PbTiO3"   # the demo specimen's film
+    if options.auto_accept and hasattr(settings, "proposals"):
+        extra["proposals.auto_accept"] = True
+    if extra:
+        settings = load_settings(options.config_file, overrides={**overrides, **extra})
+    return settings
+
+
+class _Instrument(threading.Thread):
+    """The simulated microscope: survey tour first, then accepted scan requests."""
+
+    def __init__(self, options: DemoOptions, *, out_dir: Path, truth_dir: Path,
+                 endpoint: Callable[[], str | None], stop: threading.Event):
+        super().__init__(name="sim-instrument", daemon=True)
+        self.options = options
+        self.out_dir, self.truth_dir = out_dir, truth_dir
+        self.endpoint = endpoint
+        self.stop = stop
+        self.survey_ids: list[str] = []
+        self.revisit_ids: list[str] = []
+        self.error: str | None = None
+        self._t0 = time.monotonic()
+
+    def _sync_clock(self, engine) -> None:
+        # The specimen drifts with the wall clock, as at the instrument.
+        behind = (time.monotonic() - self._t0) - engine.time_s
+        if behind > 0:
+            engine.wait(behind)
+
+    def run(self) -> None:
+        try:
+            self._run()
+        except Exception as exc:  # noqa: BLE001 - reported in the demo's summary and log
+            self.error = f"{type(exc).__name__}: {exc}"
+            log.exception("the simulated instrument failed")
+
+    def _run(self) -> None:
+        from sim_instrument.engine import ScanEngine
+        from sim_instrument.modes import run_serve
+        from sim_instrument.outputs import FolderSink
+        from sim_instrument.specimen import Specimen
+
+        o = self.options
+        engine = ScanEngine(Specimen.from_scenario(o.scenario), seed=o.seed,
+                            frame_prefix="survey")
+        sink = FolderSink(self.out_dir, truth_dir=self.truth_dir)
+        deadline = self._t0 + o.duration_s
+        for x_nm, y_nm in tour_positions(o.frames, fov_nm=o.fov_nm, overlap_nm=o.overlap_nm):
+            if self.stop.is_set() or time.monotonic() >= deadline:
+                break
+            started = time.monotonic()
+            self._sync_clock(engine)
+            acq = engine.acquire((x_nm, y_nm), o.fov_nm, o.shape_px)
+            sink.send(acq.pixels, acq.sidecar, acq.truth)
+            self.survey_ids.append(acq.frame_id)
+            log.info("survey frame %s at stage (%.1f, %.1f) nm", acq.frame_id, x_nm, y_nm)
+            self.stop.wait(max(0.0, o.cadence_s - (time.monotonic() - started)))
+        remaining = deadline - time.monotonic()
+        if self.stop.is_set() or remaining <= 0:
+            return
+        endpoint = self.endpoint()
+        if endpoint is None:
+            return
+
+        def on_frame(acq):
+            self.revisit_ids.append(acq.frame_id)
+
+        # Serve accepted proposals until the demo's time is up.  Before each
+        # request the clock catches up with the wall clock (see _sync_clock).
+        run_serve(engine, [sink], endpoint, duration_s=remaining, stop=self.stop,
+                  on_frame=on_frame, before_acquire=lambda: self._sync_clock(engine))
+
+
+def run_demo(options: DemoOptions, *, display_factory: Callable | None = None,
+             on_daemon: Callable | None = None) -> DemoOutcome:
+    """Run the simulated instrument and the daemon until the demo's time is up.
+
+    Parameters
+    ----------
+    options : DemoOptions
+    display_factory : callable, optional
+        ``display_factory(daemon) -> context manager`` for the terminal display.
+    on_daemon : callable, optional
+        Called with the daemon once it is built (tests use it to watch it).
+
+    Raises
+    ------
+    livequant.config.ConfigError, livequant.daemon.SetupError
+        Bad settings or an unusable session folder.
+    """
+    from livequant.daemon import Daemon, Ledger
+
+    t_start = time.monotonic()
+    session = Path(options.session) if options.session else Path(
+        tempfile.mkdtemp(prefix="livequant-demo-"))
+    session.mkdir(parents=True, exist_ok=True)
+    settings = demo_settings(options)
+    acquired = session / "acquired"
+    acquired.mkdir(exist_ok=True)
+    daemon = Daemon(settings, session=session, watch=acquired,
+                    log_heartbeat=display_factory is None)
+    if on_daemon is not None:
+        on_daemon(daemon)
+    stop = threading.Event()
+
+    def events_endpoint() -> str | None:
+        # The daemon binds any free port; wait until it is up.
+        while not stop.is_set():
+            ep = daemon.endpoints.get("events")
+            if ep and daemon.snapshot.state in ("running", "paused"):
+                return ep
+            if daemon.should_exit.is_set():
+                return None
+            stop.wait(0.1)
+        return None
+
+    instrument = _Instrument(options, out_dir=acquired, truth_dir=session / "truth",
+                             endpoint=events_endpoint, stop=stop)
+
+    def supervise() -> None:
+        # Wait for the daemon, run the instrument for the demo's time, let the
+        # daemon drain what it was given, then stop it.
+        if events_endpoint() is None:
+            return
+        instrument.start()
+        instrument.join(options.duration_s + 5.0)
+        stop.set()
+        instrument.join(30.0)
+        deadline = time.monotonic() + options.drain_s
+        while time.monotonic() < deadline and not daemon.should_exit.is_set():
+            snap = daemon.snapshot
+            busy = snap.counts.get("queued", 0) + snap.counts.get("processing", 0)
+            if busy == 0 and snap.in_flight == 0 and snap.settling == 0:
+                break
+            time.sleep(0.2)
+        daemon.handle_exit()
+
+    supervisor = threading.Thread(target=supervise, name="demo-supervisor", daemon=True)
+    supervisor.start()
+    display = display_factory(daemon) if display_factory is not None else None
+    try:
+        daemon.run(display=display)
+    finally:
+        stop.set()
+        supervisor.join(10.0)
+
+    outcome = DemoOutcome(session=str(session), n_survey_frames=len(instrument.survey_ids),
+                          n_revisit_frames=len(instrument.revisit_ids),
+                          instrument_error=instrument.error)
+    with Ledger(session / "ledger.sqlite", readonly=True) as ledger:
+        outcome.counts = ledger.counts()
+        for f in ledger.flags():
+            outcome.flags_by_kind[f["kind"]] = outcome.flags_by_kind.get(f["kind"], 0) + 1
+        for p in ledger.proposals():
+            outcome.proposals_by_state[p["state"]] = outcome.proposals_by_state.get(
+                p["state"], 0) + 1
+    if options.report:
+        _write_report(session, outcome)
+    outcome.elapsed_s = time.monotonic() - t_start
+    return outcome
+
+
+def _write_report(session: Path, outcome: DemoOutcome) -> None:
+    try:
+        from livequant.report import write_report
+    except ImportError:
+        return  # the report part is not installed in this build
+    try:
+        outcome.report = str(write_report(session))
+    except Exception as exc:  # noqa: BLE001 - the demo's results stand without the report
+        outcome.report_error = f"{type(exc).__name__}: {exc}"
+        log.exception("the session report could not be written")
+
+
+def format_outcome(outcome: DemoOutcome) -> str:
+    """The demo's closing summary for a person."""
+    c = outcome.counts
+    lines = [
+        f"demo session: {outcome.session}",
+        f"frames: {outcome.n_survey_frames} survey + {outcome.n_revisit_frames} revisits "
+        f"acquired; {c.get('done', 0)} analysed, {c.get('quarantined', 0)} quarantined, "
+        f"{c.get('queued', 0) + c.get('processing', 0)} left queued",
+    ]
+    if outcome.flags_by_kind:
+        lines.append("flags: " + ", ".join(f"{k} {v}" for k, v in
+                                            sorted(outcome.flags_by_kind.items())))
+    else:
+        lines.append("flags: none")
+    if outcome.proposals_by_state:
+        lines.append("proposals: " + ", ".join(f"{k} {v}" for k, v in
+                                                sorted(outcome.proposals_by_state.items())))
+    if outcome.report:
+        lines.append(f"report: {outcome.report}")
+    if outcome.report_error:
+        lines.append(f"report failed: {outcome.report_error}")
+    if outcome.instrument_error:
+        lines.append(f"simulated instrument failed: {outcome.instrument_error}")
+    lines.append(f"elapsed: {outcome.elapsed_s:.0f} s")
+    return "\n".join(lines)
+
