@@ -32,6 +32,28 @@ STATUS_NO_LATTICE = "no-lattice"
 #: Detectors whose columns are dark on a bright background.
 INVERTED_DETECTORS = ("ABF", "BF", "IBF")
 
+#: Exponent n of the column-strength rule of thumb ``Z^n`` per detector: 1.7 for
+#: HAADF (CHECK-VALUES section 9: n = 1.6-1.9 in practice); about 1/3 for the
+#: bright-field family (a rule of thumb of the trade for ABF, from memory).
+_CONTRAST_EXPONENT = {"HAADF": 1.7, "ADF": 1.7, "ABF": 1.0 / 3.0, "BF": 1.0 / 3.0,
+                      "IBF": 1.0 / 3.0}
+_Z_OXYGEN = 8
+
+
+def a_column_stronger(material, detector: str) -> bool:
+    """Whether the A column scatters more than the B-O column on this detector.
+
+    Along [001] an A column holds one A atom per cell length and the B column
+    one B and one O atom, so with ``Z^n`` per atom the A column is the stronger
+    on HAADF (Sr 38^1.7 > Ti 22^1.7 + O 8^1.7) but usually the weaker on ABF,
+    where n is small (38^(1/3) < 22^(1/3) + 8^(1/3)).  Without a material the A
+    column is assumed the stronger (true of every perovskite on HAADF).
+    """
+    if material is None:
+        return True
+    n = _CONTRAST_EXPONENT.get((detector or "HAADF").upper(), 1.7)
+    return material.z_a ** n >= material.z_b ** n + _Z_OXYGEN ** n
+
 
 @dataclass(frozen=True)
 class FrameResult:
@@ -182,7 +204,7 @@ def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult
         fft_lattice,
         projection=cfg.sublattice.projection,
         keep_oxygen=keep_oxygen,
-        a_is_brighter=True if material is None else material.z_a >= material.z_b,
+        a_is_brighter=a_column_stronger(material, frame.meta.detector),
     )
     timings["sublattice"] = time.perf_counter() - t0
     if len(sites) == 0:
