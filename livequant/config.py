@@ -12,7 +12,7 @@ import os
 from pathlib import Path
 from typing import Any, Literal, Mapping
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 try:  # Python >= 3.11
     import tomllib
@@ -93,11 +93,23 @@ class CalibrationSettings(_Model):
 class CellsSettings(_Model):
     """Per-cell descriptors (livequant.analysis.cells)."""
 
-    reference: Literal["median", "material"] = "median"
+    reference: Literal["median", "material", "region"] = "median"
+    reference_region_px: tuple[float, float, float, float] | None = None
     gpa: bool = True
     gpa_mask_sigma_fraction: float = Field(default=0.2, gt=0, le=0.35)
     min_snr_topology: float = Field(default=3.0, ge=0)
     max_wall_chi2: float = Field(default=5.0, gt=0)
+
+    @model_validator(mode="after")
+    def _check_reference_region(self) -> "CellsSettings":
+        r = self.reference_region_px
+        if self.reference == "region" and r is None:
+            raise ValueError('reference = "region" needs reference_region_px = [x0, y0, x1, y1] '
+                             "(pixels)")
+        if r is not None and not (r[2] > r[0] and r[3] > r[1]):
+            raise ValueError(f"reference_region_px must be [x0, y0, x1, y1] with x1 > x0 and "
+                             f"y1 > y0, got {list(r)}")
+        return self
 
 
 class AnalysisSettings(_Model):

@@ -149,6 +149,18 @@ class FrameResult:
         return out
 
 
+def _strain_reference(cells_cfg, shape):
+    """The strain reference for compute_cells: a name, or a pixel mask of the region."""
+    if cells_cfg.reference != "region":
+        return cells_cfg.reference
+    x0, y0, x1, y1 = cells_cfg.reference_region_px
+    mask = np.zeros(shape, dtype=bool)
+    r0, r1 = max(0, int(np.floor(y0))), min(shape[0], int(np.ceil(y1)))
+    c0, c1 = max(0, int(np.floor(x0))), min(shape[1], int(np.ceil(x1)))
+    mask[r0:r1, c0:c1] = True
+    return mask
+
+
 def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult:
     """Run lattice finding, column detection, site assignment and refinement.
 
@@ -253,7 +265,7 @@ def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult
             lattice,
             pixel_size_pm=frame.meta.pixel_size_pm,
             material=None if material is None else MaterialConstants.from_object(material),
-            reference=cfg.cells.reference,
+            reference=_strain_reference(cfg.cells, image.shape),
             image=image if cfg.cells.gpa else None,
             detector=frame.meta.detector or "HAADF",
             gpa_mask_sigma_fraction=cfg.cells.gpa_mask_sigma_fraction,

@@ -80,3 +80,16 @@ def test_materials_table_has_sources_and_consistent_values():
     assert table["PbTiO3"].p_sign_b_vs_a == -1 and table["BaTiO3"].p_sign_b_vs_a == 1
     for m in table.values():
         assert m.source and m.status
+
+
+def test_region_strain_reference_needs_a_valid_region():
+    from livequant.config import ConfigError, load_settings
+
+    with pytest.raises(ConfigError, match="reference_region_px"):
+        load_settings(overrides={"analysis.cells.reference": "region"})
+    with pytest.raises(ConfigError, match="x1 > x0"):
+        load_settings(overrides={"analysis.cells.reference": "region",
+                                 "analysis.cells.reference_region_px": [10, 0, 5, 10]})
+    s = load_settings(overrides={"analysis.cells.reference": "region",
+                                 "analysis.cells.reference_region_px": [0, 0, 100, 50]})
+    assert s.analysis.cells.reference_region_px == (0, 0, 100, 50)

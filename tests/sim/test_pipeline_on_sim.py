@@ -67,3 +67,34 @@ def test_octahedral_tilt_of_a_simulated_abf_frame_is_recovered():
     mean = float(np.mean(stag[ok]))
     sem = float(np.median(result.cells.values["sigma_tilt_deg"][ok])) / np.sqrt(ok.sum())
     assert abs(abs(mean) - truth) < max(4 * sem, 0.15), (mean, truth, sem)
+
+
+@pytest.mark.slow
+def test_strain_against_a_reference_region_across_the_demo_interfaces():
+    """A frame across the demo film's interfaces (SrTiO3 substrate, SrRuO3, PbTiO3 film, grown
+    coherently: the film keeps the substrate's in-plane a).  With the substrate rows as the
+    strain reference, the substrate reads eyy = 0 and the film eyy = c(PbTiO3)/a(SrTiO3) - 1
+    = 413.80 / 390.53 - 1 = +5.96 % (CHECK-VALUES section 1 lattice parameters)."""
+    from sim_instrument import ScanEngine, Specimen
+    from sim_instrument.engine import DriftModel
+
+    from livequant.frames import Frame, FrameMeta
+
+    engine = ScanEngine(Specimen.from_scenario("demo"), drift=DriftModel.none(), seed=2)
+    acq = engine.acquire((-120.0, -58.0), 20.0, (1024, 1024))
+    px = acq.sidecar["pixel_size_pm"]
+    # Image rows follow the slow scan, +y on the stage: the substrate is at the top.
+    settings = load_settings(overrides={
+        "analysis.material": "PbTiO3", "analysis.cells.reference": "region",
+        "analysis.cells.reference_region_px": [0, 0, 1024, 200]})
+    result = analyze_frame(Frame(pixels=acq.pixels,
+                                 meta=FrameMeta(frame_id="iface", pixel_size_pm=px)), settings)
+    cells = result.cells
+    row = cells.y_pm / px
+    eyy = cells.values["eyy"]
+    substrate, film = row < 200, row > 800
+    assert substrate.sum() > 100 and film.sum() > 100
+    assert np.nanmedian(eyy[substrate]) == pytest.approx(0.0, abs=5e-4)
+    assert np.nanmedian(eyy[film]) == pytest.approx(413.80 / 390.53 - 1, abs=2e-3)
+    assert np.nanmedian(cells.values["exx"][film]) == pytest.approx(0.0, abs=1e-3)  # coherent
+    assert "region" in cells.info["reference"]["description"]
