@@ -22,6 +22,11 @@ __all__ = ["NoLatticeError", "find_lattice", "lattice_from_columns", "fractional
 #: the ring background scales with the crop area.
 _MAX_FFT_SIZE = 512
 
+#: Highest Miller index at which the three strongest Fourier peaks may sit on a
+#: candidate basis.  On a perovskite along [001] they are low orders such as
+#: (1, 1), (1, 0) or (3, 1); a "basis" that makes them 5th orders is a superperiod.
+_MAX_STRONG_ORDER = 3
+
 
 class NoLatticeError(ValueError):
     """The frame holds no periodic lattice (blank, noise, amorphous, ...)."""
@@ -194,16 +199,34 @@ def _reciprocal_basis(peaks):
     ks = k[strong]
     order = np.argsort(np.hypot(ks[:, 0], ks[:, 1]))
     ks = ks[order]
-    g1 = ks[0]
-    g2 = None
-    for cand in ks[1:]:
-        sin = abs(g1[0] * cand[1] - g1[1] * cand[0]) / (np.hypot(*g1) * np.hypot(*cand))
-        if sin > 0.34:  # more than 20 degrees from collinear
-            g2 = cand
+    # The strongest reflections of atomic columns are low orders of the true lattice.
+    # A slow intensity modulation (a layer of heavier cations, a thickness step)
+    # adds weak low-frequency peaks that would otherwise pass for a fundamental and
+    # make the "lattice" a superperiod of several cells: skip a shortest candidate
+    # under which the strongest peaks come out as high harmonics.
+    top = k[np.argsort(-strength)[:3]]
+    g1 = g2 = None
+    for first in range(len(ks) - 1):
+        c1 = ks[first]
+        c2 = None
+        for cand in ks[first + 1:]:
+            sin = abs(c1[0] * cand[1] - c1[1] * cand[0]) / (np.hypot(*c1) * np.hypot(*cand))
+            if sin > 0.34:  # more than 20 degrees from collinear
+                c2 = cand
+                break
+        if c2 is None:
+            break
+        c1, c2 = _gauss_reduce(c1, c2)
+        basis = np.stack([c1, c2])
+        hk = top @ np.linalg.inv(basis)
+        hk_int = np.rint(hk)
+        miss = np.hypot(*((hk - hk_int) @ basis).T)
+        if (np.abs(hk_int).max() <= _MAX_STRONG_ORDER
+                and np.all(miss < 0.15 * min(np.hypot(*c1), np.hypot(*c2)))):
+            g1, g2 = c1, c2
             break
     if g2 is None:
         return None, None, 0.0, None
-    g1, g2 = _gauss_reduce(g1, g2)
     G = np.stack([g1, g2])
     weights = strength
     # Index every peak against (g1, g2) and refine G on all of them; start with a

@@ -141,7 +141,19 @@ def assign_sites(candidates: Candidates, lattice: Lattice, *, projection="perovs
         _, nearest = cKDTree(pos[ref_members]).query(pos[others])
         q = ref_members[nearest]
         frac = (pos[others] - pos[q]) @ np.linalg.inv(basis.T).T
-        half[others] = half[q] + np.rint(2 * frac).astype(int)
+        # Each member votes for its group's offset against the reference group; the
+        # group takes the most common vote.  A single nearest pair (a noise peak, a
+        # strongly displaced column) must not shift a whole sublattice onto O sites.
+        vote = half[q] + np.rint(2 * frac).astype(int) - 2 * idx[others]
+        key = np.column_stack([group[others], vote])
+        uniq, counts = np.unique(key, axis=0, return_counts=True)
+        order = np.lexsort((-counts, uniq[:, 0]))          # per group, most votes first
+        uniq = uniq[order]
+        first = np.ones(len(uniq), bool)
+        first[1:] = uniq[1:, 0] != uniq[:-1, 0]
+        offset = np.zeros((n_groups, 2), int)
+        offset[uniq[first, 0]] = uniq[first, 1:]
+        half[others] = 2 * idx[others] + offset[group[others]]
     cls = np.mod(half, 2)
     code = cls[:, 0] * 2 + cls[:, 1]  # 0: (0,0) 1: (0,1) 2: (1,0) 3: (1,1)
 

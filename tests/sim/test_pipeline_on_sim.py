@@ -98,3 +98,21 @@ def test_strain_against_a_reference_region_across_the_demo_interfaces():
     assert np.nanmedian(eyy[film]) == pytest.approx(413.80 / 390.53 - 1, abs=2e-3)
     assert np.nanmedian(cells.values["exx"][film]) == pytest.approx(0.0, abs=1e-3)  # coherent
     assert "region" in cells.info["reference"]["description"]
+
+
+def test_fourier_basis_is_one_cell_across_a_layered_interface():
+    """Across the demo film's substrate/electrode/film interfaces the image brightness steps
+    (Pb and Ru outscatter Sr and Ti), which puts a comb of weak low-frequency peaks on the
+    Fourier axis normal to the layers.  The shortest of them must not pass for a lattice
+    vector: both basis vectors stay one cell long (12.5 px for SrTiO3's 390.5 pm, 13.2 px for
+    PbTiO3's c = 413.8 pm, at 31.25 pm per pixel; CHECK-VALUES section 1)."""
+    from sim_instrument import ScanEngine, Specimen
+    from sim_instrument.engine import DriftModel
+
+    from livequant.analysis.lattice import find_lattice
+
+    engine = ScanEngine(Specimen.from_scenario("demo"), drift=DriftModel.none(), seed=2)
+    acq = engine.acquire((-120.0, -58.0), 16.0, (512, 512))
+    lat = find_lattice(acq.pixels)
+    lengths = np.hypot(*lat.basis_px.T)
+    assert np.all((lengths > 12.0) & (lengths < 13.6)), lengths
