@@ -1,0 +1,109 @@
+"""Built-in rule ``anomalies``: cells unlike the rest of the session.
+
+What it flags
+    ``anomaly`` for a cluster of cells whose descriptor lies far from the
+    session's running robust statistics (``context.stats``: median and
+    ``1.4826 x MAD`` of the recent cells of earlier frames).  The score of a
+    cell is
+
+        z = |v - median| / sqrt(scale^2 + sigma_v^2)
+
+    with ``sigma_v`` the cell's own uncertainty, so a cell that is merely
+    poorly measured is not an anomaly.  Cells with ``z > k_sigma`` are
+    clustered on the ``(i, j)`` grid (8-connected, ``scipy.ndimage.label``);
+    a cluster of at least ``min_cells`` cells is one flag.  Typical finds:
+    chemical expansion around a defect (``a_pm``, ``b_pm``), a vacancy
+    (``ratio_b_a``), a suppressed or enhanced polar displacement (``d_pm``).
+
+    No flags until the session's statistics hold ``min_session_cells`` cells
+    of that descriptor: the first frames set the reference.
+
+Region
+    The axis-aligned box around the cluster's cells, grown by
+    ``margin_cells``.
+
+Score
+    ``1 - k_sigma / z_max`` (0 at the threshold, towards 1 far beyond it).
+
+Thresholds (``[rules.anomalies]``)
+    ``descriptors``, ``k_sigma``, ``min_cells``, ``min_session_cells``,
+    ``margin_cells``, ``max_flags`` (per descriptor and frame).
+
+Evidence
+    ``descriptor``, ``n_cells``, ``z_max``, ``value`` (at the peak cell),
+    ``sigma``, ``session_median``, ``session_scale``, ``session_n``,
+    ``i``, ``j`` (the peak cell).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import ndimage
+
+from livequant.config import AnomalyRuleSettings
+from livequant.rules.builtin._grid import CellGrid
+from livequant.rules.hookspecs import hookimpl
+from livequant.rules.types import Flag, Region
+
+__all__ = ["AnomalyRule"]
+
+
+class AnomalyRule:
+    """Flags clusters of outlying cells (see the module docstring)."""
+
+    def __init__(self, settings: AnomalyRuleSettings | None = None):
+        self.cfg = settings or AnomalyRuleSettings()
+
+    @hookimpl
+    def livequant_configure(self, config):
+        self.cfg = config.rules.anomalies
+        from livequant.analysis.cells import VALUE_FIELDS
+        unknown = [d for d in self.cfg.descriptors if d not in VALUE_FIELDS]
+        if unknown:
+            raise ValueError(f"`rules.anomalies.descriptors`: unknown {', '.join(unknown)}; "
+                             "use names of cells.csv columns")
+
+    @hookimpl
+    def livequant_frame_rules(self, view, context):
+        cells = view.cells
+        if cells is None or len(cells["i"]) == 0:
+            return []
+        cfg = self.cfg
+        grid = CellGrid.from_cells(cells)
+        flags = []
+        for name in cfg.descriptors:
+            st = context.stats.get(name)
+            if st is None or st.n < cfg.min_session_cells or not np.isfinite(st.median):
+                continue
+            v = np.asarray(cells[name], float)
+            s = np.asarray(cells.get("sigma_" + name, np.zeros_like(v)), float)
+            s = np.where(np.isfinite(s), s, 0.0)
+            denom = np.sqrt(st.scale**2 + s**2)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                z = np.abs(v - st.median) / denom
+            z = np.where(np.isfinite(z), z, 0.0)
+            out = z > cfg.k_sigma
+            if not out.any():
+                continue
+            labels, n_lab = ndimage.label(grid.dense(out, fill=False), structure=np.ones((3, 3)))
+            cell_lab = labels[grid.gi, grid.gj]          # cluster of each cell (0 = none)
+            idx = np.arange(1, n_lab + 1)
+            size = np.bincount(cell_lab, minlength=n_lab + 1)[1:]
+            peak = ndimage.maximum_position(z, cell_lab, idx)
+            keep = np.flatnonzero(size >= cfg.min_cells)
+            keep = keep[np.argsort([-z[peak[k][0]] for k in keep])][:cfg.max_flags]
+            for k in keep:
+                members = cell_lab == k + 1
+                p = int(peak[k][0])
+                region = Region.around(cells["x_px"][members], cells["y_px"][members],
+                                       margin_px=cfg.margin_cells * grid.cell_px,
+                                       min_size_px=grid.cell_px)
+                evidence = {"descriptor": name, "n_cells": int(size[k]), "z_max": float(z[p]),
+                            "value": float(v[p]), "sigma": float(s[p]),
+                            "session_median": st.median, "session_scale": st.scale,
+                            "session_n": st.n, "i": int(cells["i"][p]), "j": int(cells["j"][p])}
+                msg = (f"anomaly: {name} = {v[p]:.4g} in {int(size[k])} cell(s), "
+                       f"{z[p]:.1f} robust sigmas from the session median {st.median:.4g}")
+                flags.append(Flag("anomaly", 1.0 - cfg.k_sigma / float(z[p]), region, msg,
+                                  evidence))
+        return flags
