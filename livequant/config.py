@@ -151,8 +151,8 @@ class DomainWallRuleSettings(_Model):
 class VortexRuleSettings(_Model):
     """Built-in rule ``vortex_cores``: winding numbers on loops of cells."""
 
-    loop_cells: int = Field(default=3, ge=1, le=10)
-    smooth_cells: int = Field(default=3, ge=1, le=9)
+    loop_cells: int = Field(default=4, ge=1, le=10)
+    smooth_cells: int = Field(default=5, ge=1, le=9)
     min_snr: float = Field(default=2.0, ge=0)
     max_step_deg: float = Field(default=90.0, gt=0, le=180)
     min_loops: int = Field(default=2, ge=1)
@@ -174,7 +174,8 @@ class AnomalyRuleSettings(_Model):
     """Built-in rule ``anomalies``: robust score against the session's running statistics."""
 
     descriptors: list[str] = ["a_pm", "b_pm", "d_pm", "ratio_b_a"]
-    k_sigma: float = Field(default=5.0, gt=0)
+    k_cell: float = Field(default=2.5, gt=0)
+    k_sigma: float = Field(default=6.0, gt=0)
     min_cells: int = Field(default=1, ge=1)
     min_session_cells: int = Field(default=500, ge=1)
     margin_cells: float = Field(default=1.0, ge=0)

@@ -54,6 +54,9 @@ BUILTIN_RULES: dict[str, str] = {
 
 #: Descriptors whose running statistics the session keeps (the names of cells.csv).
 TRACKED_DESCRIPTORS: tuple[str, ...] = tuple(name for name, _, _ in DESCRIPTORS)
+_WITH_SIGMA = frozenset(name for name, has_sigma, _ in DESCRIPTORS if has_sigma)
+_BUFFERED = TRACKED_DESCRIPTORS + tuple("sigma_" + n for n in TRACKED_DESCRIPTORS
+                                        if n in _WITH_SIGMA)
 
 #: The hooks a rule may implement (livequant.rules.hookspecs).
 HOOK_NAMES: tuple[str, ...] = tuple(n for n in hookspecs.__all__ if n.startswith("livequant_"))
@@ -76,12 +79,24 @@ class DescriptorStats:
         Cells the statistics are computed from (at most ``rules.stats_max_cells``).
     n_total : int
         Finite values seen in the whole session.
+    median_sigma : float
+        Median of the same cells' own uncertainties (``sigma_<name>``; NaN for
+        a descriptor without one).  ``scale^2 - median_sigma^2`` estimates the
+        spread the specimen itself contributes.
     """
 
     median: float
     scale: float
     n: int
     n_total: int
+    median_sigma: float = math.nan
+
+    @property
+    def intrinsic_scale(self) -> float:
+        """``sqrt(max(scale^2 - median_sigma^2, 0))``: the spread beyond measurement noise."""
+        if not math.isfinite(self.median_sigma):
+            return self.scale
+        return math.sqrt(max(self.scale**2 - self.median_sigma**2, 0.0))
 
 
 @dataclass(frozen=True)
@@ -133,10 +148,10 @@ class SessionContext:
         self._flags: deque[Flag] = deque(maxlen=int(history))
         self._visited: deque[Mapping] = deque(maxlen=int(history_visited))
         self._max_cells = int(max_cells)
-        self._buffers = {name: np.full(self._max_cells, np.nan) for name in TRACKED_DESCRIPTORS}
-        self._next = {name: 0 for name in TRACKED_DESCRIPTORS}   # write position
-        self._filled = {name: 0 for name in TRACKED_DESCRIPTORS}
-        self._total = {name: 0 for name in TRACKED_DESCRIPTORS}
+        self._buffers = {name: np.full(self._max_cells, np.nan) for name in _BUFFERED}
+        self._next = {name: 0 for name in _BUFFERED}   # write position
+        self._filled = {name: 0 for name in _BUFFERED}
+        self._total = {name: 0 for name in _BUFFERED}
         self._stats: dict[str, DescriptorStats] = {
             name: DescriptorStats(math.nan, math.nan, 0, 0) for name in TRACKED_DESCRIPTORS}
         self._n_frames = 0
@@ -153,14 +168,23 @@ class SessionContext:
         cells = view.cells
         if cells is not None:
             for name in TRACKED_DESCRIPTORS:
-                if name in cells:
-                    self._add_values(name, np.asarray(cells[name], float))
+                if name not in cells:
+                    continue
+                values = np.asarray(cells[name], float)
+                ok = np.isfinite(values)
+                sigma = cells.get("sigma_" + name) if name in _WITH_SIGMA else None
+                if sigma is not None:
+                    sigma = np.asarray(sigma, float)
+                    ok &= np.isfinite(sigma)
+                if not ok.any():
+                    continue
+                self._add_values(name, values[ok])
+                if sigma is not None:
+                    self._add_values("sigma_" + name, sigma[ok])
+                self._refresh(name)
         self._view = None
 
-    def _add_values(self, name: str, values: np.ndarray) -> None:
-        v = values[np.isfinite(values)]
-        if v.size == 0:
-            return
+    def _add_values(self, name: str, v: np.ndarray) -> None:
         self._total[name] += int(v.size)
         v = v[-self._max_cells:]
         buf, pos = self._buffers[name], self._next[name]
@@ -173,10 +197,15 @@ class SessionContext:
             buf[:end - self._max_cells] = v[k:]
         self._next[name] = end % self._max_cells
         self._filled[name] = min(self._filled[name] + v.size, self._max_cells)
-        data = buf[:self._filled[name]]
+
+    def _refresh(self, name: str) -> None:
+        data = self._buffers[name][:self._filled[name]]
         med = float(np.median(data))
         scale = MAD_TO_SIGMA * float(np.median(np.abs(data - med)))
-        self._stats[name] = DescriptorStats(med, scale, int(data.size), self._total[name])
+        sig = math.nan
+        if name in _WITH_SIGMA:
+            sig = float(np.median(self._buffers["sigma_" + name][:self._filled[name]]))
+        self._stats[name] = DescriptorStats(med, scale, int(data.size), self._total[name], sig)
 
     def add_visited(self, region_stage: Mapping) -> None:
         """Record a stage region already imaged or proposed (keys of :class:`SessionView`)."""

@@ -113,14 +113,40 @@ def loop_windings(ux, uy, *, loop_cells: int = 1, valid=None, max_step_rad: floa
 
 
 def _box_mean(values, ok, size: int):
-    """Mean over a size x size box of the cells present (NaN where the centre is absent)."""
+    """Mean over a size x size box of the cells present, and how many there were.
+
+    Defined where at least half the box has cells, so an isolated missing
+    cell (a B column not found at low dose) is bridged by its neighbours
+    instead of breaking every loop through it.
+    """
     if size <= 1:
         return np.where(ok, values, np.nan), np.where(ok, 1.0, 0.0)
     k = np.ones((size, size))
     n = ndimage.convolve(ok.astype(float), k, mode="constant")
     s = ndimage.convolve(np.where(ok, values, 0.0), k, mode="constant")
+    enough = n >= 0.5 * size * size
     with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(ok, s / n, np.nan), np.where(ok, n, 0.0)
+        return np.where(enough, s / n, np.nan), np.where(enough, n, 0.0)
+
+
+def _core_position(loops, L, mag, x, y, x_mean, y_mean):
+    """Where the smoothed displacement is weakest inside every winding loop of a cluster.
+
+    Each loop of the cluster encloses the core, so the core lies in the
+    intersection of their interiors; there the field's magnitude falls
+    towards zero at the core.  Falls back to the loops' mean centre when the
+    intersection has no cell.
+    """
+    a, b = np.nonzero(loops)
+    i_lo, i_hi = a.max() + (1 if L > 1 else 0), a.min() + (L - 1 if L > 1 else 1)
+    j_lo, j_hi = b.max() + (1 if L > 1 else 0), b.min() + (L - 1 if L > 1 else 1)
+    box = (slice(i_lo, i_hi + 1), slice(j_lo, j_hi + 1))
+    m, bx, by = mag[box], x[box], y[box]
+    ok = np.isfinite(m) & np.isfinite(bx) & np.isfinite(by)
+    if not ok.any():
+        return x_mean, y_mean
+    w = 1.0 / np.maximum(m[ok], 1e-6) ** 2
+    return float(np.sum(w * bx[ok]) / w.sum()), float(np.sum(w * by[ok]) / w.sum())
 
 
 class VortexCoreRule:
@@ -151,7 +177,7 @@ class VortexCoreRule:
         s_mean, _ = _box_mean(sd, ok, cfg.smooth_cells)
         with np.errstate(invalid="ignore", divide="ignore"):
             snr = np.hypot(ux, uy) / (s_mean / np.sqrt(np.maximum(n, 1.0)))
-        valid = ok & (snr >= cfg.min_snr)
+        valid = np.isfinite(snr) & (snr >= cfg.min_snr)
         w = loop_windings(ux, uy, loop_cells=L, valid=valid,
                           max_step_rad=math.radians(cfg.max_step_deg),
                           handedness=grid.handedness)
@@ -171,9 +197,12 @@ class VortexCoreRule:
             count = ndimage.sum_labels(hit, labels, idx)
             mx = ndimage.mean(cx, labels, idx)
             my = ndimage.mean(cy, labels, idx)
+            mag = np.hypot(ux, uy)
             for k in np.flatnonzero(count >= cfg.min_loops):
-                flags.append(self._flag(kind, winding, float(mx[k]), float(my[k]),
-                                        int(count[k]), grid, snr, cells))
+                px_, py_ = _core_position(labels == k + 1, L, mag, x, y,
+                                          float(mx[k]), float(my[k]))
+                flags.append(self._flag(kind, winding, px_, py_, int(count[k]), grid, snr,
+                                        cells))
         flags.sort(key=lambda f: -f.score)
         return flags[:cfg.max_flags]
 
