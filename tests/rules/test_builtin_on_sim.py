@@ -9,7 +9,7 @@ parameter a = 389.87 pm (config/materials.toml; CHECK-VALUES.md section 1).
 Doses: walls, interfaces and anomalies at the demo's default 2 us dwell (250 electrons per
 pixel); the cores at 4 us, because at 2 us the cells next to a core (where the displacement
 falls towards zero) carry no direction and the core is found only to about one cell (measured
-while writing this rule: 0.2-1.0 cells over three seeds).
+while writing this rule, three seeds each: 0.1-0.9 cells at 2 us, 0.2-0.4 cells at 4 us).
 """
 
 from __future__ import annotations

@@ -14,8 +14,11 @@ What it flags
     around it have no trustworthy direction and a one-cell plaquette there is
     never valid at ordinary doses.  A loop ``L`` cells across, on a field
     box-averaged over ``smooth_cells``, runs where the displacement has
-    recovered; every loop that encloses the core winds, and the centroid of
-    those loops is the core.
+    recovered; every loop that encloses the core winds.  Overlapping loops of
+    one winding are one core, placed at the zero of an affine fit ``u = A r +
+    c`` to the raw displacements within ``L/2 + 1`` cells of the loops' mean
+    centre (``sign(det A)`` must equal the winding; else the mean centre is
+    used).
 
     A loop counts only when every cell on it has ``|u| / sigma(|u|) >=
     min_snr`` (after smoothing) and the direction turns by at most
@@ -129,24 +132,30 @@ def _box_mean(values, ok, size: int):
         return np.where(enough, s / n, np.nan), np.where(enough, n, 0.0)
 
 
-def _core_position(loops, L, mag, x, y, x_mean, y_mean):
-    """Where the smoothed displacement is weakest inside every winding loop of a cluster.
+def _core_position(x_mean, y_mean, winding, radius_px, x, y, dx, dy):
+    """The zero of the affine fit ``u = A r + c`` to the cells near the loops' mean centre.
 
-    Each loop of the cluster encloses the core, so the core lies in the
-    intersection of their interiors; there the field's magnitude falls
-    towards zero at the core.  Falls back to the loops' mean centre when the
-    intersection has no cell.
+    Near a core of winding +-1 the field is to first order ``A (r - r0)`` with
+    ``sign(det A)`` the winding, so ``r0 = -A^-1 c``.  The fit uses the
+    unsmoothed displacements within `radius_px`, symmetric about the core
+    whatever subset of the loops passed the validity gates (their mean centre
+    is pulled towards the valid side).  Falls back to the mean centre when the
+    fit is not a core of that winding or lands outside the neighbourhood.
     """
-    a, b = np.nonzero(loops)
-    i_lo, i_hi = a.max() + (1 if L > 1 else 0), a.min() + (L - 1 if L > 1 else 1)
-    j_lo, j_hi = b.max() + (1 if L > 1 else 0), b.min() + (L - 1 if L > 1 else 1)
-    box = (slice(i_lo, i_hi + 1), slice(j_lo, j_hi + 1))
-    m, bx, by = mag[box], x[box], y[box]
-    ok = np.isfinite(m) & np.isfinite(bx) & np.isfinite(by)
-    if not ok.any():
+    near = np.hypot(x - x_mean, y - y_mean) <= radius_px
+    near &= np.isfinite(x) & np.isfinite(y) & np.isfinite(dx) & np.isfinite(dy)
+    if near.sum() < 6:
         return x_mean, y_mean
-    w = 1.0 / np.maximum(m[ok], 1e-6) ** 2
-    return float(np.sum(w * bx[ok]) / w.sum()), float(np.sum(w * by[ok]) / w.sum())
+    design = np.column_stack([x[near] - x_mean, y[near] - y_mean, np.ones(near.sum())])
+    coef, *_ = np.linalg.lstsq(design, np.column_stack([dx[near], dy[near]]), rcond=None)
+    a = coef[:2].T                      # rows: (du_x/dx, du_x/dy), (du_y/dx, du_y/dy)
+    det = float(np.linalg.det(a))
+    if not np.isfinite(det) or np.sign(det) != winding:
+        return x_mean, y_mean
+    r0 = np.linalg.solve(a, -coef[2])
+    if not np.hypot(*r0) <= radius_px:
+        return x_mean, y_mean
+    return float(x_mean + r0[0]), float(y_mean + r0[1])
 
 
 class VortexCoreRule:
@@ -197,10 +206,11 @@ class VortexCoreRule:
             count = ndimage.sum_labels(hit, labels, idx)
             mx = ndimage.mean(cx, labels, idx)
             my = ndimage.mean(cy, labels, idx)
-            mag = np.hypot(ux, uy)
             for k in np.flatnonzero(count >= cfg.min_loops):
-                px_, py_ = _core_position(labels == k + 1, L, mag, x, y,
-                                          float(mx[k]), float(my[k]))
+                # Handedness: the winding is measured in the (i, j) loop order; the affine
+                # fit's determinant is in (x, y), where it carries the winding's sign.
+                px_, py_ = _core_position(float(mx[k]), float(my[k]), winding,
+                                          (0.5 * L + 1.0) * grid.cell_px, x, y, dx, dy)
                 flags.append(self._flag(kind, winding, px_, py_, int(count[k]), grid, snr,
                                         cells))
         flags.sort(key=lambda f: -f.score)
