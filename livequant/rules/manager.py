@@ -452,9 +452,9 @@ class RuleManager:
         ``rules.max_consecutive_failures`` failures in a row it is disabled.
         """
         out: list[Flag] = []
-        # pluggy lists implementations last-registered first; run in registration order.
-        impls = reversed(self._pm.hook.livequant_frame_rules.get_hookimpls())
-        for impl in impls:
+        # get_hookimpls() lists them in registration order (pluggy's own call would run them
+        # last-registered first and stop at the first exception).
+        for impl in self._pm.hook.livequant_frame_rules.get_hookimpls():
             state = self._states.get(impl.plugin_name)
             if state is None or state.disabled:
                 continue

@@ -135,6 +135,15 @@ def test_a_raising_rule_is_skipped_logged_counted_and_others_still_run(caplog):
     assert mgr.status()["failures_total"] == 3
 
 
+def test_rules_run_in_registration_order():
+    mgr = RuleManager(Settings())
+    for name in ("c_first", "a_second", "b_third"):
+        mgr.register(_Steady(), name=name)
+    mgr.configure()
+    flags = mgr.evaluate(_view(), SessionContext().readonly())
+    assert [f.rule for f in flags] == mgr.names == ["c_first", "a_second", "b_third"]
+
+
 def test_a_success_resets_the_run_of_failures():
     mgr = RuleManager(_settings(max_consecutive_failures=2))
     mgr.register(_Boom(fail_on=lambda fid: fid.startswith("bad")), name="flaky")
