@@ -418,7 +418,10 @@ class RuleManager:
 
     def configure(self) -> None:
         """Call ``livequant_configure`` of every rule (once), in registration order."""
-        self._pm.check_pending()
+        try:
+            self._pm.check_pending()   # a misspelled hook stops start-up, not the first frame
+        except pluggy.PluginValidationError as exc:
+            raise ConfigError(f"rule plugin {exc.plugin!r}: {exc}") from exc
         for name in list(self._states):
             self._configure_one(name)
         self._configured = True
