@@ -44,9 +44,10 @@ def manager(settings):
     return RuleManager.from_settings(settings)
 
 
-def _acquire(spec, settings, center_nm, *, seed, dwell_time_us=2.0):
+def _acquire(spec, settings, center_nm, *, seed, dwell_time_us=2.0, scan_rotation_deg=0.0):
     acq = ScanEngine(spec, seed=seed).acquire(center_nm=center_nm, fov_nm=FOV_NM,
-                                               shape_px=SHAPE, dwell_time_us=dwell_time_us)
+                                               shape_px=SHAPE, dwell_time_us=dwell_time_us,
+                                               scan_rotation_deg=scan_rotation_deg)
     meta = resolve_meta(Sidecar.parse(acq.sidecar, where="sim"), default_id="sim", where="sim")
     result = analyze_frame(frame_from_array(acq.pixels, meta), settings)
     assert result.ok and result.cells is not None, result.message
@@ -61,9 +62,13 @@ def _by_kind(flags, kind):
     return [f for f in flags if f.kind == kind]
 
 
-@pytest.mark.parametrize("center_nm, seed", [((-40.0, 0.0), 1), ((70.0, 20.0), 2)])
-def test_flagged_wall_lies_on_the_true_wall(demo, settings, manager, center_nm, seed):
-    acq, view = _acquire(demo, settings, center_nm, seed=seed)
+@pytest.mark.parametrize("center_nm, seed, rotation_deg", [((-40.0, 0.0), 1, 0.0),
+                                                           ((70.0, 20.0), 2, 0.0),
+                                                           ((-40.0, 10.0), 7, 25.0)])
+def test_flagged_wall_lies_on_the_true_wall(demo, settings, manager, center_nm, seed,
+                                            rotation_deg):
+    # The last case scans rotated by 25 degrees: the wall crosses the image obliquely.
+    acq, view = _acquire(demo, settings, center_nm, seed=seed, scan_rotation_deg=rotation_deg)
     walls = [w for w in acq.truth.meta["walls"] if w["crosses_frame"]]
     assert len(walls) == 1
     row, col = walls[0]["point_px"]
