@@ -3,17 +3,23 @@
 What it flags
     ``anomaly`` for a cluster of cells whose descriptor lies far from the
     session's running robust statistics (``context.stats``: median and
-    ``1.4826 x MAD`` of the recent cells of earlier frames).  The score of a
-    cell is
+    ``1.4826 x MAD`` of the recent cells of earlier frames).  The session's
+    scale holds the typical measurement noise as well as the specimen's own
+    spread, so each cell is judged against the specimen's spread plus its
+    own uncertainty:
 
-        z = |v - median| / sqrt(scale^2 + sigma_v^2)
+        z = (v - median) / sqrt(intrinsic^2 + sigma_v^2),
+        intrinsic^2 = max(scale^2 - median_sigma^2, 0)
 
-    with ``sigma_v`` the cell's own uncertainty, so a cell that is merely
-    poorly measured is not an anomaly.  Cells with ``z > k_sigma`` are
-    clustered on the ``(i, j)`` grid (8-connected, ``scipy.ndimage.label``);
-    a cluster of at least ``min_cells`` cells is one flag.  Typical finds:
-    chemical expansion around a defect (``a_pm``, ``b_pm``), a vacancy
-    (``ratio_b_a``), a suppressed or enhanced polar displacement (``d_pm``).
+    and a cell that is merely poorly measured is not an anomaly.  Cells with
+    ``z > k_cell`` (high) or ``z < -k_cell`` (low) are clustered on the
+    ``(i, j)`` grid (8-connected, ``scipy.ndimage.label``), and a cluster of at
+    least ``min_cells`` cells is flagged when its combined score ``sum(z) /
+    sqrt(n)`` (Stouffer) exceeds ``k_sigma``: a few neighbouring cells at 3-4
+    sigma together are as telling as one far out.  Typical finds: chemical
+    expansion around a defect (``a_pm``, ``b_pm`` high), a vacancy
+    (``ratio_b_a`` low), a suppressed polar displacement (``d_pm`` low), a
+    domain of another orientation (``a_pm`` and ``b_pm`` swapped).
 
     No flags until the session's statistics hold ``min_session_cells`` cells
     of that descriptor: the first frames set the reference.
@@ -23,16 +29,18 @@ Region
     ``margin_cells``.
 
 Score
-    ``1 - k_sigma / z_max`` (0 at the threshold, towards 1 far beyond it).
+    ``1 - k_sigma / z_combined`` (0 at the threshold, towards 1 far beyond it).
 
 Thresholds (``[rules.anomalies]``)
-    ``descriptors``, ``k_sigma``, ``min_cells``, ``min_session_cells``,
-    ``margin_cells``, ``max_flags`` (per descriptor and frame).
+    ``descriptors``, ``k_cell``, ``k_sigma``, ``min_cells``,
+    ``min_session_cells``, ``margin_cells``, ``max_flags`` (per frame,
+    descriptor and direction).
 
 Evidence
-    ``descriptor``, ``n_cells``, ``z_max``, ``value`` (at the peak cell),
-    ``sigma``, ``session_median``, ``session_scale``, ``session_n``,
-    ``i``, ``j`` (the peak cell).
+    ``descriptor``, ``direction`` ("high"/"low"), ``n_cells``,
+    ``z_combined``, ``z_max``, ``value`` and ``sigma`` (at the peak cell),
+    ``session_median``, ``session_scale``, ``session_n``, ``i``, ``j`` (the
+    peak cell).
 """
 
 from __future__ import annotations
