@@ -146,6 +146,70 @@ class DaemonSettings(_Model):
     max_attempts: int = Field(default=3, ge=1, le=100)
 
 
+# ---------------------------------------------------------------- decision rules
+
+
+class DomainWallRuleSettings(_Model):
+    """Built-in rule ``domain_walls``: flags the tanh wall fit of the cells summary."""
+
+    max_reduced_chi2: float = Field(default=10.0, gt=0)
+    min_contrast_snr: float = Field(default=2.0, ge=0)
+    contrast_half_snr: float = Field(default=4.0, gt=0)
+    max_width_cells: float = Field(default=3.0, gt=0)
+    refit_min_snr: float = Field(default=1.5, ge=0)
+    band_cells: float = Field(default=3.0, gt=0)
+
+
+class VortexRuleSettings(_Model):
+    """Built-in rule ``vortex_cores``: winding numbers on loops of cells."""
+
+    loop_cells: int = Field(default=4, ge=1, le=10)
+    smooth_cells: int = Field(default=5, ge=1, le=9)
+    min_snr: float = Field(default=2.0, ge=0)
+    max_step_deg: float = Field(default=90.0, gt=0, le=180)
+    min_loops: int = Field(default=2, ge=1)
+    region_cells: float = Field(default=4.0, gt=0)
+    max_flags: int = Field(default=20, ge=1)
+
+
+class InterfaceRuleSettings(_Model):
+    """Built-in rule ``interfaces``: a step along a lattice row profile."""
+
+    descriptors: list[str] = ["a_pm", "b_pm", "ratio_b_a"]
+    window_rows: int = Field(default=3, ge=1, le=20)
+    min_significance: float = Field(default=8.0, gt=0)
+    min_relative_step: float = Field(default=0.01, ge=0)
+    band_cells: float = Field(default=2.0, gt=0)
+
+
+class AnomalyRuleSettings(_Model):
+    """Built-in rule ``anomalies``: robust score against the session's running statistics."""
+
+    descriptors: list[str] = ["a_pm", "b_pm", "d_pm", "ratio_b_a"]
+    k_cell: float = Field(default=2.5, gt=0)
+    k_sigma: float = Field(default=6.0, gt=0)
+    min_cells: int = Field(default=1, ge=1)
+    min_session_cells: int = Field(default=500, ge=1)
+    margin_cells: float = Field(default=1.0, ge=0)
+    max_flags: int = Field(default=10, ge=1)
+
+
+class RulesSettings(_Model):
+    """Decision rules (livequant.rules): which load, from where, and their thresholds."""
+
+    enabled: list[str] = ["domain_walls", "vortex_cores", "interfaces", "anomalies"]
+    blocked: list[str] = []
+    plugin_dirs: list[str] = []
+    max_consecutive_failures: int = Field(default=5, ge=1, le=100_000)
+    history: int = Field(default=500, ge=1, le=1_000_000)
+    stats_max_cells: int = Field(default=50_000, ge=100, le=10_000_000)
+    domain_walls: DomainWallRuleSettings = DomainWallRuleSettings()
+    vortex_cores: VortexRuleSettings = VortexRuleSettings()
+    interfaces: InterfaceRuleSettings = InterfaceRuleSettings()
+    anomalies: AnomalyRuleSettings = AnomalyRuleSettings()
+    options: dict[str, dict[str, Any]] = {}
+
+
 class Settings(_Model):
     """Every setting of livequant, with its default."""
 
@@ -153,6 +217,7 @@ class Settings(_Model):
     analysis: AnalysisSettings = AnalysisSettings()
     workers: int = Field(default=0, ge=0, le=64)
     daemon: DaemonSettings = DaemonSettings()
+    rules: RulesSettings = RulesSettings()
 
 
 # ---------------------------------------------------------------- loading
