@@ -28,6 +28,9 @@ COMMAND_MODULES = (
     "livequant.commands.bench",
     "livequant.commands.run",
     "livequant.commands.status",
+    "livequant.commands.proposals",
+    "livequant.commands.accept",
+    "livequant.commands.reject",
 )
 
 
