@@ -130,6 +130,7 @@ class Daemon:
         self._rules_arg = rules
         self._session_context_arg = session_context
         self.decisions: DecisionLoop | None = None
+        self._view_errors: set[str] = set()
         self.add_command("proposals", self._cmd_proposals)
         self.add_command("accept", self._cmd_accept)
         self.add_command("reject", self._cmd_reject)
@@ -442,7 +443,11 @@ class Daemon:
         if self.decisions is None:
             return
         if out.view is None:
-            if out.view_error:
+            if out.view_error and out.view_error not in self._view_errors:
+                # Once per kind of failure: a custom analysis may never give views.
+                self._view_errors.add(out.view_error)
+                log.warning("%s: no view for the decision loop (%s)", out.frame_id,
+                            out.view_error)
                 self._warn(f"{out.frame_id}: no view for the rules ({out.view_error})")
             return
         try:

@@ -152,8 +152,8 @@ class DecisionLoop:
                 p = row.get("payload") or {}
                 if p.get("used") and "t_ref_s" in p:
                     self.model.add_pair(p["t_ref_s"], p["t_s"], p["shift_nm"], p["sigma_nm"])
-                self.model.add_anchor(row["frame_id"], row["t"], (row["dx_nm"], row["dy_nm"]),
-                                      row["sigma_nm"] or 0.0)
+                    self.model.add_anchor(row["frame_id"], row["t"],
+                                          (row["dx_nm"], row["dy_nm"]), row["sigma_nm"] or 0.0)
             for f in self.ledger.flags()[-_KEEP_RECENT:]:
                 self.recent_flags.append(_flag_brief(f))
             if n:
