@@ -166,7 +166,6 @@ def test_no_region_is_proposed_twice_and_a_raising_rule_is_survived(tmp_path, sp
         assert d2.decisions.status()["proposals"]["skipped_visited"] == 1
 
 
-@pytest.mark.slow
 def test_accepted_proposal_after_drift_contains_the_feature(tmp_path, specimen):
     """The loop end to end with the simulated instrument and its truth.
 
@@ -220,3 +219,56 @@ def test_accepted_proposal_after_drift_contains_the_feature(tmp_path, specimen):
         [prop["region"]["center_x_nm"], prop["region"]["center_y_nm"]])))
     assert moved > 3.0
     json.dumps(reply)  # the reply is plain JSON
+
+
+def test_auto_accept_closes_the_loop_with_the_simulator_in_serve_mode(tmp_path, specimen):
+    """The simulated instrument's own loop, with auto-accept (meant for it alone).
+
+    1. The simulator runs in serve mode on a thread, subscribed to the daemon's events.
+    2. One survey frame flags the demo's vortex core; the proposal is accepted at once.
+    3. The scan-request reaches the simulator, which writes the requested frame into the
+       watched folder; the daemon analyses it and records its region as visited.
+    4. The requested frame's truth has the core inside; nothing is proposed again."""
+    import threading
+
+    from sim_instrument.modes import run_serve
+    from sim_instrument.outputs import FolderSink
+
+    eng = ScanEngine(specimen, seed=5, drift=SimDrift((0.01, 0.005), 0.0))
+    d, watch = _daemon(tmp_path, settings=_settings(**{
+        "drift.clock": "frames", "proposals.lead_time_s": 0.0, "proposals.auto_accept": True,
+        "proposals.pixel_size_pm": 40.0}))
+    sink = FolderSink(watch, truth_dir=tmp_path / "truth", fmt="npy")
+    served: list = []
+    stop = threading.Event()
+    with running_daemon(d):
+        serve = threading.Thread(target=lambda: served.extend(run_serve(
+            eng, [sink], d.endpoints["events"], max_requests=1, duration_s=60, stop=stop)),
+            daemon=True)
+        serve.start()
+        try:
+            import time
+
+            time.sleep(0.5)  # let the subscription reach the PUB socket (slow joiner)
+            acq = eng.acquire((-96.0, 66.0), 16.0, (256, 256))
+            core = next(c for c in acq.truth.meta["vortex_cores"] if c["winding"] == 1)
+            assert core["in_frame"]
+            write_sim(watch, acq, test_flags=[{"x_px": core["position_px"][1],
+                                               "y_px": core["position_px"][0], "size_px": 20,
+                                               "kind": "vortex", "score": 0.9}])
+            serve.join(60)
+            assert served, "the simulator received no scan-request"
+            _done(d, 2)
+        finally:
+            stop.set()
+            serve.join(10)
+        (prop,) = list(d.ledger.proposals())
+        assert prop["state"] == "accepted"
+        assert d.ledger.decisions()[0]["decided_by"] == "auto"
+        assert d.decisions.planner.visited  # the requested frame's footprint
+    from sim_instrument.engine import FrameTruth
+
+    truth = FrameTruth.load(tmp_path / "truth" / served[0])
+    assert truth.meta["sidecar"]["request_id"] == prop["id"]
+    core = next(c for c in truth.meta["vortex_cores"] if c["winding"] == 1)
+    assert core["in_frame"]

@@ -80,7 +80,6 @@ def test_scan_request_follows_the_simulator_schema_and_round_trips():
     assert proposal_from_json(prop.to_json()) == prop
 
 
-@pytest.mark.slow
 def test_after_drift_the_placed_region_contains_the_feature():
     """The key loop check against the simulator's truth.
 
