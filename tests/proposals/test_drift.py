@@ -89,3 +89,28 @@ def test_model_without_pairs_predicts_no_drift_with_prior_uncertainty():
     m = DriftModel(prior_speed_nm_per_s=0.02, random_walk_nm_per_sqrt_s=0.0)
     shift, sigma = m.predict_shift(0.0, 50.0)
     assert np.all(shift == 0) and sigma == pytest.approx(1.0)
+
+
+def test_frames_of_different_pixel_size_and_rotation_register(specimen):
+    """A survey frame (47 pm pixels, no rotation) and a finer, rotated re-scan (20 pm, 20 deg)
+    of the same place: both resampled on one stage grid; the shift matches the truth."""
+    eng = ScanEngine(specimen, seed=9, drift=SimDrift((0.02, 0.01), 0.0))
+    a_acq = eng.acquire((-20, 20), 12.0, (256, 256))
+    eng.wait(3.0)
+    b_acq = eng.acquire((-19, 20.5), 6.0, (300, 300), scan_rotation_deg=20.0)
+    a, b = drift_image(a_acq), drift_image(b_acq)
+    truth = truth_drift_nm(b_acq) - truth_drift_nm(a_acq)
+    r = estimate_pair_drift(a, b, search_radius_nm=0.15, prior_sigma_nm=0.05)
+    assert r is not None and not r.ambiguous
+    # Tolerance 15 pm: a third of the coarser (47 pm) grid pixel.
+    assert np.abs(r.shift_nm - truth).max() < 0.015
+
+
+def test_frames_that_do_not_overlap_give_no_measurement(specimen):
+    eng = ScanEngine(specimen, seed=9, drift=SimDrift.none())
+    a = drift_image(eng.acquire((-20, 20), 8.0, (128, 128)))
+    b = drift_image(eng.acquire((20, 20), 8.0, (128, 128)))
+    assert estimate_pair_drift(a, b) is None
+    tracker = DriftTracker(DriftModel())
+    assert tracker.observe(a) is None and tracker.observe(b) is None
+    assert tracker.model.n_pairs == 0
