@@ -29,6 +29,9 @@ COMMAND_MODULES = (
     "livequant.commands.demo",
     "livequant.commands.run",
     "livequant.commands.status",
+    "livequant.commands.proposals",
+    "livequant.commands.accept",
+    "livequant.commands.reject",
 )
 
 

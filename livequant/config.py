@@ -208,6 +208,40 @@ class RulesSettings(_Model):
     interfaces: InterfaceRuleSettings = InterfaceRuleSettings()
     anomalies: AnomalyRuleSettings = AnomalyRuleSettings()
     options: dict[str, dict[str, Any]] = {}
+class ProposalSettings(_Model):
+    """Flags -> proposed scan regions (livequant.proposals)."""
+
+    enabled: bool = True
+    min_score: float = Field(default=0.3, ge=0, le=1)
+    margin_nm: float = Field(default=1.0, ge=0, le=1000)
+    min_size_nm: float = Field(default=4.0, gt=0, le=5000)
+    max_size_nm: float = Field(default=40.0, gt=0, le=5000)
+    merge_overlap: float = Field(default=0.3, gt=0, le=1)
+    visited_overlap: float = Field(default=0.5, gt=0, le=1)
+    max_per_frame: int = Field(default=3, ge=0, le=1000)
+    max_per_session: int = Field(default=50, ge=0, le=100_000)
+    pixel_size_pm: float = Field(default=10.0, gt=0, le=100_000)
+    dwell_time_us: float = Field(default=4.0, gt=0, le=1000)
+    max_side_px: int = Field(default=2048, ge=64, le=8192)
+    lead_time_s: float = Field(default=10.0, ge=0, le=3600)
+    auto_accept: bool = False
+
+
+class DriftSettings(_Model):
+    """Specimen drift from overlapping frames (livequant.proposals.drift)."""
+
+    enabled: bool = True
+    keep_frames: int = Field(default=8, ge=1, le=100)
+    min_overlap_fraction: float = Field(default=0.3, gt=0, le=1)
+    search_radius_nm: float = Field(default=5.0, gt=0, le=1000)
+    min_search_radius_nm: float = Field(default=0.5, gt=0, le=1000)
+    upsample_factor: int = Field(default=20, ge=1, le=100)
+    ambiguity_ratio: float = Field(default=0.8, gt=0, le=1)
+    memory_s: float = Field(default=600.0, gt=0)
+    random_walk_nm_per_sqrt_s: float = Field(default=0.01, ge=0)
+    prior_speed_nm_per_s: float = Field(default=0.02, gt=0)
+    outlier_sigma: float = Field(default=4.0, gt=0)
+    clock: Literal["wall", "frames"] = "wall"
 
 
 class Settings(_Model):
@@ -218,6 +252,8 @@ class Settings(_Model):
     workers: int = Field(default=0, ge=0, le=64)
     daemon: DaemonSettings = DaemonSettings()
     rules: RulesSettings = RulesSettings()
+    proposals: ProposalSettings = ProposalSettings()
+    drift: DriftSettings = DriftSettings()
 
 
 # ---------------------------------------------------------------- loading

@@ -132,12 +132,6 @@ class _Instrument(threading.Thread):
         self.error: str | None = None
         self._t0 = time.monotonic()
 
-    def _sync_clock(self, engine) -> None:
-        # The specimen drifts with the wall clock, as at the instrument.
-        behind = (time.monotonic() - self._t0) - engine.time_s
-        if behind > 0:
-            engine.wait(behind)
-
     def run(self) -> None:
         try:
             self._run()
@@ -160,7 +154,7 @@ class _Instrument(threading.Thread):
             if self.stop.is_set() or time.monotonic() >= deadline:
                 break
             started = time.monotonic()
-            self._sync_clock(engine)
+            engine.catch_up()  # the specimen drifts with the wall clock, as at the instrument
             acq = engine.acquire((x_nm, y_nm), o.fov_nm, o.shape_px)
             sink.send(acq.pixels, acq.sidecar, acq.truth)
             self.survey_ids.append(acq.frame_id)
@@ -176,10 +170,10 @@ class _Instrument(threading.Thread):
         def on_frame(acq):
             self.revisit_ids.append(acq.frame_id)
 
-        # Serve accepted proposals until the demo's time is up.  Before each
-        # request the clock catches up with the wall clock (see _sync_clock).
+        # Serve accepted proposals until the demo's time is up; the specimen
+        # keeps drifting while the instrument waits for a request.
         run_serve(engine, [sink], endpoint, duration_s=remaining, stop=self.stop,
-                  on_frame=on_frame, before_acquire=lambda: self._sync_clock(engine))
+                  on_frame=on_frame, realtime_clock=True)
 
 
 def run_demo(options: DemoOptions, *, display_factory: Callable | None = None,

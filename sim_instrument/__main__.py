@@ -169,6 +169,9 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--max-requests", type=int, help="stop after this many frames")
     v.add_argument("--duration-s", type=_positive, default=None,
                    help="stop after this long, s (default: 3600 if --max-requests is not given)")
+    v.add_argument("--realtime-clock", action="store_true",
+                   help="let the simulated clock follow the wall clock between requests, so "
+                        "the specimen drifts while the instrument waits (off by default)")
     _add_instrument(v)
     _add_outputs(v)
 
@@ -247,7 +250,8 @@ def _run(args) -> int:
                     duration = 3600.0
                 ids = modes.run_serve(engine, sinks, args.events,
                                       max_requests=args.max_requests, duration_s=duration,
-                                      stop=stop, acquire_kw=kw)
+                                      stop=stop, acquire_kw=kw,
+                                      realtime_clock=args.realtime_clock)
     finally:
         for sink in sinks:
             sink.close()

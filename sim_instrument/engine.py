@@ -419,6 +419,21 @@ class ScanEngine:
             raise ValueError(f"`seconds` must be >= 0, got {seconds}")
         self.drift.offsets_nm([self.time_s + seconds])
 
+    def catch_up(self, now: datetime | None = None) -> float:
+        """Let simulated time reach the wall clock (opt-in, for a live loop).
+
+        The simulated clock normally advances only by acquisition and
+        :meth:`wait`; beside a live daemon the specimen should keep drifting
+        while nobody scans.  Advances the clock to ``now - start_time`` when
+        that is later, and returns the seconds added (0 when already there).
+        """
+        now = now or datetime.now(timezone.utc)
+        behind = (now - self.start_time).total_seconds() - self.time_s
+        if behind > 0:
+            self.wait(behind)
+            return behind
+        return 0.0
+
     def frame_time_s(self, shape_px, dwell_time_us: float) -> float:
         """Acquisition time of one frame: ``rows * (cols * t_px + t_flyback)``."""
         rows, cols = shape_px

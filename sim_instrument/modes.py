@@ -140,8 +140,7 @@ def run_serve(engine: ScanEngine, sinks: Sequence, events_endpoint: str, *,
               max_requests: int | None = None, duration_s: float | None = None,
               stop: threading.Event | None = None, context=None,
               poll_ms: int = 100, on_frame: Callable | None = None,
-              acquire_kw: dict | None = None,
-              before_acquire: Callable[[], None] | None = None) -> list[str]:
+              acquire_kw: dict | None = None, realtime_clock: bool = False) -> list[str]:
     """Acquire the regions asked for by ``scan-request`` events.
 
     Subscribes to `events_endpoint` (the daemon's events PUB socket), topic
@@ -151,9 +150,10 @@ def run_serve(engine: ScanEngine, sinks: Sequence, events_endpoint: str, *,
     after `max_requests` frames, after `duration_s`, or when
     `stop` is set; at least one of the first two must be given.  `acquire_kw`
     holds defaults (``dwell_time_us``, ``beam_current_pa``, ``dtype``) that a
-    request's own fields override.  `before_acquire` is called before each
-    acquisition (e.g. to let the simulated clock catch up with the wall clock,
-    so the specimen drifts while the instrument waited for a request).
+    request's own fields override.  With `realtime_clock` the simulated clock
+    catches up with the wall clock before each acquisition
+    (:meth:`ScanEngine.catch_up`), so the specimen drifts while the instrument
+    waits for requests, as a real one does.
     """
     import zmq
 
@@ -193,8 +193,8 @@ def run_serve(engine: ScanEngine, sinks: Sequence, events_endpoint: str, *,
             for key in ("dwell_time_us", "beam_current_pa", "detector"):
                 if getattr(req, key) is not None:
                     kw[key] = getattr(req, key)
-            if before_acquire is not None:
-                before_acquire()
+            if realtime_clock:
+                engine.catch_up()
             try:
                 acq = engine.acquire(
                     (req.center_x_nm, req.center_y_nm), req.fov_nm, req.shape_px,

@@ -36,8 +36,9 @@ from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
 from typing import Callable
 
-from livequant.config import Settings
+from livequant.config import ConfigError, Settings
 from livequant.daemon.commands import CommandServer
+from livequant.daemon.decisions import DecisionLoop
 from livequant.daemon.ledger import Ledger
 from livequant.daemon.publisher import EventPublisher
 from livequant.daemon.session import (SessionLock, SetupError, check_session_folder,
@@ -47,6 +48,7 @@ from livequant.daemon.sources import (Candidate, FolderSource, SocketSource,
 from livequant.daemon.status import LastFrame, Snapshot, last_frame_from_summary
 from livequant.daemon.worker import DEFAULT_ANALYZE, Outcome, init_worker, process_path
 from livequant.frames import sidecar_path
+from livequant.proposals.propose import CAUTION
 
 __all__ = ["Daemon", "SetupError", "file_sha256"]
 
@@ -82,6 +84,10 @@ class Daemon:
         ``FrameResult``.  Defaults to :func:`livequant.pipeline.analyze_frame`.
     log_heartbeat : bool
         Log a one-line status at every heartbeat (service mode, no display).
+    rules, session_context : optional
+        The decision rules (``evaluate(view, session_view) -> list[Flag]``,
+        ``status()``) and their session context; default from the settings
+        (:func:`livequant.daemon.decisions.make_rules`).
 
     Use :meth:`run` (blocking, with signal handling) or, in tests,
     :meth:`start` / :meth:`tick` / :meth:`shutdown`.
@@ -89,7 +95,8 @@ class Daemon:
 
     def __init__(self, settings: Settings, *, session: str | os.PathLike,
                  watch: str | os.PathLike | None = None,
-                 analyze: str | Callable = DEFAULT_ANALYZE, log_heartbeat: bool = True):
+                 analyze: str | Callable = DEFAULT_ANALYZE, log_heartbeat: bool = True,
+                 rules=None, session_context=None):
         self.settings = settings
         self.cfg = settings.daemon
         self.session_arg = Path(session)
@@ -120,6 +127,13 @@ class Daemon:
         self._stopped = False
         self.n_worker_crashes = 0
         self._extra_commands: dict[str, Callable[[dict], dict]] = {}
+        self._rules_arg = rules
+        self._session_context_arg = session_context
+        self.decisions: DecisionLoop | None = None
+        self._view_errors: set[str] = set()
+        self.add_command("proposals", self._cmd_proposals)
+        self.add_command("accept", self._cmd_accept)
+        self.add_command("reject", self._cmd_reject)
 
         self.paths = None
         self.watch = None
@@ -175,6 +189,14 @@ class Daemon:
             self.publisher = EventPublisher(self._zmq, f"tcp://{host}:{self.cfg.events_port}",
                                             self.paths.events)
             self.endpoints["events"] = self.publisher.start()
+            try:
+                self.decisions = DecisionLoop(self.settings, self.ledger, self.publisher,
+                                              rules=self._rules_arg,
+                                              session_context=self._session_context_arg,
+                                              warn=self._warn)
+            except ConfigError as exc:  # a broken rule plugin stops start-up, not frame 1
+                raise SetupError(f"rules: {exc}") from None
+            self.decisions.resume()
             self.commands = CommandServer(self._zmq, f"tcp://{host}:{self.cfg.commands_port}",
                                           self._command_handlers())
             self.endpoints["commands"] = self.commands.start()
@@ -406,6 +428,7 @@ class Daemon:
             if summary.get("status") not in (None, "ok"):
                 self._warn(f"{out.frame_id}: {summary.get('status')}: "
                            f"{summary.get('message', '')}")
+            self._decide(out, None if row is None else row.complete_at)
         else:
             self._one_at_a_time = False
             if not self.ledger.quarantine(seq, reason=out.reason or "unknown",
@@ -417,6 +440,25 @@ class Daemon:
             self.publisher.publish("status", {"event": "quarantined", "path": out.path,
                                               "frame_id": out.frame_id, "reason": out.reason,
                                               "message": out.message})
+
+    def _decide(self, out: Outcome, complete_at: float | None) -> None:
+        """Rules, drift and proposals for a done frame; nothing here may stop the daemon."""
+        if self.decisions is None:
+            return
+        if out.view is None:
+            if out.view_error and out.view_error not in self._view_errors:
+                # Once per kind of failure: a custom analysis may never give views.
+                self._view_errors.add(out.view_error)
+                log.warning("%s: no view for the decision loop (%s)", out.frame_id,
+                            out.view_error)
+                self._warn(f"{out.frame_id}: no view for the rules ({out.view_error})")
+            return
+        try:
+            self.decisions.on_frame(out.view, complete_at=complete_at)
+        except Exception as exc:  # noqa: BLE001 - on_frame guards its steps; belt and braces
+            self.decisions.n_errors += 1
+            log.exception("decision loop failed on %s", out.frame_id)
+            self._warn(f"decisions: {out.frame_id}: {type(exc).__name__}: {exc}")
 
     def _worker_crashed(self, seq: int) -> None:
         row = self.ledger.row(seq)
@@ -466,6 +508,14 @@ class Daemon:
         state = self._state
         if state == "running" and self.paused.is_set():
             state = "paused"
+        proposals, flags, decisions = (), (), {}
+        if self.decisions is not None and self.ledger is not None:
+            try:
+                proposals, flags = self.decisions.snapshot_tables()
+                decisions = self.decisions.status()
+            except Exception as exc:  # noqa: BLE001 - a snapshot must always be made
+                log.exception("decision-loop snapshot failed")
+                decisions = {"error": f"{type(exc).__name__}: {exc}"}
         self.snapshot = Snapshot(
             state=state,
             session=str(self.paths.root if self.paths else self.session_arg),
@@ -481,6 +531,9 @@ class Daemon:
             warnings=tuple(self._warnings),
             endpoints=dict(self.endpoints),
             rejected_messages=self.socket_source.n_rejected if self.socket_source else 0,
+            proposals=proposals,
+            flags=flags,
+            decisions=decisions,
         )
 
     def _heartbeat(self) -> None:
@@ -542,6 +595,23 @@ class Daemon:
             self.publisher.publish("status", {"event": "resumed"})
             self._wake.set()
         return {"state": "running"}
+
+    def _decision_loop(self) -> DecisionLoop:
+        if self.decisions is None:
+            raise ValueError("the decision loop is not running yet")
+        return self.decisions
+
+    def _cmd_proposals(self, req: dict) -> dict:
+        return {"proposals": self._decision_loop().list(req.get("state")), "caution": CAUTION}
+
+    def _cmd_accept(self, req: dict) -> dict:
+        return self._decision_loop().accept(req.get("id"), note=req.get("note"))
+
+    def _cmd_reject(self, req: dict) -> dict:
+        why = req.get("why")
+        if why is not None and not isinstance(why, str):
+            raise ValueError("`why` must be a string")
+        return self._decision_loop().reject(req.get("id"), why=why)
 
     def _cmd_shutdown(self, req: dict) -> dict:
         self.handle_exit()

@@ -52,6 +52,14 @@ class Snapshot:
         analysis runs behind the microscope.
     settling : int
         Files seen in the watched folder but not yet complete.
+    proposals : tuple of dict
+        Open proposals (best first) and the latest decided ones: ``id``,
+        ``state``, ``score``, ``center_nm``, ``size_nm``, ``reason``, ...
+    flags : tuple of dict
+        The most recent flags: ``id``, ``frame_id``, ``rule``, ``kind``,
+        ``score``, ``message``.
+    decisions : dict
+        Status of the decision loop: rules, drift, proposal budget, errors.
     """
 
     state: str
@@ -68,6 +76,9 @@ class Snapshot:
     warnings: tuple[str, ...] = ()
     endpoints: dict = field(default_factory=dict)
     rejected_messages: int = 0
+    proposals: tuple = ()
+    flags: tuple = ()
+    decisions: dict = field(default_factory=dict)
     taken_at: float = field(default_factory=time.time)
 
     @property

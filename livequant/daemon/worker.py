@@ -36,7 +36,10 @@ class Outcome:
 
     ``state`` is ``"done"`` or ``"quarantined"``; for a quarantined frame
     ``reason`` is a short tag (``FrameError.reason``, or ``analysis-error``)
-    and ``message`` says what went wrong.
+    and ``message`` says what went wrong.  ``view`` is the frame's
+    :class:`~livequant.rules.types.FrameView` for the decision loop (small:
+    columnar tables and a binned thumbnail, never the full image), or None
+    with ``view_error`` saying why it could not be built.
     """
 
     path: str
@@ -46,6 +49,8 @@ class Outcome:
     reason: str | None = None
     message: str | None = None
     timings_s: dict = field(default_factory=dict)
+    view: Any = None
+    view_error: str | None = None
 
 
 def resolve_callable(ref: str | Callable) -> Callable:
@@ -113,5 +118,18 @@ def process_path(path: str) -> Outcome:
     t2 = time.perf_counter()
     write_frame_outputs(result, _state["frames_dir"])
     t3 = time.perf_counter()
+    view, view_error = _frame_view(result, frame)
     return Outcome(path, "done", frame_id=result.frame_id, summary=result.summary(),
-                   timings_s={"read": t1 - t0, "analyze": t2 - t1, "write": t3 - t2})
+                   timings_s={"read": t1 - t0, "analyze": t2 - t1, "write": t3 - t2,
+                              "view": time.perf_counter() - t3},
+                   view=view, view_error=view_error)
+
+
+def _frame_view(result, frame):
+    """The decision loop's view of a frame; a failure is reported, never fatal."""
+    from livequant.rules.types import FrameView
+
+    try:
+        return FrameView.from_result(result, image=frame.pixels), None
+    except Exception as exc:  # noqa: BLE001 - the frame is done; only the decisions miss it
+        return None, f"{type(exc).__name__}: {exc}"

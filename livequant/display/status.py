@@ -2,7 +2,10 @@
 
 Sized for an 80 x 24 terminal: at most 18 lines and no line wider than 80
 columns once the panel border is drawn.  Long paths are shortened from the
-left (the end of a path is the part that tells sessions apart).
+left (the end of a path is the part that tells sessions apart).  Once the
+decision loop has something to show, a proposals table (ids, so the operator
+can ``livequant accept ID``) and a panel of recent flags follow the status
+panel; warnings then shrink to two lines so the whole fits 80 x 30.
 """
 
 from __future__ import annotations
@@ -15,11 +18,15 @@ from rich.text import Text
 
 from livequant.daemon.status import Snapshot
 
-__all__ = ["render_status", "format_duration", "shorten_path"]
+__all__ = ["render_status", "format_duration", "shorten_path", "proposals_table", "flags_table"]
 
 _STATE_STYLE = {"running": "bold green", "paused": "bold yellow", "draining": "bold yellow",
                 "starting": "bold cyan", "stopped": "bold red", "offline": "bold red"}
 _MAX_WARNINGS = 5
+_MAX_WARNINGS_WITH_DECISIONS = 2
+_MAX_PROPOSALS = 4
+_MAX_FLAGS = 3
+_PROPOSAL_STYLE = {"open": "bold", "accepted": "green", "rejected": "dim", "expired": "dim"}
 
 
 def format_duration(seconds: float) -> str:
@@ -90,7 +97,11 @@ def render_status(snap: Snapshot):
                          f"analysis {_seconds(last.analyze_s)}   "
                          f"latency {_seconds(last.latency_s)}")
 
-    warnings = list(snap.warnings)[-_MAX_WARNINGS:]
+    has_decisions = bool(snap.proposals or snap.flags)
+    if snap.decisions:
+        grid.add_row("decisions", _decisions_line(snap.decisions))
+    warnings = list(snap.warnings)[-(_MAX_WARNINGS_WITH_DECISIONS if has_decisions
+                                     else _MAX_WARNINGS):]
     if warnings:
         for i, w in enumerate(warnings):
             grid.add_row("warnings" if i == 0 else "", Text(w, style="yellow"))
@@ -104,5 +115,76 @@ def render_status(snap: Snapshot):
 
     title = Text.assemble(("livequant ", "bold"), (snap.state, _STATE_STYLE.get(snap.state, "")))
     subtitle = f"up {format_duration(snap.uptime_s)}" if snap.state != "offline" else None
-    return Panel(Group(grid), title=title, subtitle=subtitle, box=box.ROUNDED, width=80,
+    panel = Panel(Group(grid), title=title, subtitle=subtitle, box=box.ROUNDED, width=80,
+                  padding=(0, 1))
+    if not has_decisions:
+        return panel
+    parts = [panel]
+    if snap.proposals:
+        parts.append(proposals_table(snap.proposals, limit=_MAX_PROPOSALS))
+    if snap.flags:
+        parts.append(flags_table(snap.flags, limit=_MAX_FLAGS))
+    return Group(*parts)
+
+
+def _decisions_line(d: dict) -> Text:
+    out = Text()
+    drift = d.get("drift") or {}
+    v = drift.get("velocity_nm_per_s")
+    if v and drift.get("pairs"):
+        out.append(f"drift ({v[0] * 60:+.2f}, {v[1] * 60:+.2f}) nm/min "
+                   f"± {drift.get('sigma_v_nm_per_s', 0) * 60:.2f}")
+    else:
+        out.append("drift not measured yet", style="dim")
+    p = d.get("proposals") or {}
+    if p:
+        out.append(f"  {p.get('budget_left', 0)} proposals left")
+    if d.get("auto_accept"):
+        out.append("  AUTO-ACCEPT", style="bold red")
+    n_err = d.get("errors") or 0
+    if n_err:
+        out.append(f"  {n_err} errors", style="red")
+    return out
+
+
+def _nm(v) -> str:
+    return "-" if v is None else f"{v:.1f}"
+
+
+def proposals_table(rows, *, limit: int = _MAX_PROPOSALS, width: int | None = 80) -> Table:
+    """Proposals with their ids: state, score, centre and size (nm), reason."""
+    rows = list(rows)
+    t = Table(title=None, box=box.SIMPLE_HEAD, width=width, padding=(0, 1), expand=False,
+              title_justify="left")
+    t.add_column("proposal", no_wrap=True)
+    t.add_column("state", no_wrap=True)
+    t.add_column("score", justify="right", no_wrap=True)
+    t.add_column("centre nm", no_wrap=True)
+    t.add_column("size nm", no_wrap=True)
+    t.add_column("reason", no_wrap=True, overflow="ellipsis", ratio=1)
+    for r in rows[:limit]:
+        c = r.get("center_nm") or (None, None)
+        sz = r.get("size_nm") or (None, None)
+        state = r.get("state", "")
+        t.add_row(str(r.get("id")), Text(state, style=_PROPOSAL_STYLE.get(state, "")),
+                  "-" if r.get("score") is None else f"{r['score']:.2f}",
+                  f"{_nm(c[0])}, {_nm(c[1])}", f"{_nm(sz[0])} x {_nm(sz[1])}",
+                  str(r.get("reason") or ""))
+    if len(rows) > limit:
+        t.caption = f"{len(rows) - limit} more: livequant proposals"
+    return t
+
+
+def flags_table(rows, *, limit: int = _MAX_FLAGS, width: int = 80) -> Panel:
+    """The most recent flags (newest last): frame, rule, kind, score, message."""
+    grid = Table.grid(padding=(0, 1))
+    grid.add_column(no_wrap=True, max_width=16, overflow="ellipsis")
+    grid.add_column(no_wrap=True)
+    grid.add_column(justify="right", no_wrap=True)
+    grid.add_column(no_wrap=True, overflow="ellipsis", ratio=1)
+    for f in list(rows)[-limit:]:
+        score = f.get("score")
+        grid.add_row(str(f.get("frame_id")), f"{f.get('rule')}/{f.get('kind')}",
+                     "-" if score is None else f"{score:.2f}", str(f.get("message") or ""))
+    return Panel(grid, title="recent flags", title_align="left", box=box.ROUNDED, width=width,
                  padding=(0, 1))

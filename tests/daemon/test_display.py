@@ -77,3 +77,39 @@ def test_status_line_for_logs():
     line = status_line(_busy_snapshot())
     assert line.startswith("[running] done 345, queued 12, processing 2, quarantined 3;")
     assert "0.87 frames/s" in line and "scan_0345: 10112 columns a=390.5pm" in line
+
+
+def _decision_snapshot(n_proposals=6):
+    base = _busy_snapshot()
+    proposals = tuple({"id": f"p{k:04d}", "state": "open" if k < 4 else "accepted",
+                       "score": 0.9 - 0.1 * k, "center_nm": [-98.25 + k, 66.5],
+                       "size_nm": [6.0, 6.0], "reason": "vortex: winding +1 at the core of a "
+                       "polar vortex seen in two frames " + "x" * 40}
+                      for k in range(n_proposals))
+    flags = tuple({"id": k, "frame_id": f"scan_{k:04d}", "rule": "topology", "kind": "vortex",
+                   "score": 0.8, "message": f"flag message {k}"} for k in range(5))
+    decisions = {"drift": {"velocity_nm_per_s": [0.012, -0.006], "sigma_v_nm_per_s": 0.001,
+                           "pairs": 4}, "proposals": {"budget_left": 44}, "errors": 1,
+                 "auto_accept": False}
+    from dataclasses import replace
+
+    return replace(base, proposals=proposals, flags=flags, decisions=decisions)
+
+
+def test_proposals_table_and_flags_panel_fit_80_columns():
+    lines = _render(_decision_snapshot())
+    assert max(len(line) for line in lines) <= 80
+    assert len(lines) <= 30
+    text = "\n".join(lines)
+    for expected in ("p0000", "p0003", "0.90", "-98.2, 66.5", "6.0 x 6.0", "vortex: winding",
+                     "2 more: livequant proposals", "recent flags", "flag message 4",
+                     "drift (+0.72, -0.36) nm/min", "44 proposals left", "1 errors"):
+        assert expected in text, expected
+    assert "p0004" not in text          # only four rows; the rest are counted
+    assert "flag message 1" not in text  # the three newest flags
+    assert "frame_3.tif" not in text and "frame_7.tif" in text  # two warnings only
+
+
+def test_no_decisions_keeps_the_plain_panel():
+    lines = _render(_busy_snapshot())
+    assert "recent flags" not in "\n".join(lines)

@@ -298,3 +298,19 @@ def test_beyond_the_specimen_edge_is_vacuum():
     assert outside.truth.meta["n_columns"] == 0
     # Only the diffuse background remains (haadf_background_fraction of the beam).
     np.testing.assert_allclose(outside.pixels, 0.02 * electrons_per_pixel(20.0, 2.0), rtol=1e-6)
+
+
+def test_catch_up_lets_the_specimen_drift_with_the_wall_clock():
+    """Opt-in real-time clock: simulated time catches up with the wall clock, never back."""
+    from datetime import timedelta
+
+    from sim_instrument.engine import DriftModel
+
+    spec = Specimen.from_scenario("demo")
+    eng = ScanEngine(spec, seed=0, drift=DriftModel((0.1, 0.0), 0.0))
+    later = eng.start_time + timedelta(seconds=50)
+    assert eng.catch_up(later) == pytest.approx(50.0)
+    assert eng.time_s == pytest.approx(50.0)
+    assert eng.drift.peek_nm()[0] == pytest.approx(5.0)  # v t of the linear drift
+    assert eng.catch_up(eng.start_time + timedelta(seconds=10)) == 0.0
+    assert eng.time_s == pytest.approx(50.0)

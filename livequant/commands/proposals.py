@@ -1,0 +1,132 @@
+"""``livequant proposals``: the proposed scan regions of a session.
+
+Asks the daemon running on the session; with none running, reads the
+session's ledger.  Also holds the client helper that ``accept`` and
+``reject`` use to reach the daemon.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+
+from livequant.commands.run import DEFAULT_SESSION
+
+__all__ = ["register", "proposals_command", "ask_daemon", "NoDaemon", "print_caution"]
+
+STATES = ("open", "accepted", "rejected", "expired")
+
+
+class NoDaemon(RuntimeError):
+    """No daemon runs on the session (or it does not answer)."""
+
+
+def register(subparsers) -> None:
+    p = subparsers.add_parser(
+        "proposals", help="list proposed scan regions (id, score, centre, size, reason)",
+        description="List the scan regions proposed in a session, best first. Proposals are "
+                    "suggestions: check the dose budget of a beam-sensitive specimen; facility "
+                    "procedures and the instrument's interlocks come first.")
+    p.add_argument("--session", metavar="DIR", default=DEFAULT_SESSION,
+                   help=f"session folder (default ./{DEFAULT_SESSION})")
+    p.add_argument("--state", choices=STATES, default=None,
+                   help="only proposals in this state (default: all)")
+    p.add_argument("--json", action="store_true", help="one JSON object on stdout")
+    p.add_argument("--timeout", type=float, default=3.0, metavar="S",
+                   help="seconds to wait for the daemon's reply (default 3)")
+    p.set_defaults(func=proposals_command)
+
+
+def add_session_arguments(p) -> None:
+    p.add_argument("--session", metavar="DIR", default=DEFAULT_SESSION,
+                   help=f"session folder (default ./{DEFAULT_SESSION})")
+    p.add_argument("--json", action="store_true", help="one JSON object on stdout")
+    p.add_argument("--timeout", type=float, default=3.0, metavar="S",
+                   help="seconds to wait for the daemon's reply (default 3)")
+
+
+def ask_daemon(session: Path, request: dict, *, timeout_s: float = 3.0) -> dict:
+    """Send `request` to the daemon running on `session` and return its reply.
+
+    Raises
+    ------
+    NoDaemon
+        No daemon.json, a dead pid, or no reply within `timeout_s`.
+    """
+    from livequant.daemon import CommandError, SessionPaths, send_command
+    from livequant.daemon.session import pid_alive, read_daemon_file
+
+    paths = SessionPaths(Path(session).expanduser().resolve())
+    info = read_daemon_file(paths)
+    endpoint = (info or {}).get("endpoints", {}).get("commands")
+    if not info or not pid_alive(info.get("pid", -1)) or not endpoint:
+        raise NoDaemon(f"no daemon is running on {paths.root} (start one with `livequant run "
+                       f"--session {paths.root}`)")
+    try:
+        return send_command(endpoint, request, timeout_s=timeout_s)
+    except CommandError as exc:
+        raise NoDaemon(f"the daemon (pid {info.get('pid')}) did not answer: {exc}") from None
+
+
+def _from_ledger(session: Path, state: str | None) -> list[dict]:
+    from livequant.daemon import Ledger, SessionPaths
+    from livequant.daemon.decisions import _proposal_brief
+
+    paths = SessionPaths(Path(session).expanduser().resolve())
+    if not paths.ledger.exists():
+        raise FileNotFoundError(f"{paths.root}: no daemon running and no ledger; is this a "
+                                "session folder? (give --session DIR)")
+    with Ledger(paths.ledger, readonly=True) as ledger:
+        return [_proposal_brief(r) for r in ledger.proposals(state=state)]
+
+
+def print_caution(console=None) -> None:
+    from livequant.proposals.propose import CAUTION
+
+    if console is None:
+        print(f"caution: {CAUTION}", file=sys.stderr)
+    else:
+        console.print(f"caution: {CAUTION}", style="yellow")
+
+
+def proposals_command(args) -> int:
+    from livequant.cli import EXIT_BAD_INPUT, EXIT_FAILURE
+    from livequant.proposals.propose import CAUTION
+
+    source = "daemon"
+    try:
+        reply = ask_daemon(Path(args.session), {"cmd": "proposals", "state": args.state},
+                           timeout_s=args.timeout)
+        if not reply.get("ok"):
+            print(f"livequant proposals: {reply.get('error')}", file=sys.stderr)
+            return EXIT_BAD_INPUT
+        rows = reply["proposals"]
+    except NoDaemon:
+        source = "ledger"
+        try:
+            rows = _from_ledger(Path(args.session), args.state)
+        except FileNotFoundError as exc:
+            print(f"livequant proposals: {exc}", file=sys.stderr)
+            return EXIT_BAD_INPUT
+        except Exception as exc:  # noqa: BLE001 - a damaged ledger: say so, exit 1
+            print(f"livequant proposals: cannot read the ledger: {exc}", file=sys.stderr)
+            return EXIT_FAILURE
+    rows = sorted(rows, key=lambda r: (r["state"] != "open", -(r["score"] or 0)))
+    if args.json:
+        print(json.dumps({"source": source, "proposals": rows, "caution": CAUTION},
+                         default=str))
+        return 0
+    from rich.console import Console
+
+    from livequant.display.status import proposals_table
+
+    console = Console(stderr=True)
+    if not rows:
+        console.print("no proposals" + (f" in state {args.state}" if args.state else ""))
+    else:
+        console.print(proposals_table(rows, limit=len(rows), width=None))
+    if source == "ledger":
+        console.print("(no daemon running: read from the ledger)", style="dim")
+    print_caution(console)
+    return 0

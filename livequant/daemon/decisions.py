@@ -1,0 +1,368 @@
+"""The decision loop inside the daemon: rules -> flags, drift, proposals, operator decisions.
+
+After each frame is done the main thread calls :meth:`DecisionLoop.on_frame`
+with the frame's :class:`~livequant.rules.types.FrameView`: the rules run
+(each isolated by the rule manager), their flags go to the ledger and out as
+``flag`` events, the frame is registered against recent overlapping frames to
+update the drift model (``drift`` rows, a ``status`` event), and new flags
+become proposals (``proposals`` rows, ``proposal`` events).  The operator's
+``accept`` / ``reject`` commands arrive on the command thread; an accepted
+proposal is placed again for the drift expected when the instrument gets
+there and published as ``scan-request``.
+
+State shared between the two threads (drift model, planner, recent flags) is
+guarded by one lock; the ledger and the publisher are thread-safe on their own.
+Any exception inside a step is logged, counted and shown in the status; it
+never reaches the main loop.
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+import time
+from collections import deque
+from typing import Callable
+
+from livequant.proposals.drift import DriftImage, DriftModel, DriftTracker, frame_times_s
+from livequant.proposals.geometry import FrameGeometry, shift_region
+from livequant.proposals.propose import (CAUTION, Planner, candidate_from_flag,
+                                         proposal_from_json, scan_request_fields)
+
+__all__ = ["DecisionLoop", "make_rules"]
+
+log = logging.getLogger("livequant.decisions")
+
+_KEEP_RECENT = 8
+
+
+def make_rules(settings):
+    """``(rule manager, session context)`` from settings.
+
+    Raises
+    ------
+    livequant.config.ConfigError
+        For a plugin that cannot be loaded or validated: start-up stops with
+        the plugin's name, never the first frame.
+    """
+    from livequant.rules.manager import RuleManager, SessionContext
+
+    return RuleManager.from_settings(settings), SessionContext.from_settings(settings)
+
+
+class DecisionLoop:
+    """Rules, drift and proposals of one session (see the module docstring).
+
+    Parameters
+    ----------
+    settings : Settings
+        ``settings.proposals`` and ``settings.drift`` are used here.
+    ledger : Ledger
+    publisher : EventPublisher
+    rules, session_context : optional
+        The rule manager and session context (default :func:`make_rules`).
+    clock : callable
+        Unix time now (tests replace it).
+    warn : callable
+        Adds a line to the daemon's warnings.
+    """
+
+    def __init__(self, settings, ledger, publisher, *, rules=None, session_context=None,
+                 clock: Callable[[], float] = time.time, warn: Callable[[str], None] = log.warning):
+        self.cfg = settings.proposals
+        self.drift_cfg = settings.drift
+        self.ledger = ledger
+        self.publisher = publisher
+        if rules is None:
+            rules, made_ctx = make_rules(settings)
+            session_context = session_context or made_ctx
+        self.rules = rules
+        if session_context is None:
+            from livequant.rules.manager import SessionContext
+
+            session_context = SessionContext.from_settings(settings)
+        self.context = session_context
+        self.clock = clock
+        self.warn = warn
+        d = self.drift_cfg
+        self.model = DriftModel(memory_s=d.memory_s,
+                                random_walk_nm_per_sqrt_s=d.random_walk_nm_per_sqrt_s,
+                                prior_speed_nm_per_s=d.prior_speed_nm_per_s,
+                                outlier_sigma=d.outlier_sigma)
+        self.tracker = DriftTracker(self.model, keep_frames=d.keep_frames,
+                                    min_overlap_fraction=d.min_overlap_fraction,
+                                    search_radius_nm=d.search_radius_nm,
+                                    min_search_radius_nm=d.min_search_radius_nm,
+                                    upsample_factor=d.upsample_factor,
+                                    ambiguity_ratio=d.ambiguity_ratio)
+        self.planner = Planner.from_settings(self.cfg)
+        self._lock = threading.RLock()
+        self._next_number = 1
+        self._latest_frame_end_s: float | None = None
+        self.recent_flags: deque[dict] = deque(maxlen=_KEEP_RECENT)
+        self.n_errors = 0
+        self.last_error: str | None = None
+        self.n_flags = 0
+        self.n_frames = 0
+
+    # ------------------------------------------------------------- resume
+
+    def resume(self) -> None:
+        """Bring back proposals (budget, not-again) and drift measurements from the ledger."""
+        with self._lock:
+            n = 0
+            for row in self.ledger.proposals():
+                n += 1
+                payload = row.get("payload") or {}
+                spec = payload.get("specimen_region") or row["region"]
+                self.planner.add_proposed(spec)
+                if row["state"] == "accepted":
+                    self.planner.add_visited(spec)
+                    self._context_visited(row["region"])
+                self._next_number = max(self._next_number, _number(row["id"]) + 1)
+            for row in self.ledger.drift():
+                p = row.get("payload") or {}
+                if p.get("used") and "t_ref_s" in p:
+                    self.model.add_pair(p["t_ref_s"], p["t_s"], p["shift_nm"], p["sigma_nm"])
+                    self.model.add_anchor(row["frame_id"], row["t"],
+                                          (row["dx_nm"], row["dy_nm"]), row["sigma_nm"] or 0.0)
+            for f in self.ledger.flags()[-_KEEP_RECENT:]:
+                self.recent_flags.append(_flag_brief(f))
+            if n:
+                log.info("resumed %d proposal(s) and %d drift measurement(s) from the ledger", n,
+                         self.model.n_pairs)
+
+    # ------------------------------------------------------------- per frame
+
+    def now(self) -> float:
+        """"Now" for predictions: the wall clock, or the latest frame's end (``drift.clock``)."""
+        if self.drift_cfg.clock == "frames" and self._latest_frame_end_s is not None:
+            return self._latest_frame_end_s
+        return self.clock()
+
+    def on_frame(self, view, *, complete_at: float | None = None) -> None:
+        """Everything the decision loop does with one finished frame (never raises)."""
+        with self._lock:
+            self.n_frames += 1
+            try:
+                start, dur = frame_times_s(view.meta, view.shape)
+                if start is None:
+                    start = (complete_at or self.clock()) - dur
+                t_mid = start + dur / 2
+                end = start + dur
+                self._latest_frame_end_s = max(self._latest_frame_end_s or end, end)
+                geometry = FrameGeometry.from_view(view)
+            except Exception as exc:  # noqa: BLE001 - a frame without usable geometry
+                self._error(f"{view.frame_id}: geometry: {exc}", exc)
+                return
+            flags = self._step("rules", self._run_rules, view) or []
+            flag_ids = self._step("flags", self._record_flags, view, geometry, flags) or []
+            if self.drift_cfg.enabled:
+                self._step("drift", self._update_drift, view, t_mid)
+            self._step("visited", self._note_visited, view, geometry, t_mid)
+            if self.cfg.enabled and flags:
+                self._step("proposals", self._propose, view, geometry, flags, flag_ids, t_mid)
+
+    def _step(self, name, fn, *args):
+        try:
+            return fn(*args)
+        except Exception as exc:  # noqa: BLE001 - one failing step must not stop the daemon
+            self._error(f"{name} on {getattr(args[0], 'frame_id', '?')}: "
+                        f"{type(exc).__name__}: {exc}", exc)
+            return None
+
+    def _error(self, text: str, exc: BaseException) -> None:
+        self.n_errors += 1
+        self.last_error = text
+        log.error("decision loop: %s", text, exc_info=exc)
+        self.warn(f"decisions: {text}")
+
+    def _run_rules(self, view) -> list:
+        session_view = self.context.readonly()
+        flags = list(self.rules.evaluate(view, session_view) or [])
+        self.context.update(view, flags)
+        return flags
+
+    def _record_flags(self, view, geometry: FrameGeometry, flags) -> list[int]:
+        ids = []
+        for flag in flags:
+            stage = geometry.region_to_stage(flag.region)
+            data = flag.to_json()
+            data["frame_id"] = data.get("frame_id") or view.frame_id
+            fid = self.ledger.add_flag(
+                frame_id=data["frame_id"], rule=flag.rule or "?", kind=flag.kind,
+                score=flag.score, region=flag.region.to_json(),
+                payload={"region_stage": stage, "message": flag.message,
+                         "evidence": data["evidence"]})
+            ids.append(fid)
+            event = {"id": fid, **data, "region_stage": stage}
+            self.publisher.publish("flag", event)
+            self.recent_flags.append(_flag_brief({"id": fid, "frame_id": data["frame_id"],
+                                                  "rule": flag.rule, "kind": flag.kind,
+                                                  "score": flag.score,
+                                                  "payload": {"message": flag.message}}))
+            self.n_flags += 1
+        return ids
+
+    def _update_drift(self, view, t_mid: float) -> None:
+        if view.thumbnail is None:
+            return
+        result = self.tracker.observe(DriftImage.from_view(view, t_s=t_mid))
+        if result is None:
+            return
+        d, sigma = self.model.position_of(view.frame_id, t_mid)
+        used = not result.ambiguous
+        payload = {**result.to_json(), "used": used, **self.model.summary()}
+        self.ledger.add_drift(frame_id=view.frame_id, t=t_mid, dx_nm=float(d[0]),
+                              dy_nm=float(d[1]), sigma_nm=float(sigma),
+                              ref_frame_id=result.ref_frame_id, payload=payload)
+        self.publisher.publish("status", {"event": "drift", "frame_id": view.frame_id,
+                                          "d_nm": [float(d[0]), float(d[1])],
+                                          "sigma_nm": float(sigma), **payload})
+        if not used:
+            self.warn(f"drift: {view.frame_id} vs {result.ref_frame_id} ambiguous by a lattice "
+                      "vector; not used")
+
+    def _note_visited(self, view, geometry: FrameGeometry, t_mid: float) -> None:
+        """A frame acquired for a request covers its region: no proposal there again."""
+        if not (view.meta.extra or {}).get("request_id"):
+            return
+        d, _ = self.model.position_of(view.frame_id, t_mid)
+        self.planner.add_visited(shift_region(geometry.footprint(), -d))
+        self._context_visited(geometry.footprint())
+
+    def _context_visited(self, stage_region: dict) -> None:
+        add = getattr(self.context, "add_visited", None)
+        if add is not None:
+            add(dict(stage_region))
+
+    def _propose(self, view, geometry, flags, flag_ids, t_mid) -> None:
+        d_seen, _ = self.model.position_of(view.frame_id, t_mid)
+        cands = [candidate_from_flag(f, geometry, flag_id=i, t_seen_s=t_mid, drift_nm=d_seen,
+                                     margin_nm=self.cfg.margin_nm,
+                                     min_size_nm=self.cfg.min_size_nm,
+                                     max_size_nm=self.cfg.max_size_nm)
+                 for f, i in zip(flags, flag_ids)]
+        for cand in self.planner.plan(cands):
+            target = self.now() + self.cfg.lead_time_s
+            d, sigma = self.model.position(target)
+            prop = self.planner.place(self._new_id(), cand, drift_nm=d, sigma_drift_nm=sigma,
+                                      placed_for_s=target)
+            payload = prop.to_json()
+            self.ledger.add_proposal(prop.id, region=prop.region, frame_id=view.frame_id,
+                                     score=prop.score, payload=payload)
+            self.planner.commit(prop)
+            self.publisher.publish("proposal", payload)
+            log.info("proposal %s: %s (score %.2f)", prop.id, prop.reason, prop.score)
+            if self.cfg.auto_accept:
+                self.accept(prop.id, decided_by="auto", note="proposals.auto_accept")
+
+    def _new_id(self) -> str:
+        pid = f"p{self._next_number:04d}"
+        self._next_number += 1
+        return pid
+
+    # ------------------------------------------------------------- operator side
+
+    def list(self, state: str | None = None) -> list[dict]:
+        if state is not None and state not in ("open", "accepted", "rejected", "expired"):
+            raise ValueError(f"`state` must be open, accepted, rejected or expired, got "
+                             f"{state!r}")
+        return [_proposal_brief(r) for r in self.ledger.proposals(state=state)]
+
+    def _open(self, pid) -> dict:
+        if not isinstance(pid, str) or not pid:
+            raise ValueError("give the proposal `id` (a string such as 'p0001')")
+        row = next((r for r in self.ledger.proposals() if r["id"] == pid), None)
+        if row is None:
+            raise KeyError(f"no proposal with id {pid!r}; list them with `livequant proposals`")
+        if row["state"] != "open":
+            raise ValueError(f"proposal {pid} is already {row['state']}")
+        return row
+
+    def accept(self, pid, *, decided_by: str = "operator", note: str | None = None) -> dict:
+        """Accept a proposal: ledger, ``proposal`` event, ``scan-request`` placed for now."""
+        with self._lock:
+            row = self._open(pid)
+            prop = proposal_from_json({**row["payload"], "state": "accepted"})
+            target = self.now() + self.cfg.lead_time_s
+            d, sigma = self.model.position(target)
+            prop = self.planner.replace_placement(prop, drift_nm=d, sigma_drift_nm=sigma,
+                                                  placed_for_s=target)
+            request = scan_request_fields(prop)
+            self.ledger.decide(pid, "accept", decided_by=decided_by, note=note)
+            self.planner.add_visited(prop.candidate.specimen_region)
+            self._context_visited(prop.region)
+            self.publisher.publish("proposal", {"id": pid, "state": "accepted",
+                                                "decided_by": decided_by, "note": note,
+                                                "region": prop.region, "caution": CAUTION})
+            self.publisher.publish("scan-request", request)
+            log.info("proposal %s accepted (%s): scan-request published", pid, decided_by)
+            return {"id": pid, "state": "accepted", "scan_request": request, "caution": CAUTION}
+
+    def reject(self, pid, *, why: str | None = None, decided_by: str = "operator") -> dict:
+        with self._lock:
+            self._open(pid)
+            self.ledger.decide(pid, "reject", decided_by=decided_by, note=why)
+            self.publisher.publish("proposal", {"id": pid, "state": "rejected",
+                                                "decided_by": decided_by, "note": why})
+            log.info("proposal %s rejected%s", pid, f": {why}" if why else "")
+            return {"id": pid, "state": "rejected"}
+
+    # ------------------------------------------------------------- status
+
+    def status(self) -> dict:
+        with self._lock:
+            rules = {}
+            try:
+                rules = dict(self.rules.status() or {})
+            except Exception as exc:  # noqa: BLE001 - status must not fail
+                rules = {"error": f"{type(exc).__name__}: {exc}"}
+            v, sv = self.model.velocity()
+            return {"frames": self.n_frames, "flags": self.n_flags, "errors": self.n_errors,
+                    "last_error": self.last_error, "rules": rules,
+                    "drift": {"velocity_nm_per_s": [float(v[0]), float(v[1])],
+                              "sigma_v_nm_per_s": float(sv), "pairs": self.model.n_pairs,
+                              "ambiguous": self.tracker.n_ambiguous},
+                    "proposals": self.planner.status(), "auto_accept": self.cfg.auto_accept}
+
+    def snapshot_tables(self) -> tuple[tuple, tuple]:
+        """``(proposals, flags)`` for the display: open first, then the latest decided."""
+        rows = list(self.ledger.proposals())
+        open_rows = [r for r in rows if r["state"] == "open"]
+        decided = [r for r in rows if r["state"] != "open"]
+        decided.sort(key=lambda r: r["updated_at"])
+        shown = sorted(open_rows, key=lambda r: -(r["score"] or 0))[:_KEEP_RECENT] + \
+            decided[-3:]
+        with self._lock:
+            flags = tuple(self.recent_flags)
+        return tuple(_proposal_brief(r) for r in shown), flags
+
+
+def _number(pid: str) -> int:
+    try:
+        return int(str(pid).lstrip("p"))
+    except ValueError:
+        return 0
+
+
+def _proposal_brief(row: dict) -> dict:
+    p = row.get("payload") or {}
+    r = row["region"]
+    return {"id": row["id"], "state": row["state"], "score": row["score"],
+            "frame_id": row["frame_id"],
+            "center_nm": [r["center_x_nm"], r["center_y_nm"]],
+            "size_nm": [r["width_nm"], r["height_nm"]], "rotation_deg": r["rotation_deg"],
+            "reason": p.get("reason", ""), "kinds": p.get("kinds", []),
+            "flag_ids": p.get("flag_ids", []), "pixel_size_pm": p.get("pixel_size_pm"),
+            "dwell_time_us": p.get("dwell_time_us"), "shape_px": p.get("shape_px"),
+            "created_at": row["created_at"]}
+
+
+def _flag_brief(f: dict) -> dict:
+    p = f.get("payload") or {}
+    score = f.get("score")
+    return {"id": f.get("id"), "frame_id": f.get("frame_id"), "rule": f.get("rule"),
+            "kind": f.get("kind"), "score": None if score is None else float(score),
+            "message": p.get("message", "")}
+
