@@ -501,8 +501,9 @@ def _frame_sections(fd: FrameData, session: SessionData, figs: _Figures) -> list
             refs.append(figs.save(fig, f"{slug}-wall",
                                   "Each cell's displacement component along the polar axis "
                                   "against its distance from the fitted wall, with the "
-                                  "Landau-Ginzburg profile P0 tanh(s / w) (CHECK-VALUES section "
-                                  "7 convention: w = √2 ξ). " + ("" if accepted else
+                                  "Landau-Ginzburg profile P0 tanh(s / w) (w = √2 ξ, ξ = "
+                                  "sqrt(g / |α|); the text box gives the fitted parameters "
+                                  "with their one-sigma errors). " + ("" if accepted else
                                   "This fit was rejected as the frame's wall (reason in the "
                                   "title) and is shown as a candidate only.")))
     topo = info.get("topology") or {}
@@ -517,8 +518,9 @@ def _frame_sections(fd: FrameData, session: SessionData, figs: _Figures) -> list
                                title=f"{fid}: winding numbers", note=note)
         refs.append(figs.save(fig, f"{slug}-winding",
                               "Winding number of the displacement field on every plaquette of "
-                              "four cells (CHECK-VALUES section 10: vortices, sources and sinks "
-                              "+1, antivortices -1), with the cores the analysis reported."
+                              "four cells (+1 for vortices of either circulation, sources and "
+                              "sinks; -1 for antivortices, i.e. saddles), with the cores the "
+                              "analysis reported."
                               + no_image))
     return sections
 

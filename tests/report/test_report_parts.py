@@ -159,6 +159,10 @@ def test_wall_profile_recovers_the_tanh_it_was_built_from():
     fig = F.wall_profile_figure(prof.s_nm, prof.p_pm, prof.sigma_p_pm, wall, title="t",
                                 accepted=True)
     assert fig.axes and len(fig.axes[0].lines) >= 1
+    rejected = F.wall_profile_figure(prof.s_nm, prof.p_pm, prof.sigma_p_pm,
+                                     {**wall, "rejected": "reduced chi-square 9 > 5"},
+                                     title="t", accepted=False)
+    assert "rejected: reduced chi-square 9 > 5" in rejected.axes[0].get_title()
 
 
 def test_figures_render_without_image_and_with_empty_inputs(tmp_path):
