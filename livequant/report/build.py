@@ -205,10 +205,6 @@ def _done_summaries(session: SessionData, notes: list[str]) -> dict[str, dict]:
     return out
 
 
-def _minutes(t, t0) -> float:
-    return (float(t) - float(t0)) / 60.0 if t is not None and t0 is not None else float("nan")
-
-
 def _time_axis(times, t0) -> tuple[list[float], str]:
     """Times since `t0` in seconds for a session shorter than 3 minutes, else minutes."""
     rel = [(float(t) - float(t0)) if t is not None and t0 is not None else float("nan")
@@ -623,7 +619,7 @@ def _fit_quality_section(frame_data: list[FrameData], figs: _Figures, gain: floa
 
 def _throughput_section(session: SessionData, figs: _Figures, t0) -> Section:
     done = [f for f in session.frames if f.state == "done" and f.finished_at is not None]
-    fig = F.throughput_figure([_minutes(f.finished_at, t0) for f in done],
+    fig = F.throughput_figure([f.finished_at - t0 for f in done],
                               [f.lag_s for f in done],
                               [np.nan if f.analyze_s is None else f.analyze_s for f in done])
     ref = figs.save(fig, "session-throughput",

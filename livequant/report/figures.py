@@ -40,6 +40,7 @@ from matplotlib.collections import PolyCollection
 from matplotlib.colors import BoundaryNorm, ListedColormap, Normalize
 from matplotlib.figure import Figure
 from matplotlib.patches import Polygon
+from matplotlib.ticker import MaxNLocator
 
 __all__ = ["CMAP_MAGNITUDE", "CMAP_SECONDARY", "CMAP_SIGNED", "CMAP_ANGLE", "CMAP_IMAGE",
            "OKABE_ITO", "save_png", "image_with_columns", "displacement_arrows", "cell_maps",
@@ -449,6 +450,7 @@ def histograms_figure(series: Sequence[tuple[str, np.ndarray, str]], *, title: s
             if hi <= lo:
                 lo, hi = lo - 0.5, hi + 0.5
             ax.hist(np.clip(v, lo, hi), bins=40, range=(lo, hi), color=OKABE_ITO[5])
+            ax.xaxis.set_major_locator(MaxNLocator(5))
             ax.axvline(float(np.median(v)), color=OKABE_ITO[6], ls="--", lw=1)
             ax.set_title(f"{name} (n = {v.size}, median {np.median(v):.4g})", fontsize=8)
         else:
@@ -506,37 +508,41 @@ def fit_quality_figure(sigma_pm, crlb_pm, reduced_chi2, sublattice) -> Figure:
     return fig
 
 
-def throughput_figure(finished_min, lag_s, analyze_s, *,
-                      window_min: float | None = None) -> Figure:
+def throughput_figure(finished_s, lag_s, analyze_s, *, bin_s: float | None = None) -> Figure:
     """Frames finished per minute, and each frame's lag and analysis time, over the session.
 
-    `finished_min`: when each frame was done, minutes since the session started.
+    `finished_s`: when each frame was done, seconds since the session started
+    (the axis is in minutes for sessions of 3 minutes or more).
     """
-    t = np.asarray(finished_min, float)
+    t = np.asarray(finished_s, float)
     lag = np.asarray(lag_s, float)
     an = np.asarray(analyze_s, float)
     fig = Figure(figsize=(11.0, 3.8), layout="constrained")
     ax1, ax2 = fig.subplots(1, 2)
+    minutes = t.size > 0 and float(np.nanmax(t)) >= 180.0
+    unit = 60.0 if minutes else 1.0
+    label = f"time since the session started ({'min' if minutes else 's'})"
     if t.size:
         span = float(np.ptp(t)) if t.size > 1 else 1.0
-        width = window_min or max(span / 30.0, 1.0 / 60.0)
+        width = bin_s or max(span / 30.0, 1.0)
         edges = np.arange(t.min(), t.max() + width, width)
         if edges.size < 2:
             edges = np.array([t.min(), t.min() + width])
         counts, edges = np.histogram(t, bins=edges)
-        ax1.stairs(counts / width, edges, color=OKABE_ITO[5], fill=True, alpha=0.6)
-        ax1.set_title(f"throughput ({t.size} frames done; bins of {width * 60:.0f} s)",
-                      fontsize=9)
-        ax2.plot(t, lag, "o", ms=3, color=OKABE_ITO[6], label="lag: complete on disk → done")
-        ax2.plot(t, an, "s", ms=3, color=OKABE_ITO[5], label="analysis time in the worker")
+        ax1.stairs(counts / width * 60.0, edges / unit, color=OKABE_ITO[5], fill=True,
+                   alpha=0.6)
+        ax1.set_title(f"throughput ({t.size} frames done; bins of {width:.0f} s)", fontsize=9)
+        ax2.plot(t / unit, lag, "o", ms=3, color=OKABE_ITO[6],
+                 label="lag: complete on disk → done")
+        ax2.plot(t / unit, an, "s", ms=3, color=OKABE_ITO[5], label="analysis time in the worker")
         ax2.legend(fontsize=7)
     else:
         for ax in (ax1, ax2):
             ax.text(0.5, 0.5, "no frame finished", ha="center", va="center",
                     transform=ax.transAxes)
-    ax1.set_xlabel("time since the session started (min)")
+    ax1.set_xlabel(label)
     ax1.set_ylabel("frames per minute")
-    ax2.set_xlabel("time since the session started (min)")
+    ax2.set_xlabel(label)
     ax2.set_ylabel("seconds")
     ax2.set_title("lag and analysis time per frame", fontsize=9)
     return fig

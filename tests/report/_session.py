@@ -10,7 +10,6 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
-import numpy as np
 
 from livequant.config import Settings
 from livequant.daemon import Daemon, Ledger
