@@ -248,3 +248,17 @@ def test_frames_of_interest_order_and_bound():
     assert notes and "4 more" in notes[0]
     chosen, notes = frames_of_interest(s, max_frames=3, requested=["f1", "q", "f1"])
     assert chosen == ["f1"] and "'q'" in notes[0]
+
+
+def test_winding_figure_marks_each_core_kind_once_in_the_legend():
+    polys = np.array([[[0, 0], [1, 0], [1, 1], [0, 1]], [[1, 0], [2, 0], [2, 1], [1, 1]]], float)
+    cores = [{"x_pm": 500.0, "y_pm": 500.0, "kind": "vortex", "winding": 1},
+             {"x_pm": 1500.0, "y_pm": 500.0, "kind": "antivortex", "winding": -1},
+             {"x_pm": 1600.0, "y_pm": 600.0, "kind": "antivortex", "winding": -1},
+             {"kind": "vortex"}]  # no position: skipped, not a crash
+    fig = F.winding_figure(np.array([1.0, -1.0]), polys, cores, extent_nm=(0, 2, 1, 0),
+                           title="t", note="n")
+    ax = fig.axes[0]
+    offsets = np.concatenate([np.asarray(c.get_offsets()) for c in ax.collections[1:]])
+    assert offsets == pytest.approx(np.array([[0.5, 0.5], [1.5, 0.5], [1.6, 0.6]]))
+    assert sorted(t.get_text() for t in ax.get_legend().get_texts()) == ["antivortex", "vortex"]
