@@ -32,6 +32,7 @@ COMMAND_MODULES = (
     "livequant.commands.proposals",
     "livequant.commands.accept",
     "livequant.commands.reject",
+    "livequant.commands.report",
 )
 
 

@@ -15,7 +15,7 @@ The demo runs the whole loop on this machine with no microscope:
    simulated instrument only);
 4. after ``duration_s`` the survey stops, the daemon drains its queue and
    stops, and the demo prints a summary (and writes the session report when
-   that part is installed).
+   of maps (``SESSION/report/index.html``).
 
 The instrument's clock follows the wall clock (``engine.wait`` before every
 frame), so the specimen drifts in real time as it would at the microscope.
@@ -260,21 +260,21 @@ def run_demo(options: DemoOptions, *, display_factory: Callable | None = None,
             outcome.proposals_by_state[p["state"]] = outcome.proposals_by_state.get(
                 p["state"], 0) + 1
     if options.report:
-        _write_report(session, outcome)
+        _write_report(session, outcome, settings)
     outcome.elapsed_s = time.monotonic() - t_start
     return outcome
 
 
-def _write_report(session: Path, outcome: DemoOutcome) -> None:
+def _write_report(session: Path, outcome: DemoOutcome, settings) -> None:
+    from livequant.report import build_report
+
     try:
-        from livequant.report import write_report
-    except ImportError:
-        return  # the report part is not installed in this build
-    try:
-        outcome.report = str(write_report(session))
+        built = build_report(session, gain=settings.analysis.refine.gain_counts_per_electron)
     except Exception as exc:  # noqa: BLE001 - the demo's results stand without the report
         outcome.report_error = f"{type(exc).__name__}: {exc}"
         log.exception("the session report could not be written")
+        return
+    outcome.report = str(built["index"])
 
 
 def format_outcome(outcome: DemoOutcome) -> str:

@@ -14,11 +14,16 @@ import numpy as np
 
 from livequant.frames import write_json_atomic
 
-__all__ = ["COLUMN_FIELDS", "write_frame_outputs", "columns_rows", "write_text_atomic",
-           "read_columns_csv"]
+__all__ = ["COLUMN_FIELDS", "COLUMN_EXTRA_FIELDS", "write_frame_outputs", "columns_rows",
+           "write_text_atomic", "read_columns_csv"]
 
+#: The columns of ``columns.csv`` that DESIGN.md lists, first and in this order.
 COLUMN_FIELDS = ("x_px", "y_px", "x_pm", "y_pm", "sigma_x_pm", "sigma_y_pm", "amplitude",
                  "width_pm", "sublattice", "i", "j")
+#: Extra columns after them (fit quality, for the report): the fitted local background
+#: under the column (counts per pixel) and the reduced chi-square of its fit window.
+#: Files written before these existed lack them; :func:`read_columns_csv` gives NaN then.
+COLUMN_EXTRA_FIELDS = ("background", "reduced_chi2")
 
 
 def write_text_atomic(path: str | os.PathLike, text: str) -> None:
@@ -32,10 +37,13 @@ def write_text_atomic(path: str | os.PathLike, text: str) -> None:
 
 
 def _column_table(result) -> list[list[str]]:
-    """The DESIGN.md columns of ``columns.csv`` as lists of text, one list per field."""
+    """The columns of ``columns.csv`` as lists of text, one list per field.
+
+    The DESIGN.md fields first (:data:`COLUMN_FIELDS`), then :data:`COLUMN_EXTRA_FIELDS`.
+    """
     cols = result.columns
     if cols is None or len(cols) == 0:
-        return [[] for _ in COLUMN_FIELDS]
+        return [[] for _ in COLUMN_FIELDS + COLUMN_EXTRA_FIELDS]
     px = result.pixel_size_pm
     pos, sig = cols.positions_px, cols.sigma_positions_px
     width_pm = np.sqrt(cols.width_px[:, 0] * cols.width_px[:, 1]) * px
@@ -50,12 +58,15 @@ def _column_table(result) -> list[list[str]]:
             fmt("%.4f", sig[:, 1] * px), fmt("%.4f", sig[:, 0] * px),
             fmt("%.6g", cols.amplitude), fmt("%.3f", width_pm),
             [str(v) for v in cols.sublattice.tolist()],
-            [str(v) for v in cols.ij[:, 0].tolist()], [str(v) for v in cols.ij[:, 1].tolist()]]
+            [str(v) for v in cols.ij[:, 0].tolist()], [str(v) for v in cols.ij[:, 1].tolist()],
+            fmt("%.6g", cols.background), fmt("%.6g", cols.reduced_chi2)]
 
 
 def columns_rows(result) -> list[dict]:
-    """One dict per column with the DESIGN.md fields (x = column axis, y = row axis)."""
-    return [dict(zip(COLUMN_FIELDS, row)) for row in zip(*_column_table(result))]
+    """One dict per column with the DESIGN.md fields and the extra ones (x = column axis,
+    y = row axis)."""
+    return [dict(zip(COLUMN_FIELDS + COLUMN_EXTRA_FIELDS, row))
+            for row in zip(*_column_table(result))]
 
 
 def _csv_text(fieldnames, table_columns) -> str:
@@ -72,7 +83,8 @@ def write_frame_outputs(result, frames_dir: str | os.PathLike) -> Path:
     """
     folder = Path(frames_dir) / result.frame_id
     folder.mkdir(parents=True, exist_ok=True)
-    write_text_atomic(folder / "columns.csv", _csv_text(COLUMN_FIELDS, _column_table(result)))
+    write_text_atomic(folder / "columns.csv",
+                      _csv_text(COLUMN_FIELDS + COLUMN_EXTRA_FIELDS, _column_table(result)))
     cells = result.cells
     if cells is not None:
         fields = cells.csv_fields()
@@ -84,11 +96,24 @@ def write_frame_outputs(result, frames_dir: str | os.PathLike) -> Path:
 
 
 def read_columns_csv(path: str | os.PathLike) -> dict[str, np.ndarray]:
-    """Read a ``columns.csv`` back into arrays (for tests, the report and replays)."""
+    """Read a ``columns.csv`` back into arrays (for tests, the report and replays).
+
+    Every field of :data:`COLUMN_FIELDS` must be there (a clear error otherwise);
+    an extra field missing from an older file comes back as NaN.
+    """
     with open(path, newline="", encoding="utf-8") as fh:
-        rows = list(csv.DictReader(fh))
+        reader = csv.DictReader(fh)
+        rows = list(reader)
+        header = reader.fieldnames or []
+    missing = [f for f in COLUMN_FIELDS if f not in header]
+    if missing:
+        raise ValueError(f"{path}: not a livequant columns.csv, it lacks the column(s) "
+                         f"{', '.join(missing)} (header: {', '.join(header) or 'empty'})")
     out: dict[str, np.ndarray] = {}
-    for name in COLUMN_FIELDS:
+    for name in COLUMN_FIELDS + COLUMN_EXTRA_FIELDS:
+        if name not in header:
+            out[name] = np.full(len(rows), np.nan)
+            continue
         values = [r[name] for r in rows]
         if name == "sublattice":
             out[name] = np.array(values, dtype=str)

@@ -9,7 +9,7 @@ import pytest
 
 from livequant.cli import main
 from livequant.frames import write_frame
-from livequant.outputs import COLUMN_FIELDS, read_columns_csv
+from livequant.outputs import COLUMN_EXTRA_FIELDS, COLUMN_FIELDS, read_columns_csv
 from livequant.synthetic import perovskite_frame
 
 
@@ -36,7 +36,8 @@ def test_analyze_writes_outputs_and_json(tmp_path, capsys):
     cols = read_columns_csv(folder / "columns.csv")
     assert len(cols["x_px"]) == fr["n_columns"]
     header = (folder / "columns.csv").read_text().splitlines()[0].split(",")
-    assert tuple(header) == COLUMN_FIELDS
+    # DESIGN.md's columns first and unchanged, the fit-quality extras after them
+    assert tuple(header) == COLUMN_FIELDS + COLUMN_EXTRA_FIELDS
     # x is the column axis, y the row axis; pm = px * pixel size
     assert np.allclose(cols["x_pm"], cols["x_px"] * 9.37, atol=0.01)
     summary = json.loads((folder / "summary.json").read_text())
