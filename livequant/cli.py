@@ -28,6 +28,7 @@ COMMAND_MODULES = (
     "livequant.commands.bench",
     "livequant.commands.run",
     "livequant.commands.status",
+    "livequant.commands.keys",
 )
 
 

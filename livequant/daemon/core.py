@@ -40,6 +40,7 @@ from livequant.config import Settings
 from livequant.daemon.commands import CommandServer
 from livequant.daemon.ledger import Ledger
 from livequant.daemon.publisher import EventPublisher
+from livequant.daemon.security import bind_policy, start_authenticator
 from livequant.daemon.session import (SessionLock, SetupError, check_session_folder,
                                       check_watch_folder, write_daemon_file)
 from livequant.daemon.sources import (Candidate, FolderSource, SocketSource,
@@ -130,6 +131,7 @@ class Daemon:
         self.socket_source: SocketSource | None = None
         self.pool: cf.ProcessPoolExecutor | None = None
         self._zmq = None
+        self._auth = None  # CURVE authenticator thread (security.py), when CURVE is on
         self._lock: SessionLock | None = None
         self._intake_thread: threading.Thread | None = None
         self._intake_stop = threading.Event()
@@ -170,19 +172,24 @@ class Daemon:
             log.info("%d frame(s) left in processing by the last run are queued again", n_back)
 
         host = self.cfg.host
+        # Loopback only, unless allowed explicitly and then with CURVE (security.py).
+        curve = bind_policy(self.cfg)
         self._zmq = zmq.Context()
+        if curve is not None:
+            self._auth = start_authenticator(self._zmq, curve)
         try:
             self.publisher = EventPublisher(self._zmq, f"tcp://{host}:{self.cfg.events_port}",
-                                            self.paths.events)
+                                            self.paths.events, curve=curve)
             self.endpoints["events"] = self.publisher.start()
             self.commands = CommandServer(self._zmq, f"tcp://{host}:{self.cfg.commands_port}",
-                                          self._command_handlers())
+                                          self._command_handlers(), curve=curve)
             self.endpoints["commands"] = self.commands.start()
             if self.cfg.ingest_socket:
                 self.socket_source = SocketSource(
                     self._zmq, f"tcp://{host}:{self.cfg.ingest_port}", self.paths.incoming,
                     self._intake, frame_defaults=self.settings.frame_defaults.as_dict(),
-                    on_reject=self._on_rejected_message)
+                    on_reject=self._on_rejected_message, curve=curve,
+                    max_message_bytes=int(self.cfg.max_message_mb * (1 << 20)))
                 self.endpoints["ingest"] = self.socket_source.start()
         except OSError as exc:
             raise SetupError(str(exc)) from None
@@ -206,6 +213,8 @@ class Daemon:
             "watch": None if self.watch is None else str(self.watch),
             "endpoints": dict(self.endpoints),
             "workers": self.n_workers,
+            # public, so clients can connect; the secret key never leaves its file
+            "curve_server_public": None if curve is None else curve.public.decode("ascii"),
         })
         self._started = True
         self._state = "running"
@@ -665,6 +674,8 @@ class Daemon:
                 pass
         if self.ledger is not None:
             self.ledger.close()
+        if self._auth is not None:
+            self._auth.stop()  # before term(): its socket would hold the context open
         if self._zmq is not None:
             threads = [t for t in (getattr(p, "_thread", None) for p in
                                    (self.publisher, self.commands, self.socket_source)) if t]

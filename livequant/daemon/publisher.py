@@ -51,8 +51,9 @@ class EventPublisher:
     events_file : Path
     """
 
-    def __init__(self, context, endpoint: str, events_file: Path):
+    def __init__(self, context, endpoint: str, events_file: Path, *, curve=None):
         self.context = context
+        self.curve = curve  # CurveServerKeys: subscribers must hold an authorised key
         self.endpoint = endpoint
         self.events_file = Path(events_file)
         self._queue: queue.Queue = queue.Queue(maxsize=10_000)
@@ -115,10 +116,14 @@ class EventPublisher:
     def _run(self) -> None:
         import zmq
 
+        from livequant.daemon.security import apply_curve_server
         from livequant.daemon.sources import _bind
 
         try:
             sock = self.context.socket(zmq.PUB)
+            apply_curve_server(sock, self.curve)
+            # Subscribers only send subscriptions: a few bytes each.
+            sock.setsockopt(zmq.MAXMSGSIZE, 4096)
             sock.setsockopt(zmq.LINGER, 500)  # finite: shutdown never hangs on a slow peer
             sock.setsockopt(zmq.SNDHWM, 1000)
             self.bound_endpoint = _bind(sock, self.endpoint)

@@ -26,7 +26,9 @@ import time
 from dataclasses import dataclass
 from pathlib import Path
 
-from livequant.frames import IMAGE_SUFFIXES, FrameError, resolve_meta, sidecar_path, write_frame
+from livequant.daemon.security import apply_curve_server
+from livequant.frames import (IMAGE_SUFFIXES, MAX_FRAME_PIXELS, FrameError, resolve_meta,
+                              sidecar_path, write_frame)
 
 __all__ = ["Candidate", "FolderSource", "SocketSource", "image_files", "put_until",
            "incoming_candidates"]
@@ -288,9 +290,16 @@ class SocketSource(SocketThread):
     label = "ingest socket"
 
     def __init__(self, context, endpoint: str, incoming: Path, out: queue.Queue, *,
-                 frame_defaults: dict, on_reject=None, bind_port: int | None = None):
+                 frame_defaults: dict, on_reject=None, bind_port: int | None = None,
+                 max_message_bytes: int | None = None, curve=None):
         self.context = context
         self._init_thread(endpoint)
+        # Largest message part accepted.  ZeroMQ checks the size announced in the
+        # wire header and drops the sender's connection before allocating the
+        # body, so an absurd message never reaches memory.  Default: the largest
+        # frame the readers accept, as float64, plus room for the header.
+        self.max_message_bytes = int(max_message_bytes or MAX_FRAME_PIXELS * 8 + (1 << 16))
+        self.curve = curve
         self.incoming = Path(incoming)
         self.out = out
         self.frame_defaults = dict(frame_defaults)
@@ -304,6 +313,8 @@ class SocketSource(SocketThread):
         try:
             sock = self.context.socket(zmq.PULL)
             sock.setsockopt(zmq.LINGER, 0)
+            sock.setsockopt(zmq.MAXMSGSIZE, self.max_message_bytes)
+            apply_curve_server(sock, self.curve)
             # Keep the in-memory backlog to a few frames: past it ZeroMQ holds the
             # sender back instead of buffering gigabytes here.
             sock.setsockopt(zmq.RCVHWM, 4)
