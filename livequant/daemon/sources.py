@@ -19,6 +19,7 @@ import logging
 import os
 import queue
 import re
+import stat
 import threading
 
 from livequant.daemon._socket_thread import SocketThread
@@ -78,17 +79,39 @@ def image_files(folder: Path) -> list[Path]:
     return sorted(out)
 
 
+_warned_not_regular: set[str] = set()
+
+
+def _not_regular(path: Path, what: str) -> None:
+    """Log once per path that a pipe, device or socket is named like a frame file."""
+    if str(path) not in _warned_not_regular:
+        _warned_not_regular.add(str(path))
+        log.warning("%s: the %s is not a regular file (a pipe, device or socket); ignored: "
+                    "reading it could block for ever", path, what)
+
+
 def _signature(path: Path) -> tuple | None:
-    """(size, mtime_ns) of the image and of its sidecar (None when absent); None if gone."""
+    """(size, mtime_ns) of the image and of its sidecar (None when absent); None if gone.
+
+    Also None, with a warning, when the image or its sidecar is not a regular
+    file: hashing or reading a pipe named ``x.tif`` would block ingest for ever.
+    """
     try:
         st = path.stat()
-    except FileNotFoundError:
+    except (FileNotFoundError, NotADirectoryError):
+        return None
+    if not stat.S_ISREG(st.st_mode):
+        _not_regular(path, "image")
         return None
     try:
         sc = sidecar_path(path).stat()
         side = (sc.st_size, sc.st_mtime_ns)
-    except FileNotFoundError:
+    except (FileNotFoundError, NotADirectoryError):
         side = None
+    else:
+        if not stat.S_ISREG(sc.st_mode):
+            _not_regular(sidecar_path(path), "sidecar")
+            return None
     return (st.st_size, st.st_mtime_ns, side)
 
 
