@@ -119,7 +119,6 @@ def _done_once(session: Path) -> list[str]:
     return sorted(r.frame_id for r in rows)
 
 
-@pytest.mark.slow
 def test_every_kind_of_bad_input_is_quarantined_and_nothing_else_is_lost(tmp_path):
     """1. good frames and 18 bad inputs of 16 kinds land in the watched folder together;
     2. a frame vanishes between being queued and being read; 3. a writer dies half-way
@@ -180,7 +179,6 @@ def test_every_kind_of_bad_input_is_quarantined_and_nothing_else_is_lost(tmp_pat
     assert not (session / "frames" / "elsewhere").exists()
 
 
-@pytest.mark.slow
 def test_random_multipart_messages_on_the_ingest_socket(tmp_path):
     """Fuzz: 300 random multipart messages (random parts, and valid messages with
     random corruption) at the ingest socket; every one is counted as received, each
