@@ -26,7 +26,7 @@ SHAPE = (128, 128)
 
 
 @pytest.mark.slow
-def test_full_disk_keeps_the_frame_queued_until_it_can_be_written(tmp_path):
+def test_full_disk_keeps_the_frame_queued_until_it_can_be_written(tmp_path, monkeypatch):
     """1. the disk of the session is full; a frame arrives; 2. its outputs cannot be
     written: the daemon says so, keeps it queued and retries, and never marks it done;
     3. space is freed: the frame is done once, with complete files."""
@@ -36,6 +36,8 @@ def test_full_disk_keeps_the_frame_queued_until_it_can_be_written(tmp_path):
     marker.write_text("while this file exists the session's disk is full")
     d = Daemon(fast_settings(), session=session, watch=watch,
                analyze="tests.reliability._plumbing:analyze_on_a_full_disk")
+    # the events file is on the same full disk (heartbeats are published every second)
+    _full_disk_for_events(monkeypatch, d, marker)
     with running_daemon(d):
         write_frame(watch, "f1", lattice_image(SHAPE, seed=1),
                     sidecar("f1", disk_full_while=str(marker)))
@@ -50,6 +52,7 @@ def test_full_disk_keeps_the_frame_queued_until_it_can_be_written(tmp_path):
         assert leftovers == [], leftovers  # no half-written or temporary files either
         warning = next(w for w in snap.warnings if "No space" in w)
         assert "kept queued" in warning
+        assert d.publisher.n_unwritten > 0 and d.snapshot.state == "running"
         marker.unlink()  # space freed
         wait_for(lambda: d.snapshot.counts["done"] == 1, what="the frame done after all")
     with Ledger(session / "ledger.sqlite", readonly=True) as led:
@@ -62,6 +65,54 @@ def test_full_disk_keeps_the_frame_queued_until_it_can_be_written(tmp_path):
     assert (folder / "cells.csv").read_text().count("\n") > 1
     frame_events = [e for e in read_events(session, "frame")]
     assert len(frame_events) == 1  # published once, after it was written
+    events = read_events(session)  # every line whole JSON, none lost while the disk was full
+    assert [e["seq"] for e in events] == list(range(1, len(events) + 1))
+    assert sum(e["data"].get("event") == "heartbeat" for e in events) >= 3
+
+
+def _full_disk_for_events(monkeypatch, daemon, marker):
+    """os.write to the daemon's events file writes half the line, then fails, while
+    `marker` exists (a disk filling up in the middle of a line)."""
+    real = os.write
+    state = {}
+
+    def write(fd, data):
+        pub = daemon.publisher
+        if pub is not None and fd == pub._fd and marker.exists():
+            if not state.get("half"):
+                state["half"] = True
+                return real(fd, bytes(data)[: len(data) // 2])
+            state["half"] = False
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        return real(fd, data)
+
+    monkeypatch.setattr(os, "write", write)
+
+
+def test_events_file_keeps_whole_lines_through_a_full_disk(tmp_path, monkeypatch):
+    from livequant.daemon.publisher import EventPublisher
+
+    path = tmp_path / "events.jsonl"
+    path.write_text('{"topic": "status", "seq": 1, "data": {}}\n{"topic": "frame", "se')
+    pub = EventPublisher(None, "", path)  # a killed daemon left half a line: it goes
+    assert path.read_text().count("\n") == 1 and path.read_text().endswith("}\n")
+    marker = tmp_path / "FULL"
+    marker.write_text("")
+
+    class _D:
+        publisher = pub
+
+    _full_disk_for_events(monkeypatch, _D, marker)
+    for k in range(5):
+        pub.publish("status", {"k": k})
+    assert pub.n_unwritten == 5 and pub.n_file_errors >= 5
+    assert path.read_text().count("\n") == 1  # nothing half-written meanwhile
+    marker.unlink()
+    pub.publish("status", {"k": 5})
+    pub.close()
+    lines = [json.loads(x) for x in path.read_text().splitlines()]
+    assert [e["data"].get("k") for e in lines[1:]] == [0, 1, 2, 3, 4, 5]
+    assert [e["seq"] for e in lines[1:]] == [1, 2, 3, 4, 5, 6]
 
 
 def _attempts(session) -> int:
