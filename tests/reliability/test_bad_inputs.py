@@ -120,9 +120,9 @@ def _done_once(session: Path) -> list[str]:
 
 
 def test_every_kind_of_bad_input_is_quarantined_and_nothing_else_is_lost(tmp_path):
-    """1. good frames and 18 bad inputs of 16 kinds land in the watched folder together;
-    2. a frame vanishes between being queued and being read; 3. a writer dies half-way
-    through a frame and finishes it later.  Every bad one is quarantined with its reason
+    """1. good frames and 17 bad inputs (15 to quarantine, 2 pipes) land in the watched
+    folder together; 2. a frame vanishes between being queued and being read; 3. a writer
+    dies half-way through a frame and finishes it later (19 bad inputs in all).  Every bad one is quarantined with its reason
     (or, for pipes, ignored with a warning), the daemon never stops, every good frame is
     done exactly once, and the interrupted frame is done once it is complete."""
     watch, outside, session = tmp_path / "watch", tmp_path / "outside", tmp_path / "session"
