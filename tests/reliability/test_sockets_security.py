@@ -113,6 +113,7 @@ def curve_daemon(tmp_path):
 
 def test_curve_admits_the_authorised_client_only(tmp_path, curve_daemon):
     d, keys = curve_daemon
+    assert d.socket_source.max_message_bytes == 2048 * 2**20  # daemon.max_message_mb
     ep = d.endpoints["commands"]
     good = load_client_keys(keys["client_secret"], keys["server_public"])
     info = json.loads((tmp_path / "session" / "daemon.json").read_text())
