@@ -33,6 +33,7 @@ COMMAND_MODULES = (
     "livequant.commands.accept",
     "livequant.commands.reject",
     "livequant.commands.report",
+    "livequant.commands.keys",
 )
 
 

@@ -135,6 +135,12 @@ class DaemonSettings(_Model):
     newest_first: bool = True
     intake_queue_size: int = Field(default=256, ge=1, le=100_000)
     host: str = "127.0.0.1"
+    # socket security and limits (livequant/daemon/security.py)
+    allow_remote: bool = False
+    curve: bool = False
+    curve_server_secret_key: str | None = None
+    curve_authorized_clients: str | None = None
+    max_message_mb: float = Field(default=2048.0, gt=0, le=65536)
     ingest_socket: bool = True
     ingest_port: int = Field(default=5601, ge=0, le=65535)
     events_port: int = Field(default=5602, ge=0, le=65535)

@@ -17,7 +17,7 @@ The demo runs the whole loop on this machine with no microscope:
    stops, and the demo prints a summary (and writes the session report when
    of maps (``SESSION/report/index.html``).
 
-The instrument's clock follows the wall clock (``engine.wait`` before every
+The instrument's clock follows the wall clock (``engine.catch_up`` before every
 frame), so the specimen drifts in real time as it would at the microscope.
 """
 
@@ -50,6 +50,7 @@ class DemoOptions:
     fov_nm: float = 20.0
     overlap_nm: float = 6.0               # overlap of consecutive survey frames, for drift
     cadence_s: float = 3.0                # one survey frame every this many seconds (at least)
+    dwell_time_us: float = 4.0            # survey dwell: enough dose to see polar cores in one frame
     auto_accept: bool = False
     seed: int = 7
     drain_s: float = 60.0                 # after duration_s, wait at most this for the queue
@@ -117,63 +118,100 @@ def demo_settings(options: DemoOptions):
     return settings
 
 
-class _Instrument(threading.Thread):
-    """The simulated microscope: survey tour first, then accepted scan requests."""
+class _Locked:
+    """Serialise calls to the scan engine and the frame writer: one beam, one scan at a time."""
+
+    def __init__(self, target, lock: threading.Lock):
+        self._target, self._lock = target, lock
+
+    def __getattr__(self, name):
+        value = getattr(self._target, name)
+        if not callable(value):
+            return value
+
+        def locked(*args, **kwargs):
+            with self._lock:
+                return value(*args, **kwargs)
+        return locked
+
+
+class _Instrument:
+    """The simulated microscope: a survey tour, and accepted scan requests as they come.
+
+    Two threads share one engine behind a lock: the survey paces itself
+    through the tour while the request listener (subscribed from the start,
+    so no request published during the survey is missed) acquires each
+    accepted proposal between survey frames.
+    """
 
     def __init__(self, options: DemoOptions, *, out_dir: Path, truth_dir: Path,
                  endpoint: Callable[[], str | None], stop: threading.Event):
-        super().__init__(name="sim-instrument", daemon=True)
         self.options = options
         self.out_dir, self.truth_dir = out_dir, truth_dir
         self.endpoint = endpoint
         self.stop = stop
         self.survey_ids: list[str] = []
         self.revisit_ids: list[str] = []
-        self.error: str | None = None
-        self._t0 = time.monotonic()
+        self.errors: list[str] = []
+        self._threads: list[threading.Thread] = []
 
-    def run(self) -> None:
-        try:
-            self._run()
-        except Exception as exc:  # noqa: BLE001 - reported in the demo's summary and log
-            self.error = f"{type(exc).__name__}: {exc}"
-            log.exception("the simulated instrument failed")
+    @property
+    def error(self) -> str | None:
+        return "; ".join(self.errors) or None
 
-    def _run(self) -> None:
+    def start(self) -> None:
         from sim_instrument.engine import ScanEngine
-        from sim_instrument.modes import run_serve
         from sim_instrument.outputs import FolderSink
         from sim_instrument.specimen import Specimen
 
         o = self.options
-        engine = ScanEngine(Specimen.from_scenario(o.scenario), seed=o.seed,
-                            frame_prefix="survey")
-        sink = FolderSink(self.out_dir, truth_dir=self.truth_dir)
-        deadline = self._t0 + o.duration_s
+        lock = threading.Lock()
+        self.engine = _Locked(ScanEngine(Specimen.from_scenario(o.scenario), seed=o.seed,
+                                         frame_prefix="survey"), lock)
+        self.sink = _Locked(FolderSink(self.out_dir, truth_dir=self.truth_dir), lock)
+        self._deadline = time.monotonic() + o.duration_s
+        for name, target in (("sim-survey", self._survey), ("sim-requests", self._serve)):
+            t = threading.Thread(target=self._guard, args=(target,), name=name, daemon=True)
+            t.start()
+            self._threads.append(t)
+
+    def join(self, timeout: float | None = None) -> None:
+        end = None if timeout is None else time.monotonic() + timeout
+        for t in self._threads:
+            t.join(None if end is None else max(0.0, end - time.monotonic()))
+
+    def _guard(self, target) -> None:
+        try:
+            target()
+        except Exception as exc:  # noqa: BLE001 - reported in the demo's summary and log
+            self.errors.append(f"{type(exc).__name__}: {exc}")
+            log.exception("the simulated instrument failed")
+
+    def _survey(self) -> None:
+        o = self.options
         for x_nm, y_nm in tour_positions(o.frames, fov_nm=o.fov_nm, overlap_nm=o.overlap_nm):
-            if self.stop.is_set() or time.monotonic() >= deadline:
+            if self.stop.is_set() or time.monotonic() >= self._deadline:
                 break
             started = time.monotonic()
-            engine.catch_up()  # the specimen drifts with the wall clock, as at the instrument
-            acq = engine.acquire((x_nm, y_nm), o.fov_nm, o.shape_px)
-            sink.send(acq.pixels, acq.sidecar, acq.truth)
+            self.engine.catch_up()  # the specimen drifts with the wall clock, as at the instrument
+            acq = self.engine.acquire((x_nm, y_nm), o.fov_nm, o.shape_px,
+                                      dwell_time_us=o.dwell_time_us)
+            self.sink.send(acq.pixels, acq.sidecar, acq.truth)
             self.survey_ids.append(acq.frame_id)
             log.info("survey frame %s at stage (%.1f, %.1f) nm", acq.frame_id, x_nm, y_nm)
             self.stop.wait(max(0.0, o.cadence_s - (time.monotonic() - started)))
-        remaining = deadline - time.monotonic()
-        if self.stop.is_set() or remaining <= 0:
-            return
+
+    def _serve(self) -> None:
+        from sim_instrument.modes import run_serve
+
         endpoint = self.endpoint()
-        if endpoint is None:
+        remaining = self._deadline - time.monotonic()
+        if endpoint is None or remaining <= 0:
             return
-
-        def on_frame(acq):
-            self.revisit_ids.append(acq.frame_id)
-
-        # Serve accepted proposals until the demo's time is up; the specimen
-        # keeps drifting while the instrument waits for a request.
-        run_serve(engine, [sink], endpoint, duration_s=remaining, stop=self.stop,
-                  on_frame=on_frame, realtime_clock=True)
+        # The specimen keeps drifting while the instrument waits for a request.
+        run_serve(self.engine, [self.sink], endpoint, duration_s=remaining, stop=self.stop,
+                  on_frame=lambda acq: self.revisit_ids.append(acq.frame_id),
+                  realtime_clock=True)
 
 
 def run_demo(options: DemoOptions, *, display_factory: Callable | None = None,
@@ -224,21 +262,28 @@ def run_demo(options: DemoOptions, *, display_factory: Callable | None = None,
 
     def supervise() -> None:
         # Wait for the daemon, run the instrument for the demo's time, let the
-        # daemon drain what it was given, then stop it.
-        if events_endpoint() is None:
-            return
-        instrument.start()
-        instrument.join(options.duration_s + 5.0)
-        stop.set()
-        instrument.join(30.0)
-        deadline = time.monotonic() + options.drain_s
-        while time.monotonic() < deadline and not daemon.should_exit.is_set():
-            snap = daemon.snapshot
-            busy = snap.counts.get("queued", 0) + snap.counts.get("processing", 0)
-            if busy == 0 and snap.in_flight == 0 and snap.settling == 0:
-                break
-            time.sleep(0.2)
-        daemon.handle_exit()
+        # daemon drain what it was given, then stop it -- also when anything here
+        # fails, so the demo never hangs.
+        try:
+            if events_endpoint() is None:
+                return
+            instrument.start()
+            daemon.should_exit.wait(max(0.0, options.duration_s))
+            stop.set()
+            instrument.join(30.0)
+            deadline = time.monotonic() + options.drain_s
+            while time.monotonic() < deadline and not daemon.should_exit.is_set():
+                snap = daemon.snapshot
+                busy = snap.counts.get("queued", 0) + snap.counts.get("processing", 0)
+                if busy == 0 and snap.in_flight == 0 and snap.settling == 0:
+                    break
+                time.sleep(0.2)
+        except Exception as exc:  # noqa: BLE001 - reported in the summary, then stop
+            instrument.errors.append(f"{type(exc).__name__}: {exc}")
+            log.exception("the demo's supervisor failed")
+        finally:
+            stop.set()
+            daemon.handle_exit()
 
     supervisor = threading.Thread(target=supervise, name="demo-supervisor", daemon=True)
     supervisor.start()

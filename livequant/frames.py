@@ -8,9 +8,11 @@ with a message that names the file, says what is wrong and how to fix it.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import os
+import stat
 import struct
 from dataclasses import dataclass, field
 from datetime import datetime
@@ -35,6 +37,8 @@ __all__ = [
     "write_frame",
     "write_json_atomic",
     "check_pixels",
+    "check_not_constant",
+    "check_inside",
     "resolve_meta",
 ]
 
@@ -159,6 +163,7 @@ def read_sidecar(path: str | os.PathLike) -> Sidecar:
     """Read and validate one sidecar file."""
     path = Path(path)
     try:
+        _check_regular(path, what="sidecar")
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
         raise FrameError(f"{path}: sidecar vanished before it could be read",
@@ -198,7 +203,7 @@ def read_image(path: str | os.PathLike) -> np.ndarray:
         raise FrameError(f"{path}: not a frame file; expected one of {', '.join(IMAGE_SUFFIXES)}",
                          reason="unsupported-format", path=path)
     try:
-        size = path.stat().st_size
+        size = _check_regular(path, what="image").st_size
     except FileNotFoundError:
         raise FrameError(f"{path}: file vanished before it could be read", reason="vanished",
                          path=path) from None
@@ -221,6 +226,48 @@ def read_image(path: str | os.PathLike) -> np.ndarray:
                          "is truncated or not a valid image", reason="unreadable",
                          path=path) from None
     return check_pixels(pixels, where=str(path))
+
+
+def _check_regular(path: Path, *, what: str) -> os.stat_result:
+    """stat() `path` (following links) and refuse anything but a regular file.
+
+    A FIFO or a device named like a frame would block the reader or never end.
+    """
+    st = path.stat()
+    if not stat.S_ISREG(st.st_mode):
+        raise FrameError(f"{path}: the {what} is not a regular file (a pipe, device or "
+                         "socket); write frames as ordinary files", reason="not-a-file",
+                         path=path)
+    return st
+
+
+def check_inside(path: str | os.PathLike, root: str | os.PathLike, *, what: str = "file") -> None:
+    """Refuse `path` when it resolves (through symbolic links) outside the folder `root`.
+
+    Whoever can write the watched folder could otherwise make the daemon read
+    any file the daemon's user can read, by linking to it.
+    """
+    real = Path(os.path.realpath(path))
+    real_root = Path(os.path.realpath(root))
+    if real != real_root and real_root not in real.parents:
+        raise FrameError(f"{path}: the {what} is a link to {real}, outside the folder "
+                         f"{real_root}; copy the file in instead of linking to it",
+                         reason="outside-folder", path=path)
+
+
+def check_not_constant(pixels: np.ndarray, *, where: str) -> None:
+    """Refuse an image whose pixels all hold the same value.
+
+    A constant frame carries no specimen information: a blanked beam, a
+    detector that read nothing, or a writer that saved an empty buffer.  It is
+    bad data rather than "no lattice found", so it is set aside with its own
+    reason (common practice: such frames are discarded at acquisition).
+    """
+    flat = pixels.reshape(-1)
+    if flat.size and not (flat != flat[0]).any():
+        raise FrameError(f"{where}: every pixel has the value {flat[0].item()!r}; a constant "
+                         "frame holds no image (beam blanked, detector not read out, or an "
+                         "empty buffer saved)", reason="constant")
 
 
 def check_pixels(pixels: np.ndarray, *, where: str) -> np.ndarray:
@@ -331,7 +378,8 @@ def resolve_meta(sidecar: Sidecar | None, *, default_id: str, defaults: dict | N
     return FrameMeta(**values, extra=extra)
 
 
-def read_frame(path: str | os.PathLike, *, defaults: dict | None = None) -> Frame:
+def read_frame(path: str | os.PathLike, *, defaults: dict | None = None,
+               confine_to: str | os.PathLike | None = None) -> Frame:
     """Read an image file and its optional sidecar into a :class:`Frame`.
 
     Parameters
@@ -341,13 +389,29 @@ def read_frame(path: str | os.PathLike, *, defaults: dict | None = None) -> Fram
     defaults : dict, optional
         Fallback metadata for keys the sidecar does not give (e.g. from
         ``Settings.frame_defaults``).
+    confine_to : path-like, optional
+        A folder the image and its sidecar must really be in: a symbolic link
+        leading out of it is refused (reason ``outside-folder``) before anything
+        is read.  The daemon confines every frame to the folder it was found in.
+
+    A frame whose pixels are all equal is refused (reason ``constant``) after
+    its metadata, so a missing pixel size is still reported as such.
     """
     path = Path(path)
-    pixels = read_image(path)
     sc_path = sidecar_path(path)
-    sidecar = read_sidecar(sc_path) if sc_path.exists() else None
+    if confine_to is not None:
+        check_inside(path, confine_to, what="image")
+        if os.path.lexists(sc_path):
+            check_inside(sc_path, confine_to, what="sidecar")
+    pixels = read_image(path)
+    try:
+        sidecar = read_sidecar(sc_path) if sc_path.exists() else None
+    except FrameError as exc:
+        exc.path = exc.path or str(path)
+        raise
     try:
         meta = resolve_meta(sidecar, default_id=path.stem, defaults=defaults, where=str(path))
+        check_not_constant(pixels, where=str(path))
     except FrameError as exc:
         exc.path = str(path)
         raise
@@ -393,8 +457,15 @@ def write_json_atomic(path: str | os.PathLike, data: Any) -> None:
     """Write JSON to a temporary file in the same folder, then rename it into place."""
     path = Path(path)
     tmp = path.with_name(f".{path.name}.part")
-    with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump(data, fh, indent=1, default=str)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+    try:
+        with open(tmp, "w", encoding="utf-8") as fh:
+            json.dump(data, fh, indent=1, default=str)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        # Disk full or killed half-way: leave no temporary file behind; the
+        # caller sees the error and the old file (if any) is untouched.
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise

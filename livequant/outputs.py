@@ -29,11 +29,19 @@ COLUMN_EXTRA_FIELDS = ("background", "reduced_chi2")
 def write_text_atomic(path: str | os.PathLike, text: str) -> None:
     path = Path(path)
     tmp = path.with_name(f".{path.name}.part")
-    with open(tmp, "w", encoding="utf-8", newline="") as fh:
-        fh.write(text)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+    try:
+        with open(tmp, "w", encoding="utf-8", newline="") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        # Disk full or an unwritable folder: no temporary file left behind.
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
 
 
 def _column_table(result) -> list[list[str]]:

@@ -161,3 +161,78 @@ def test_socket_message_round_trip_and_rejections():
         with pytest.raises(FrameError) as exc:
             decode_frame_message(msg)
         assert exc.value.reason == reason, (msg[:2], exc.value)
+
+
+# ---------------------------------------------------------------- reliability additions
+
+
+@pytest.mark.parametrize("value, dtype", [(0, np.uint16), (1234.5, np.float32), (7, np.int8)])
+def test_constant_frame_is_refused_after_its_metadata(tmp_path, value, dtype):
+    """A frame of one value everywhere (blanked beam, detector not read out) is bad data,
+    refused with its own reason; a missing pixel size is still reported first."""
+    p = write_frame(tmp_path, "flat", np.full((64, 64), value, dtype), {"pixel_size_pm": 10.0})
+    with pytest.raises(FrameError) as exc:
+        read_frame(p)
+    assert exc.value.reason == "constant" and "flat.tif" in str(exc.value)
+    assert repr(np.asarray(value, dtype).item()) in str(exc.value)
+    q = write_frame(tmp_path, "flat_nopx", np.zeros((64, 64), np.uint16), None)
+    with pytest.raises(FrameError) as exc:
+        read_frame(q)
+    assert exc.value.reason == "no-pixel-size"
+    one_pixel_differs = np.zeros((64, 64), np.uint16)
+    one_pixel_differs[63, 63] = 1
+    r = write_frame(tmp_path, "almost", one_pixel_differs, {"pixel_size_pm": 10.0})
+    assert read_frame(r).frame_id == "almost"
+
+
+def test_link_out_of_the_folder_is_refused_before_reading(tmp_path):
+    outside, watched = tmp_path / "private", tmp_path / "watched"
+    watched.mkdir()
+    target = write_frame(outside, "secret", GOOD, {"pixel_size_pm": 10.0})
+    (watched / "innocent.tif").symlink_to(target)
+    with pytest.raises(FrameError) as exc:
+        read_frame(watched / "innocent.tif", confine_to=watched)
+    assert exc.value.reason == "outside-folder"
+    assert "innocent.tif" in str(exc.value) and str(outside) in str(exc.value)
+    # the sidecar is confined too: its values would otherwise reach the ledger and events
+    write_frame(watched, "mine", GOOD, None)
+    (watched / "mine.json").symlink_to(outside / "secret.json")
+    with pytest.raises(FrameError) as exc:
+        read_frame(watched / "mine.tif", confine_to=watched)
+    assert exc.value.reason == "outside-folder" and "sidecar" in str(exc.value)
+    # a link that stays inside the folder is fine, and without confinement links are followed
+    write_frame(watched, "real", GOOD, {"pixel_size_pm": 10.0})
+    (watched / "alias.tif").symlink_to(watched / "real.tif")
+    (watched / "alias.json").symlink_to(watched / "real.json")
+    assert read_frame(watched / "alias.tif", confine_to=watched).meta.pixel_size_pm == 10.0
+    assert read_frame(watched / "innocent.tif", defaults={"pixel_size_pm": 9.0}).frame_id \
+        == "innocent"
+
+
+def test_pipe_named_like_a_frame_or_sidecar_is_refused_not_waited_on(tmp_path):
+    os.mkfifo(tmp_path / "pipe.tif")
+    with pytest.raises(FrameError) as exc:
+        read_frame(tmp_path / "pipe.tif")
+    assert exc.value.reason == "not-a-file"
+    p = write_frame(tmp_path, "f", GOOD, None)
+    os.mkfifo(tmp_path / "f.json")
+    with pytest.raises(FrameError) as exc:
+        read_frame(p)
+    assert exc.value.reason == "not-a-file" and "sidecar" in str(exc.value)
+
+
+def test_failed_json_write_leaves_no_temporary_file(tmp_path, monkeypatch):
+    import errno
+
+    from livequant.frames import write_json_atomic
+
+    write_json_atomic(tmp_path / "s.json", {"v": 1})
+
+    def full(fd):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(os, "fsync", full)
+    with pytest.raises(OSError, match="No space"):
+        write_json_atomic(tmp_path / "s.json", {"v": 2})
+    assert sorted(os.listdir(tmp_path)) == ["s.json"]
+    assert json.loads((tmp_path / "s.json").read_text()) == {"v": 1}  # old file untouched

@@ -56,6 +56,9 @@ def register(subparsers) -> None:
     p.add_argument("--cadence-s", type=_positive, default=d.cadence_s, metavar="S",
                    help=f"at least this long between survey frames, seconds "
                         f"(default {d.cadence_s:g})")
+    p.add_argument("--dwell-us", type=_positive, default=d.dwell_time_us, metavar="US",
+                   dest="dwell_time_us",
+                   help=f"survey dwell per pixel, microseconds (default {d.dwell_time_us:g})")
     p.add_argument("--auto-accept", action="store_true",
                    help="accept every proposal automatically so the simulated instrument "
                         "revisits it (for the simulated instrument only)")
@@ -82,6 +85,7 @@ def demo_command(args) -> int:
         return EXIT_BAD_INPUT
     options = DemoOptions(session=args.session, duration_s=args.duration_s, frames=args.frames,
                           shape_px=args.shape_px, cadence_s=args.cadence_s,
+                          dwell_time_us=args.dwell_time_us,
                           auto_accept=args.auto_accept, seed=args.seed,
                           config_file=args.config, workers=args.workers,
                           report=not args.no_report)

@@ -37,10 +37,11 @@ from pathlib import Path
 from typing import Callable
 
 from livequant.config import ConfigError, Settings
-from livequant.daemon.commands import CommandServer
+from livequant.daemon.commands import DECISION_SCHEMAS, CommandServer
 from livequant.daemon.decisions import DecisionLoop
 from livequant.daemon.ledger import Ledger
 from livequant.daemon.publisher import EventPublisher
+from livequant.daemon.security import bind_policy, start_authenticator
 from livequant.daemon.session import (SessionLock, SetupError, check_session_folder,
                                       check_watch_folder, write_daemon_file)
 from livequant.daemon.sources import (Candidate, FolderSource, SocketSource,
@@ -127,13 +128,14 @@ class Daemon:
         self._stopped = False
         self.n_worker_crashes = 0
         self._extra_commands: dict[str, Callable[[dict], dict]] = {}
+        self._extra_schemas: dict = {}
         self._rules_arg = rules
         self._session_context_arg = session_context
         self.decisions: DecisionLoop | None = None
         self._view_errors: set[str] = set()
-        self.add_command("proposals", self._cmd_proposals)
-        self.add_command("accept", self._cmd_accept)
-        self.add_command("reject", self._cmd_reject)
+        self.add_command("proposals", self._cmd_proposals, schema=DECISION_SCHEMAS["proposals"])
+        self.add_command("accept", self._cmd_accept, schema=DECISION_SCHEMAS["accept"])
+        self.add_command("reject", self._cmd_reject, schema=DECISION_SCHEMAS["reject"])
 
         self.paths = None
         self.watch = None
@@ -144,6 +146,7 @@ class Daemon:
         self.socket_source: SocketSource | None = None
         self.pool: cf.ProcessPoolExecutor | None = None
         self._zmq = None
+        self._auth = None  # CURVE authenticator thread (security.py), when CURVE is on
         self._lock: SessionLock | None = None
         self._intake_thread: threading.Thread | None = None
         self._intake_stop = threading.Event()
@@ -184,10 +187,14 @@ class Daemon:
             log.info("%d frame(s) left in processing by the last run are queued again", n_back)
 
         host = self.cfg.host
+        # Loopback only, unless allowed explicitly and then with CURVE (security.py).
+        curve = bind_policy(self.cfg)
         self._zmq = zmq.Context()
+        if curve is not None:
+            self._auth = start_authenticator(self._zmq, curve)
         try:
             self.publisher = EventPublisher(self._zmq, f"tcp://{host}:{self.cfg.events_port}",
-                                            self.paths.events)
+                                            self.paths.events, curve=curve)
             self.endpoints["events"] = self.publisher.start()
             try:
                 self.decisions = DecisionLoop(self.settings, self.ledger, self.publisher,
@@ -198,13 +205,15 @@ class Daemon:
                 raise SetupError(f"rules: {exc}") from None
             self.decisions.resume()
             self.commands = CommandServer(self._zmq, f"tcp://{host}:{self.cfg.commands_port}",
-                                          self._command_handlers())
+                                          self._command_handlers(), curve=curve,
+                                          schemas=self._extra_schemas)
             self.endpoints["commands"] = self.commands.start()
             if self.cfg.ingest_socket:
                 self.socket_source = SocketSource(
                     self._zmq, f"tcp://{host}:{self.cfg.ingest_port}", self.paths.incoming,
                     self._intake, frame_defaults=self.settings.frame_defaults.as_dict(),
-                    on_reject=self._on_rejected_message)
+                    on_reject=self._on_rejected_message, curve=curve,
+                    max_message_bytes=int(self.cfg.max_message_mb * (1 << 20)))
                 self.endpoints["ingest"] = self.socket_source.start()
         except OSError as exc:
             raise SetupError(str(exc)) from None
@@ -228,6 +237,8 @@ class Daemon:
             "watch": None if self.watch is None else str(self.watch),
             "endpoints": dict(self.endpoints),
             "workers": self.n_workers,
+            # public, so clients can connect; the secret key never leaves its file
+            "curve_server_public": None if curve is None else curve.public.decode("ascii"),
         })
         self._started = True
         self._state = "running"
@@ -559,18 +570,23 @@ class Daemon:
 
     # ================================================================ commands
 
-    def add_command(self, name: str, handler: Callable[[dict], dict]) -> None:
+    def add_command(self, name: str, handler: Callable[[dict], dict], *,
+                    schema=None) -> None:
         """Answer `name` on the command socket (call before :meth:`start`).
 
-        For the decision loop's proposal commands.  `handler` runs on the command
-        thread with the request dict and returns a dict for the reply; it raises
-        ``ValueError`` or ``KeyError`` for a bad request (sent back as the error).
+        `handler` runs on the command thread with the request dict and returns a
+        dict for the reply; it raises ``ValueError`` or ``KeyError`` for a bad
+        request (sent back as the error).  `schema`, a pydantic model, checks
+        every request before the handler sees it (an invalid one gets an error
+        reply naming the field).
         """
         if self._started:
             raise RuntimeError("add_command() must be called before start()")
         if name in self._command_handlers():
             raise ValueError(f"command {name!r} is built in")
         self._extra_commands[name] = handler
+        if schema is not None:
+            self._extra_schemas[name] = schema
 
     def _command_handlers(self) -> dict:
         return {
@@ -735,6 +751,8 @@ class Daemon:
                 pass
         if self.ledger is not None:
             self.ledger.close()
+        if self._auth is not None:
+            self._auth.stop()  # before term(): its socket would hold the context open
         if self._zmq is not None:
             threads = [t for t in (getattr(p, "_thread", None) for p in
                                    (self.publisher, self.commands, self.socket_source)) if t]

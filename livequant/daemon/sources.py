@@ -19,6 +19,7 @@ import logging
 import os
 import queue
 import re
+import stat
 import threading
 
 from livequant.daemon._socket_thread import SocketThread
@@ -26,7 +27,9 @@ import time
 from dataclasses import dataclass
 from pathlib import Path
 
-from livequant.frames import IMAGE_SUFFIXES, FrameError, resolve_meta, sidecar_path, write_frame
+from livequant.daemon.security import apply_curve_server
+from livequant.frames import (IMAGE_SUFFIXES, MAX_FRAME_PIXELS, FrameError, resolve_meta,
+                              sidecar_path, write_frame)
 
 __all__ = ["Candidate", "FolderSource", "SocketSource", "image_files", "put_until",
            "incoming_candidates"]
@@ -76,17 +79,39 @@ def image_files(folder: Path) -> list[Path]:
     return sorted(out)
 
 
+_warned_not_regular: set[str] = set()
+
+
+def _not_regular(path: Path, what: str) -> None:
+    """Log once per path that a pipe, device or socket is named like a frame file."""
+    if str(path) not in _warned_not_regular:
+        _warned_not_regular.add(str(path))
+        log.warning("%s: the %s is not a regular file (a pipe, device or socket); ignored: "
+                    "reading it could block for ever", path, what)
+
+
 def _signature(path: Path) -> tuple | None:
-    """(size, mtime_ns) of the image and of its sidecar (None when absent); None if gone."""
+    """(size, mtime_ns) of the image and of its sidecar (None when absent); None if gone.
+
+    Also None, with a warning, when the image or its sidecar is not a regular
+    file: hashing or reading a pipe named ``x.tif`` would block ingest for ever.
+    """
     try:
         st = path.stat()
-    except FileNotFoundError:
+    except (FileNotFoundError, NotADirectoryError):
+        return None
+    if not stat.S_ISREG(st.st_mode):
+        _not_regular(path, "image")
         return None
     try:
         sc = sidecar_path(path).stat()
         side = (sc.st_size, sc.st_mtime_ns)
-    except FileNotFoundError:
+    except (FileNotFoundError, NotADirectoryError):
         side = None
+    else:
+        if not stat.S_ISREG(sc.st_mode):
+            _not_regular(sidecar_path(path), "sidecar")
+            return None
     return (st.st_size, st.st_mtime_ns, side)
 
 
@@ -288,9 +313,16 @@ class SocketSource(SocketThread):
     label = "ingest socket"
 
     def __init__(self, context, endpoint: str, incoming: Path, out: queue.Queue, *,
-                 frame_defaults: dict, on_reject=None, bind_port: int | None = None):
+                 frame_defaults: dict, on_reject=None, bind_port: int | None = None,
+                 max_message_bytes: int | None = None, curve=None):
         self.context = context
         self._init_thread(endpoint)
+        # Largest message part accepted.  ZeroMQ checks the size announced in the
+        # wire header and drops the sender's connection before allocating the
+        # body, so an absurd message never reaches memory.  Default: the largest
+        # frame the readers accept, as float64, plus room for the header.
+        self.max_message_bytes = int(max_message_bytes or MAX_FRAME_PIXELS * 8 + (1 << 16))
+        self.curve = curve
         self.incoming = Path(incoming)
         self.out = out
         self.frame_defaults = dict(frame_defaults)
@@ -304,6 +336,8 @@ class SocketSource(SocketThread):
         try:
             sock = self.context.socket(zmq.PULL)
             sock.setsockopt(zmq.LINGER, 0)
+            sock.setsockopt(zmq.MAXMSGSIZE, self.max_message_bytes)
+            apply_curve_server(sock, self.curve)
             # Keep the in-memory backlog to a few frames: past it ZeroMQ holds the
             # sender back instead of buffering gigabytes here.
             sock.setsockopt(zmq.RCVHWM, 4)

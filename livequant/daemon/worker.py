@@ -105,7 +105,8 @@ def process_path(path: str) -> Outcome:
 
     t0 = time.perf_counter()
     try:
-        frame = read_frame(path, defaults=_state["defaults"])
+        # Confined to the folder the frame was found in: a link out of it is refused.
+        frame = read_frame(path, defaults=_state["defaults"], confine_to=Path(path).parent)
     except FrameError as exc:
         return Outcome(path, "quarantined", reason=exc.reason, message=str(exc))
     t1 = time.perf_counter()

@@ -62,3 +62,20 @@ def test_no_daemon_is_a_timeout_not_a_hang():
         with pytest.raises(CommandError, match="no reply"):
             send_command(f"tcp://127.0.0.1:{port}", {"cmd": "status"}, timeout_s=0.3,
                          context=ctx)
+
+
+def test_decision_commands_are_validated_before_their_handlers():
+    from livequant.daemon.commands import DECISION_SCHEMAS, CommandServer
+
+    seen = []
+    server = CommandServer(None, "tcp://127.0.0.1:0",
+                           {"accept": lambda req: seen.append(req) or {"done": True},
+                            "reject": lambda req: seen.append(req) or {"done": True}},
+                           schemas=DECISION_SCHEMAS)
+    bad = server.answer(b'{"cmd": "accept", "id": 7}')
+    assert bad["ok"] is False and "`id`" in bad["error"]
+    assert server.answer(b'{"cmd": "reject", "id": "p1", "why": 3}')["ok"] is False
+    assert server.answer(b'{"cmd": "accept", "id": "p1", "extra": 1}')["ok"] is False
+    assert seen == []
+    assert server.answer(b'{"cmd": "accept", "id": "p1", "note": "ok"}')["ok"] is True
+    assert seen == [{"cmd": "accept", "id": "p1", "note": "ok"}]

@@ -92,10 +92,13 @@ def test_numbers_in_the_tables_match_the_ledger(made):
         assert counts[f"frames {state}"] == str(n), state
     assert led["counts"]["done"] == 3 and led["counts"]["quarantined"] == 1
     assert counts["frames known"] == str(len(led["rows"]))
-    assert counts["flags"] == str(len(led["flags"])) == "3"
-    assert counts["proposals"] == str(len(led["proposals"])) == "3"
+    # the daemon's own rules may add flags and proposals beside the three of each made here
+    assert counts["flags"] == str(len(led["flags"])) and len(led["flags"]) >= 3
+    assert counts["proposals"] == str(len(led["proposals"])) and len(led["proposals"]) >= 3
     assert counts["decisions"] == str(len(led["decisions"])) == "2"
     assert counts["proposals accepted"] == "1" and counts["proposals rejected"] == "1"
+    assert counts.get("proposals open", "0") == str(sum(p["state"] == "open"
+                                                        for p in led["proposals"]))
 
     t0 = min(r.complete_at for r in led["rows"])
     flags = table_dicts(page, "flags")
@@ -110,7 +113,9 @@ def test_numbers_in_the_tables_match_the_ledger(made):
     for p in led["proposals"]:
         assert proposals[p["id"]]["state"] == p["state"]
     assert float(proposals["p-1"]["centre x (nm)"]) == pytest.approx(-40.0)
-    assert proposals["p-1"]["dwell (µs)"] == "4" and proposals["p-1"]["flags"] == "1"
+    p1 = next(p for p in led["proposals"] if p["id"] == "p-1")
+    assert proposals["p-1"]["dwell (µs)"] == "4"
+    assert proposals["p-1"]["flags"] == ", ".join(str(i) for i in p1["payload"]["flag_ids"])
 
     decisions = table_dicts(page, "decisions")
     assert len(decisions) == len(led["decisions"])
