@@ -507,8 +507,21 @@ def _frame_sections(fd: FrameData, session: SessionData, figs: _Figures) -> list
         min_snr = float(topo.get("min_snr") or 3.0)
         w = winding_map(grid, cells, min_snr=min_snr)
         cores = list(topo.get("cores") or [])
-        note = (f"cells count where |d| / σ(|d|) ≥ {min_snr:g}; {len(cores)} core(s)"
+        # Cores flagged by the rules (larger, smoothed loops) are marked too, with
+        # "flagged" in their legend entry.
+        flagged = []
+        for f in frame_flags:
+            reg = f.get("region") or {}
+            if f.get("kind") in ("vortex", "antivortex") and "x_px" in reg and "y_px" in reg:
+                try:
+                    flagged.append({"x_pm": float(reg["x_px"]) * px, "y_pm": float(reg["y_px"]) * px,
+                                    "kind": f"{f['kind']} (flagged)"})
+                except (TypeError, ValueError):
+                    continue
+        note = (f"cells count where |d| / σ(|d|) ≥ {min_snr:g}\n{len(cores)} core(s) from the "
+                f"analysis, {len(flagged)} flagged by the rules"
                 + (" (list truncated)" if topo.get("cores_truncated") else ""))
+        cores += flagged
         fig = F.winding_figure(w.ravel(), grid.plaquette_polygons(), cores, extent_nm=extent,
                                image=image,
                                title=f"{fid}: winding numbers", note=note)
@@ -516,7 +529,8 @@ def _frame_sections(fd: FrameData, session: SessionData, figs: _Figures) -> list
                               "Winding number of the displacement field on every plaquette of "
                               "four cells (+1 for vortices of either circulation, sources and "
                               "sinks; -1 for antivortices, i.e. saddles), with the cores the "
-                              "analysis reported."
+                              "analysis reported and those the rules flagged (winding on "
+                              "larger, smoothed loops)."
                               + no_image))
     return sections
 

@@ -268,8 +268,9 @@ def frames_of_interest(session: SessionData, *, max_frames: int,
     """Which done frames get their own maps: ``(chosen, notes)``.
 
     With `requested` ids, those (in the given order; unknown or not-done ones
-    are named in `notes`).  Otherwise frames with flags first (most flags
-    first, then the most recent flag), then the most recent frames, at most
+    are named in `notes`).  Otherwise one frame per kind of flag (rarest kind
+    first, its best-scoring flag's frame), then the frames with the most flags
+    (then the most recent flag), then the most recent frames, at most
     `max_frames` in all.
     """
     done = session.done_ids()
@@ -285,12 +286,31 @@ def frames_of_interest(session: SessionData, *, max_frames: int,
                              "session")
         return chosen, notes
     flagged: dict[str, tuple[int, float]] = {}
+    best_of_kind: dict[str, tuple[float, str]] = {}
+    kind_count: dict[str, int] = {}
     for f in session.flags:
         fid = f.get("frame_id")
         if fid in done_set:
             n, last = flagged.get(fid, (0, 0.0))
             flagged[fid] = (n + 1, max(last, float(f.get("created_at") or 0.0)))
-    chosen = sorted(flagged, key=lambda k: (-flagged[k][0], -flagged[k][1]))[:max_frames]
+            kind = str(f.get("kind"))
+            kind_count[kind] = kind_count.get(kind, 0) + 1
+            score = float(f.get("score") or 0.0)
+            if kind not in best_of_kind or score > best_of_kind[kind][0]:
+                best_of_kind[kind] = (score, fid)
+    # One frame for each kind of finding first (the rarest kinds first, each by its
+    # best-scoring flag), so a vortex pair is not crowded out by a long wall
+    # flagged on every frame; then the frames with the most flags.
+    chosen: list[str] = []
+    for kind in sorted(best_of_kind, key=lambda k: (kind_count[k], k)):
+        fid = best_of_kind[kind][1]
+        if fid not in chosen and len(chosen) < max_frames:
+            chosen.append(fid)
+    for fid in sorted(flagged, key=lambda k: (-flagged[k][0], -flagged[k][1])):
+        if len(chosen) >= max_frames:
+            break
+        if fid not in chosen:
+            chosen.append(fid)
     for fid in reversed(done):
         if len(chosen) >= max_frames:
             break

@@ -103,6 +103,13 @@ def _scale_bar(ax, span_nm: float) -> None:
     ax.add_artist(bar)
 
 
+def _frame_figsize(extent_nm, width_in: float) -> tuple[float, float]:
+    """A figure size that follows the frame's aspect (a long, narrow revisit scan too)."""
+    x0, x1, y1, y0 = extent_nm
+    aspect = abs(y1 - y0) / max(abs(x1 - x0), 1e-12)
+    return width_in, float(np.clip(width_in * aspect * 0.85 + 1.0, 2.8, 8.0))
+
+
 def _frame_axes(ax, extent_nm, *, title: str, image=None) -> None:
     """Image-like axes in nm, rows down (as the frame is shown), with the image if given."""
     x0, x1, y1, y0 = extent_nm
@@ -135,7 +142,7 @@ def image_with_columns(image, extent_nm, x_nm, y_nm, sublattice, *, title: str,
     `image` may be None (file gone): the columns are drawn on a grey ground.
     `regions` are ``(corners_nm (4, 2), label)`` in the same nm frame.
     """
-    fig = Figure(figsize=(6.4, 6.0), layout="constrained")
+    fig = Figure(figsize=_frame_figsize(extent_nm, 6.4), layout="constrained")
     ax = fig.add_subplot()
     _frame_axes(ax, extent_nm, title=title, image=image)
     sub = np.asarray(sublattice).astype(str)
@@ -163,10 +170,11 @@ def displacement_arrows(image, extent_nm, x_nm, y_nm, dx_pm, dy_pm, *, title: st
     x, y = np.asarray(x_nm, float), np.asarray(y_nm, float)
     dx, dy = np.asarray(dx_pm, float), np.asarray(dy_pm, float)
     ok = np.isfinite(x) & np.isfinite(y) & np.isfinite(dx) & np.isfinite(dy)
-    fig = Figure(figsize=(6.8, 6.3), layout="constrained")
+    fig = Figure(figsize=_frame_figsize(extent_nm, 6.8), layout="constrained")
     ax = fig.add_subplot()
     _frame_axes(ax, extent_nm, title=title, image=image)
     ax.set_title(title, fontsize=10, loc="left")
+    ax.set_title("", loc="center")
     if ok.sum() == 0:
         ax.text(0.5, 0.5, "no cell with a B-site displacement", transform=ax.transAxes,
                 ha="center", va="center")
@@ -336,7 +344,9 @@ def winding_figure(w, polygons, cores: Sequence[dict], *, extent_nm, title: str,
                 va="center", transform=ax.transAxes)
     markers = {"vortex": ("o", OKABE_ITO[0]), "antivortex": ("X", OKABE_ITO[6]),
                "source": ("^", OKABE_ITO[5]), "sink": ("v", OKABE_ITO[5]),
-               "higher-order": ("*", OKABE_ITO[7])}
+               "higher-order": ("*", OKABE_ITO[7]),
+               "vortex (flagged)": ("s", OKABE_ITO[1]),
+               "antivortex (flagged)": ("D", OKABE_ITO[3])}
     seen = set()
     for c in cores:
         try:
@@ -345,7 +355,7 @@ def winding_figure(w, polygons, cores: Sequence[dict], *, extent_nm, title: str,
             continue
         kind = str(c.get("kind", "?"))
         marker, colour = markers.get(kind, ("P", OKABE_ITO[4]))
-        ax.scatter([cx], [cy], s=120, marker=marker, facecolors="none" if marker in "o^v"
+        ax.scatter([cx], [cy], s=120, marker=marker, facecolors="none" if marker in "o^vsD"
                    else colour, edgecolors=colour, linewidths=2,
                    label=None if kind in seen else kind)
         seen.add(kind)

@@ -239,13 +239,19 @@ def test_frames_of_interest_order_and_bound():
                            float(seq), None, float(seq) + 1, None, None, None)
 
     frames = [rec(k, f"f{k}") for k in range(1, 9)] + [rec(9, "q", "quarantined")]
-    flags = [{"frame_id": "f2", "created_at": 5.0}, {"frame_id": "f5", "created_at": 3.0},
-             {"frame_id": "f5", "created_at": 4.0}, {"frame_id": "q", "created_at": 9.0}]
+    flags = [{"frame_id": "f2", "created_at": 5.0, "kind": "domain-wall", "score": 0.5},
+             {"frame_id": "f5", "created_at": 3.0, "kind": "domain-wall", "score": 0.4},
+             {"frame_id": "f5", "created_at": 4.0, "kind": "domain-wall", "score": 0.3},
+             {"frame_id": "f3", "created_at": 6.0, "kind": "domain-wall", "score": 0.9},
+             {"frame_id": "f6", "created_at": 2.0, "kind": "vortex", "score": 0.2},
+             {"frame_id": "q", "created_at": 9.0, "kind": "vortex", "score": 1.0}]
     s = SessionData(root=None, frames=frames, counts={}, flags=flags, proposals=[],
                     decisions=[], drift=[], event_counts={})
-    chosen, notes = frames_of_interest(s, max_frames=4)
-    assert chosen == ["f5", "f2", "f8", "f7"]   # most flags first, then the newest
-    assert notes and "4 more" in notes[0]
+    # the rare vortex first, the best wall frame next, then most flags, then the newest
+    chosen, notes = frames_of_interest(s, max_frames=5)
+    assert chosen == ["f6", "f3", "f5", "f2", "f8"]
+    assert notes and "3 more" in notes[0]
+    assert frames_of_interest(s, max_frames=2)[0] == ["f6", "f3"]
     chosen, notes = frames_of_interest(s, max_frames=3, requested=["f1", "q", "f1"])
     assert chosen == ["f1"] and "'q'" in notes[0]
 
