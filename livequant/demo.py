@@ -238,6 +238,9 @@ def run_demo(options: DemoOptions, *, display_factory: Callable | None = None,
         tempfile.mkdtemp(prefix="livequant-demo-"))
     session.mkdir(parents=True, exist_ok=True)
     settings = demo_settings(options)
+    log.info("demo session %s; from another terminal: livequant proposals --session %s "
+             "(then accept ID / reject ID)%s", session, session,
+             "; auto-accept is on (simulated instrument)" if options.auto_accept else "")
     acquired = session / "acquired"
     acquired.mkdir(exist_ok=True)
     daemon = Daemon(settings, session=session, watch=acquired,
