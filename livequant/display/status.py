@@ -177,14 +177,20 @@ def proposals_table(rows, *, limit: int = _MAX_PROPOSALS, width: int | None = 80
 
 def flags_table(rows, *, limit: int = _MAX_FLAGS, width: int = 80) -> Panel:
     """The most recent flags (newest last): frame, rule, kind, score, message."""
+    rows = list(rows)[-limit:]
+    # Frame and kind keep their full width (they tell the flags apart); the message
+    # gives way.  The rule's name is in the status and in `livequant proposals`.
+    frame_w = min(16, max([len(str(f.get("frame_id"))) for f in rows] + [5]))
+    kind_w = min(12, max([len(str(f.get("kind"))) for f in rows] + [4]))
     grid = Table.grid(padding=(0, 1))
-    grid.add_column(no_wrap=True, max_width=16, overflow="ellipsis")
-    grid.add_column(no_wrap=True)
-    grid.add_column(justify="right", no_wrap=True)
-    grid.add_column(no_wrap=True, overflow="ellipsis", ratio=1)
-    for f in list(rows)[-limit:]:
+    grid.add_column(no_wrap=True, min_width=frame_w, max_width=16, overflow="ellipsis")
+    grid.add_column(no_wrap=True, min_width=kind_w, max_width=12, overflow="ellipsis")
+    grid.add_column(justify="right", no_wrap=True, min_width=4, max_width=4)
+    grid.add_column(no_wrap=True, overflow="ellipsis", min_width=10,
+                    max_width=max(10, width - 4 - frame_w - kind_w - 4 - 3))
+    for f in rows:
         score = f.get("score")
-        grid.add_row(str(f.get("frame_id")), f"{f.get('rule')}/{f.get('kind')}",
+        grid.add_row(str(f.get("frame_id")), str(f.get("kind")),
                      "-" if score is None else f"{score:.2f}", str(f.get("message") or ""))
     return Panel(grid, title="recent flags", title_align="left", box=box.ROUNDED, width=width,
                  padding=(0, 1))

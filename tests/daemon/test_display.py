@@ -107,6 +107,8 @@ def test_proposals_table_and_flags_panel_fit_80_columns():
         assert expected in text, expected
     assert "p0004" not in text          # only four rows; the rest are counted
     assert "flag message 1" not in text  # the three newest flags
+    flag_line = next(line for line in lines if "flag message 4" in line)
+    assert "scan_0004" in flag_line and "vortex" in flag_line and "0.80" in flag_line
     assert "frame_3.tif" not in text and "frame_7.tif" in text  # two warnings only
 
 
