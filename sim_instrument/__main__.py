@@ -11,6 +11,8 @@ import logging
 import sys
 import threading
 
+from livequant.commands._common import positive_float as _positive
+
 __all__ = ["main", "build_parser"]
 
 EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT = 0, 1, 2
@@ -50,16 +52,6 @@ def _shape(text: str):
     if min(shape) < 8 or max(shape) > 8192:
         raise argparse.ArgumentTypeError(f"pixel counts must be within 8..8192, got {text}")
     return shape
-
-
-def _positive(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not v > 0:
-        raise argparse.ArgumentTypeError(f"must be > 0, got {text}")
-    return v
 
 
 def _nonneg(text: str) -> float:

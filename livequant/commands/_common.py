@@ -4,7 +4,20 @@ from __future__ import annotations
 
 from livequant.config import ConfigError, Settings, load_settings, parse_scalar
 
-__all__ = ["add_settings_arguments", "settings_from_args"]
+__all__ = ["add_settings_arguments", "settings_from_args", "positive_float"]
+
+
+def positive_float(text: str) -> float:
+    """argparse type: a number > 0, with a message saying what was wrong."""
+    import argparse
+
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not v > 0:
+        raise argparse.ArgumentTypeError(f"must be > 0, got {text}")
+    return v
 
 #: flag -> dotted settings key
 _FLAGS = {

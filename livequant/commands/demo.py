@@ -7,21 +7,13 @@ import json
 import logging
 import sys
 
+from livequant.commands._common import positive_float as _positive
+
 __all__ = ["register", "demo_command"]
 
 CAUTION = ("The demo drives a simulated instrument.  At a real microscope, livequant only "
            "proposes: the operator decides, beam-sensitive specimens have dose budgets, and "
            "facility procedures and the instrument's interlocks come first.")
-
-
-def _positive(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not v > 0:
-        raise argparse.ArgumentTypeError(f"must be > 0, got {text}")
-    return v
 
 
 def _shape(text: str) -> tuple[int, int]:

@@ -25,7 +25,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["FrameGeometry", "stage_region", "region_corners", "polygon_area",
+__all__ = ["FrameGeometry", "stage_region", "region_corners", "rect_corners", "polygon_area",
            "clip_polygon", "overlap_area", "overlap_fraction", "bounding_region",
            "shift_region"]
 
@@ -133,13 +133,24 @@ def stage_region(center_x_nm: float, center_y_nm: float, width_nm: float, height
             "rotation_deg": _wrap_deg(float(rotation_deg))}
 
 
+def rect_corners(cx: float, cy: float, width: float, height: float,
+                 angle_deg: float = 0.0) -> np.ndarray:
+    """Corners (4, 2) of a rectangle by centre, size and the angle of its width axis.
+
+    The angle turns the width axis from +x towards +y; the corners run
+    counter-clockwise in (x, y) from the (-width, -height) one.  Any units.
+    """
+    t = math.radians(angle_deg)
+    u = np.array([math.cos(t), math.sin(t)]) * width / 2
+    v = np.array([-math.sin(t), math.cos(t)]) * height / 2
+    c = np.array([cx, cy], dtype=float)
+    return np.array([c - u - v, c + u - v, c + u + v, c - u + v])
+
+
 def region_corners(region: dict) -> np.ndarray:
     """The four corners (4, 2) of a stage region, counter-clockwise."""
-    t = math.radians(region["rotation_deg"])
-    u = np.array([math.cos(t), math.sin(t)]) * region["width_nm"] / 2
-    v = np.array([-math.sin(t), math.cos(t)]) * region["height_nm"] / 2
-    c = np.array([region["center_x_nm"], region["center_y_nm"]])
-    return np.array([c - u - v, c + u - v, c + u + v, c - u + v])
+    return rect_corners(region["center_x_nm"], region["center_y_nm"], region["width_nm"],
+                        region["height_nm"], region["rotation_deg"])
 
 
 def polygon_area(poly: np.ndarray) -> float:

@@ -23,6 +23,7 @@ import numpy as np
 
 from livequant.daemon.ledger import LEDGER_NAME, STATES, Ledger
 from livequant.outputs import read_columns_csv
+from livequant.proposals.geometry import rect_corners
 
 __all__ = ["SessionData", "FrameData", "FrameRecord", "load_session", "load_frame",
            "frames_of_interest", "read_cells_csv", "thompson_sigma_pm", "column_crlb_pm",
@@ -361,14 +362,12 @@ def region_corners_px(region_px: dict) -> np.ndarray | None:
     try:
         cx, cy = float(region_px["x_px"]), float(region_px["y_px"])
         w, h = float(region_px["width_px"]), float(region_px["height_px"])
-        ang = math.radians(float(region_px.get("angle_deg", 0.0) or 0.0))
+        ang = float(region_px.get("angle_deg", 0.0) or 0.0)
     except (KeyError, TypeError, ValueError, AttributeError):
         return None
     if not all(math.isfinite(v) for v in (cx, cy, w, h, ang)):
         return None
-    ux, uy = math.cos(ang), math.sin(ang)
-    corners = [(-w / 2, -h / 2), (w / 2, -h / 2), (w / 2, h / 2), (-w / 2, h / 2)]
-    return np.array([(cx + a * ux - b * uy, cy + a * uy + b * ux) for a, b in corners])
+    return rect_corners(cx, cy, w, h, ang)
 
 
 def region_corners_nm(meta: dict, shape, region_px: dict) -> np.ndarray | None:
@@ -386,14 +385,12 @@ def stage_region_corners_nm(region: dict) -> np.ndarray | None:
     try:
         cx, cy = float(region["center_x_nm"]), float(region["center_y_nm"])
         w, h = float(region["width_nm"]), float(region["height_nm"])
-        ang = math.radians(float(region.get("rotation_deg", 0.0) or 0.0))
+        ang = float(region.get("rotation_deg", 0.0) or 0.0)
     except (KeyError, TypeError, ValueError, AttributeError):
         return None
     if not all(math.isfinite(v) for v in (cx, cy, w, h, ang)):
         return None
-    ux, uy = math.cos(ang), math.sin(ang)
-    corners = [(-w / 2, -h / 2), (w / 2, -h / 2), (w / 2, h / 2), (-w / 2, h / 2)]
-    return np.array([(cx + a * ux - b * uy, cy + a * uy + b * ux) for a, b in corners])
+    return rect_corners(cx, cy, w, h, ang)
 
 
 # ------------------------------------------------------------ fit bound

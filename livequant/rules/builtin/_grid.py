@@ -64,3 +64,12 @@ def _nanmedian(a) -> float:
     a = np.asarray(a, float)
     a = a[np.isfinite(a)]
     return float(np.median(a)) if a.size else float("nan")
+
+
+def check_descriptor_names(names, key: str) -> None:
+    """Raise ``ValueError`` naming `key` when `names` holds a column cells.csv does not have."""
+    from livequant.analysis.cells import VALUE_FIELDS
+
+    unknown = [d for d in names if d not in VALUE_FIELDS]
+    if unknown:
+        raise ValueError(f"`{key}`: unknown {', '.join(unknown)}; use names of cells.csv columns")

@@ -49,7 +49,7 @@ import numpy as np
 from scipy import ndimage
 
 from livequant.config import AnomalyRuleSettings
-from livequant.rules.builtin._grid import CellGrid
+from livequant.rules.builtin._grid import CellGrid, check_descriptor_names
 from livequant.rules.hookspecs import hookimpl
 from livequant.rules.types import Flag, Region
 
@@ -65,11 +65,7 @@ class AnomalyRule:
     @hookimpl
     def livequant_configure(self, config):
         self.cfg = config.rules.anomalies
-        from livequant.analysis.cells import VALUE_FIELDS
-        unknown = [d for d in self.cfg.descriptors if d not in VALUE_FIELDS]
-        if unknown:
-            raise ValueError(f"`rules.anomalies.descriptors`: unknown {', '.join(unknown)}; "
-                             "use names of cells.csv columns")
+        check_descriptor_names(self.cfg.descriptors, "rules.anomalies.descriptors")
 
     @hookimpl
     def livequant_frame_rules(self, view, context):

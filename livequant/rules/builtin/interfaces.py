@@ -47,7 +47,7 @@ import warnings
 import numpy as np
 
 from livequant.config import InterfaceRuleSettings
-from livequant.rules.builtin._grid import CellGrid
+from livequant.rules.builtin._grid import CellGrid, check_descriptor_names
 from livequant.rules.hookspecs import hookimpl
 from livequant.rules.manager import MAD_TO_SIGMA
 from livequant.rules.types import Flag, Region
@@ -123,11 +123,7 @@ class InterfaceRule:
     @hookimpl
     def livequant_configure(self, config):
         self.cfg = config.rules.interfaces
-        from livequant.analysis.cells import VALUE_FIELDS
-        unknown = [d for d in self.cfg.descriptors if d not in VALUE_FIELDS]
-        if unknown:
-            raise ValueError(f"`rules.interfaces.descriptors`: unknown {', '.join(unknown)}; "
-                             "use names of cells.csv columns")
+        check_descriptor_names(self.cfg.descriptors, "rules.interfaces.descriptors")
 
     @hookimpl
     def livequant_frame_rules(self, view):
