@@ -1,17 +1,24 @@
-"""Compiled inner sums of the batched column fit.
+"""Compiled per-column work of the batched column fit.
 
-The Levenberg-Marquardt iteration itself (damping, acceptance, convergence)
-is array code over all columns in ``refine.py``.  What is compiled here is the
-one expensive step of every iteration: for each active column, one pass over
-its window pixels that evaluates the model and accumulates the Poisson
-weighted cost, ``J^T W J`` and ``J^T W r``.  Written with numpy operations
-that step makes a dozen full passes over ``(K, P)`` arrays and a batched
-``(7 x P)(P x 7)`` product per column; fused, it reads each pixel once.
-Columns are independent, so they are spread over the cores (``prange``).
+``refine.py`` decides what to fit (windows, starting values, neighbour
+passes) with array code over all columns; what is compiled here is the work
+done *inside* one column, spread over the cores with ``prange`` (columns are
+independent, so results do not depend on the thread count):
 
-numba is a dependency for this reason only: the same sums in numpy ran at a
-fifth of the speed (measured by ``livequant bench``), and nothing we would
-write by hand in C is easier to keep right than these twenty lines.
+* ``window_starts``: the starting background, amplitude and width moment of
+  every window, read straight from the image;
+* ``fit_columns``: the whole Levenberg-Marquardt loop of every column.  Each
+  iteration costs one pass over the window pixels, which evaluates the model
+  at the trial point and accumulates, in one go, the trial's cost under the
+  current weights (to accept or reject the step) and the Poisson weights,
+  cost, ``J^T W J`` and ``J^T W r`` at the trial point (what the next
+  iteration needs when the step is accepted, as it nearly always is);
+* ``render_gaussians`` and ``window_others``: the neighbours' Gaussians
+  inside each window for the neighbour passes.
+
+Windows are read from the image by offset, never copied into ``(K, P)``
+arrays.  numba is a dependency for this reason only: the same loop in numpy
+ran at a fifth of the speed with many times the memory (``livequant bench``).
 """
 
 from __future__ import annotations
@@ -21,11 +28,11 @@ import math
 import numpy as np
 from numba import njit, prange
 
-__all__ = ["normal_equations", "weighted_cost", "render_gaussians"]
+__all__ = ["fit_columns", "window_starts", "render_gaussians", "window_others"]
 
 
 @njit(cache=True, inline="always")
-def _unpack(t, centre, elliptical):
+def _unpack(t, centre_r, centre_c, elliptical):
     """Amplitude, shape (p, q, s; round: q = 0, s = p) and the centre's offset
     from its window centre, for one column's parameters `t`."""
     if elliptical:
@@ -34,7 +41,7 @@ def _unpack(t, centre, elliptical):
     else:
         q = 0.0
         s = t[4]
-    return t[2], t[4], q, s, t[0] - centre[0], t[1] - centre[1]
+    return t[2], t[4], q, s, t[0] - centre_r, t[1] - centre_c
 
 
 @njit(cache=True, inline="always")
@@ -56,238 +63,436 @@ def _next_gaussian(row, prev_row, dr, dc, p, q, s, decay, G, step):
     return G, step, prev_row
 
 
-@njit(cache=True, parallel=True)
-def normal_equations(theta, centres, off_r, off_c, data, valid, others, idx, gain, floor,
-                     uniform, elliptical, weights_out, model_out, H, g, cost):
-    """For columns ``idx``: weights, model, cost, ``J^T W J`` and ``J^T W r``.
+# Reductions may be reordered (and so vectorised); nothing else is relaxed.
+_FASTMATH = {"reassoc", "contract"}
 
-    Writes ``weights_out[k]`` and ``model_out[k]`` (per pixel) and ``H[j]``,
-    ``g[j]``, ``cost[j]`` for ``k = idx[j]``.  Weights are ``1 / (gain *
-    max(model + others, floor))`` (Poisson) or 1 (`uniform`), zero outside
-    the frame.  The 28 sums of the symmetric 7 x 7 matrix are kept in scalar
-    accumulators (written out below rather than in a loop) so they stay in
-    registers; the round model uses the first five parameters only.
+
+@njit(cache=True, fastmath=_FASTMATH)
+def _dot(a, b, n):
+    acc = 0.0
+    for i in range(n):
+        acc += a[i] * b[i]
+    return acc
+
+
+@njit(cache=True, fastmath=_FASTMATH)
+def _total(a, n):
+    acc = 0.0
+    for i in range(n):
+        acc += a[i]
+    return acc
+
+
+@njit(cache=True, fastmath=_FASTMATH)
+def _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, floor, w_old,
+                 w_new, Gs, J, WJ, H, g):
+    """One pass over a window at parameters `t`.
+
+    `d` is the window's data minus the neighbours' model `o`, `vm` 1 for a
+    pixel inside the frame and 0 outside.  Returns ``(cost under w_old, cost
+    under the new weights)`` and writes the new weights ``vm / (gain *
+    max(model + o, floor))`` (Poisson) or `vm` (uniform) into `w_new`, and
+    ``J^T W J`` and ``J^T W r`` into `H` and `g`.
+
+    Three loops: the Gaussian by its row recurrence (serial but two
+    multiplications a pixel), then everything else per pixel, independent and
+    so vectorised (the Jacobian rows go to `J`, weighted to `WJ`), then the
+    28 products of the symmetric matrix as dot products over the window.
+    Written as one scalar loop with 35 accumulators the same sums ran at a
+    third of the speed (registers spill).
 
     Jacobian of ``m = B + A exp(-(p dr^2 + 2 q dr dc + s dc^2) / 2)`` for
     ``(mu_r, mu_c, A, B, p, q, s)``: ``A G (p dr + q dc)``, ``A G (q dr + s dc)``,
     ``G``, ``1``, ``-A G dr^2 / 2``, ``-A G dr dc``, ``-A G dc^2 / 2`` (round:
     ``q = 0``, ``s = p`` and ``-A G (dr^2 + dc^2) / 2`` for ``p``).
     """
-    n_par = theta.shape[1]
+    n_par = t.shape[0]
     n_pix = off_r.shape[0]
-    for j in prange(idx.shape[0]):
-        k = idx[j]
-        t = theta[k]
-        B = t[3]
-        A, p, q, s, d_r, d_c = _unpack(t, centres[k], elliptical)
-        h00 = 0.0
-        h01 = 0.0
-        h02 = 0.0
-        h03 = 0.0
-        h04 = 0.0
-        h05 = 0.0
-        h06 = 0.0
-        h11 = 0.0
-        h12 = 0.0
-        h13 = 0.0
-        h14 = 0.0
-        h15 = 0.0
-        h16 = 0.0
-        h22 = 0.0
-        h23 = 0.0
-        h24 = 0.0
-        h25 = 0.0
-        h26 = 0.0
-        h33 = 0.0
-        h34 = 0.0
-        h35 = 0.0
-        h36 = 0.0
-        h44 = 0.0
-        h45 = 0.0
-        h46 = 0.0
-        h55 = 0.0
-        h56 = 0.0
-        h66 = 0.0
-        g0 = 0.0
-        g1 = 0.0
-        g2 = 0.0
-        g3 = 0.0
-        g4 = 0.0
-        g5 = 0.0
-        g6 = 0.0
-        ck = 0.0
-        decay = math.exp(-s)
-        prev_row = 1e300
-        G = 0.0
-        step = 0.0
-        for i in range(n_pix):
-            dr = off_r[i] - d_r
-            dc = off_c[i] - d_c
-            G, step, prev_row = _next_gaussian(off_r[i], prev_row, dr, dc, p, q, s, decay, G,
-                                               step)
-            if not valid[k, i]:
-                weights_out[k, i] = 0.0
-                model_out[k, i] = 0.0
-                continue
-            AG = A * G
-            m = B + AG
-            if uniform:
-                w = 1.0
-            else:
-                w = 1.0 / (gain * max(m + others[k, i], floor))
-            r = data[k, i] - others[k, i] - m
-            weights_out[k, i] = w
-            model_out[k, i] = m
-            ck += w * r * r
-            j0 = AG * (p * dr + q * dc)
-            j1 = AG * (q * dr + s * dc)
-            j2 = G
-            j3 = 1.0
-            if elliptical:
-                j4 = -0.5 * AG * dr * dr
-                j5 = -AG * dr * dc
-                j6 = -0.5 * AG * dc * dc
-            else:
-                j4 = -0.5 * AG * (dr * dr + dc * dc)
-                j5 = 0.0
-                j6 = 0.0
-            w0 = w * j0
-            w1 = w * j1
-            w2 = w * j2
-            w3 = w * j3
-            w4 = w * j4
-            w5 = w * j5
-            w6 = w * j6
-            wr = w * r
-            g0 += wr * j0
-            g1 += wr * j1
-            g2 += wr * j2
-            g3 += wr * j3
+    B = t[3]
+    A, p, q, s, d_r, d_c = _unpack(t, cr, cc, elliptical)
+    decay = math.exp(-s)
+    prev_row = 1e300
+    G = 0.0
+    step = 0.0
+    for i in range(n_pix):
+        G, step, prev_row = _next_gaussian(off_r[i], prev_row, off_r[i] - d_r, off_c[i] - d_c,
+                                           p, q, s, decay, G, step)
+        Gs[i] = G
+    c_old = 0.0
+    c_new = 0.0
+    g0 = 0.0
+    g1 = 0.0
+    g2 = 0.0
+    g3 = 0.0
+    g4 = 0.0
+    g5 = 0.0
+    g6 = 0.0
+    for i in range(n_pix):
+        dr = off_r[i] - d_r
+        dc = off_c[i] - d_c
+        G = Gs[i]
+        AG = A * G
+        m = B + AG
+        r = d[i] - m
+        c_old += w_old[i] * r * r
+        if uniform:
+            w = vm[i]
+        else:
+            w = vm[i] / (gain * max(m + o[i], floor))
+        w_new[i] = w
+        wr = w * r
+        c_new += wr * r
+        j0 = AG * (p * dr + q * dc)
+        j1 = AG * (q * dr + s * dc)
+        J[0, i] = j0
+        J[1, i] = j1
+        J[2, i] = G
+        WJ[0, i] = w * j0
+        WJ[1, i] = w * j1
+        WJ[2, i] = w * G
+        WJ[3, i] = w
+        g0 += wr * j0
+        g1 += wr * j1
+        g2 += wr * G
+        g3 += wr
+        if elliptical:
+            j4 = -0.5 * AG * dr * dr
+            j5 = -AG * dr * dc
+            j6 = -0.5 * AG * dc * dc
+            J[4, i] = j4
+            J[5, i] = j5
+            J[6, i] = j6
+            WJ[4, i] = w * j4
+            WJ[5, i] = w * j5
+            WJ[6, i] = w * j6
             g4 += wr * j4
             g5 += wr * j5
             g6 += wr * j6
-            h00 += w0 * j0
-            h01 += w0 * j1
-            h02 += w0 * j2
-            h03 += w0 * j3
-            h04 += w0 * j4
-            h05 += w0 * j5
-            h06 += w0 * j6
-            h11 += w1 * j1
-            h12 += w1 * j2
-            h13 += w1 * j3
-            h14 += w1 * j4
-            h15 += w1 * j5
-            h16 += w1 * j6
-            h22 += w2 * j2
-            h23 += w2 * j3
-            h24 += w2 * j4
-            h25 += w2 * j5
-            h26 += w2 * j6
-            h33 += w3 * j3
-            h34 += w3 * j4
-            h35 += w3 * j5
-            h36 += w3 * j6
-            h44 += w4 * j4
-            h45 += w4 * j5
-            h46 += w4 * j6
-            h55 += w5 * j5
-            h56 += w5 * j6
-            h66 += w6 * j6
-        Hk = np.zeros((7, 7))
-        Hk[0, 0] = h00
-        Hk[0, 1] = h01
-        Hk[1, 0] = h01
-        Hk[0, 2] = h02
-        Hk[2, 0] = h02
-        Hk[0, 3] = h03
-        Hk[3, 0] = h03
-        Hk[0, 4] = h04
-        Hk[4, 0] = h04
-        Hk[0, 5] = h05
-        Hk[5, 0] = h05
-        Hk[0, 6] = h06
-        Hk[6, 0] = h06
-        Hk[1, 1] = h11
-        Hk[1, 2] = h12
-        Hk[2, 1] = h12
-        Hk[1, 3] = h13
-        Hk[3, 1] = h13
-        Hk[1, 4] = h14
-        Hk[4, 1] = h14
-        Hk[1, 5] = h15
-        Hk[5, 1] = h15
-        Hk[1, 6] = h16
-        Hk[6, 1] = h16
-        Hk[2, 2] = h22
-        Hk[2, 3] = h23
-        Hk[3, 2] = h23
-        Hk[2, 4] = h24
-        Hk[4, 2] = h24
-        Hk[2, 5] = h25
-        Hk[5, 2] = h25
-        Hk[2, 6] = h26
-        Hk[6, 2] = h26
-        Hk[3, 3] = h33
-        Hk[3, 4] = h34
-        Hk[4, 3] = h34
-        Hk[3, 5] = h35
-        Hk[5, 3] = h35
-        Hk[3, 6] = h36
-        Hk[6, 3] = h36
-        Hk[4, 4] = h44
-        Hk[4, 5] = h45
-        Hk[5, 4] = h45
-        Hk[4, 6] = h46
-        Hk[6, 4] = h46
-        Hk[5, 5] = h55
-        Hk[5, 6] = h56
-        Hk[6, 5] = h56
-        Hk[6, 6] = h66
-        gk = np.array([g0, g1, g2, g3, g4, g5, g6])
-        for a in range(n_par):
-            g[j, a] = gk[a]
-            for b in range(n_par):
-                H[j, a, b] = Hk[a, b]
-        cost[j] = ck
-
-
-@njit(cache=True, parallel=True)
-def weighted_cost(theta, centres, off_r, off_c, data, others, idx, weights, elliptical, cost):
-    """Cost of parameters `theta` for columns `idx` with given per-pixel weights."""
-    n_pix = off_r.shape[0]
-    for j in prange(idx.shape[0]):
-        k = idx[j]
-        t = theta[k]
-        A, p, q, s, d_r, d_c = _unpack(t, centres[k], elliptical)
-        ck = 0.0
-        decay = math.exp(-s)
-        prev_row = 1e300
-        G = 0.0
-        step = 0.0
-        for i in range(n_pix):
-            dr = off_r[i] - d_r
-            dc = off_c[i] - d_c
-            G, step, prev_row = _next_gaussian(off_r[i], prev_row, dr, dc, p, q, s, decay, G,
-                                               step)
-            w = weights[k, i]
-            if w == 0.0:
-                continue
-            m = t[3] + A * G
-            r = data[k, i] - others[k, i] - m
-            ck += w * r * r
-        cost[j] = ck
+        else:
+            j4 = -0.5 * AG * (dr * dr + dc * dc)
+            J[4, i] = j4
+            WJ[4, i] = w * j4
+            g4 += wr * j4
+    g[0] = g0
+    g[1] = g1
+    g[2] = g2
+    g[3] = g3
+    g[4] = g4
+    if n_par == 7:
+        g[5] = g5
+        g[6] = g6
+    for a in range(n_par):
+        for b in range(a, n_par):
+            if b == 3:  # the background's Jacobian row is 1
+                v = _total(WJ[a], n_pix)
+            else:
+                v = _dot(WJ[a], J[b], n_pix)
+            H[a, b] = v
+            H[b, a] = v
+    return c_old, c_new
 
 
 @njit(cache=True)
-def render_gaussians(theta, centres, off_r, off_c, shape_r, shape_c, elliptical, out):
-    """Add every column's Gaussian ``A G`` (no background) into image `out`.
+def _damped_step(H, g, lam, M, step):
+    """Solve ``(H + lam diag(H)) step = g`` by Gaussian elimination with partial
+    pivoting (the ``n x n`` systems are tiny; a library call per column would
+    cost more than the arithmetic).  Returns False, with a zero step, when the
+    matrix is singular."""
+    n = g.shape[0]
+    for a in range(n):
+        for b in range(n):
+            M[a, b] = H[a, b]
+        M[a, a] += lam * max(H[a, a], 1e-12)
+        step[a] = g[a]
+    for c in range(n):
+        piv = c
+        big = abs(M[c, c])
+        for a in range(c + 1, n):
+            if abs(M[a, c]) > big:
+                big = abs(M[a, c])
+                piv = a
+        if not big > 0.0 or not math.isfinite(big):
+            step[:] = 0.0
+            return False
+        if piv != c:
+            for b in range(n):
+                tmp = M[c, b]
+                M[c, b] = M[piv, b]
+                M[piv, b] = tmp
+            tmp = step[c]
+            step[c] = step[piv]
+            step[piv] = tmp
+        for a in range(c + 1, n):
+            f = M[a, c] / M[c, c]
+            if f != 0.0:
+                for b in range(c, n):
+                    M[a, b] -= f * M[c, b]
+                step[a] -= f * step[c]
+    for a in range(n - 1, -1, -1):
+        acc = step[a]
+        for b in range(a + 1, n):
+            acc -= M[a, b] * step[b]
+        step[a] = acc / M[a, a]
+    for a in range(n):
+        if not math.isfinite(step[a]):
+            step[:] = 0.0
+            return False
+    return True
 
-    Serial on purpose: windows overlap, so parallel adds would race.
+
+@njit(cache=True)
+def physical(t, start_r, start_c, radius, sign0, elliptical):
+    """Is `t` a column?  Finite, amplitude of the starting sign, a positive
+    definite shape narrower than the window but wider than a tenth of a pixel,
+    centre within half a window radius of the start."""
+    for a in range(t.shape[0]):
+        if not math.isfinite(t[a]):
+            return False
+    amp_sign = 1.0 if t[2] > 0 else (-1.0 if t[2] < 0 else 0.0)
+    if amp_sign != sign0 or not t[4] > 0:
+        return False
+    if elliptical:
+        det = t[4] * t[6] - t[5] * t[5]
+        if not (t[6] > 0 and det > 0):
+            return False
+        tr = t[4] + t[6]
+        lam_min = tr / 2 - math.sqrt(max(tr * tr / 4 - det, 0.0))
+    else:
+        lam_min = t[4]
+    # a Gaussian wider than the fit window is background, not a column
+    if not lam_min > 1.0 / (radius * radius):
+        return False
+    if not math.hypot(t[0] - start_r, t[1] - start_c) < 0.5 * radius:
+        return False
+    # widths narrower than a tenth of a pixel are not columns
+    return t[4] < 100.0
+
+
+@njit(cache=True)
+def _invert(H, out):
+    """Inverse of a small matrix by Gauss-Jordan elimination with partial
+    pivoting; False (and NaN) when it is singular."""
+    n = H.shape[0]
+    M = np.empty((n, 2 * n))
+    for a in range(n):
+        for b in range(n):
+            M[a, b] = H[a, b]
+            M[a, n + b] = 1.0 if a == b else 0.0
+    for c in range(n):
+        piv = c
+        big = abs(M[c, c])
+        for a in range(c + 1, n):
+            if abs(M[a, c]) > big:
+                big = abs(M[a, c])
+                piv = a
+        if not big > 0.0 or not math.isfinite(big):
+            out[:, :] = np.nan
+            return False
+        if piv != c:
+            for b in range(2 * n):
+                tmp = M[c, b]
+                M[c, b] = M[piv, b]
+                M[piv, b] = tmp
+        f = 1.0 / M[c, c]
+        for b in range(2 * n):
+            M[c, b] *= f
+        for a in range(n):
+            if a != c and M[a, c] != 0.0:
+                f = M[a, c]
+                for b in range(2 * n):
+                    M[a, b] -= f * M[c, b]
+    for a in range(n):
+        for b in range(n):
+            out[a, b] = M[a, n + b]
+            if not math.isfinite(out[a, b]):
+                out[:, :] = np.nan
+                return False
+    return True
+
+
+@njit(cache=True, parallel=True)
+def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_others, radius,
+                gain, floor, uniform, elliptical, max_iterations, tolerance_px,
+                theta_out, cov_out, converged, iterations, cost_out, n_valid):
+    """Levenberg-Marquardt (Fisher scoring with Poisson weights) for columns `idx`.
+
+    Column ``k = idx[j]`` starts at ``theta[k]`` in the window at integer
+    ``centres[k]`` with pixel offsets ``(off_r, off_c)`` (row by row);
+    ``others[j]`` (when `has_others`) is the neighbours' model in its window.
+    Writes, at index `j`, the final parameters, the inverse of ``J^T W J``
+    there (the covariance before any chi-square scaling; NaN unless
+    converged), the converged flag, the iteration count, the weighted cost
+    (chi-square) and the number of pixels inside the frame.
+
+    Each iteration solves one damped weighted least-squares problem with the
+    weights of the current point (IRLS) and judges the trial by its cost under
+    those same weights; the same pass already computes everything the next
+    iteration needs at the trial.  Converged: a step that moves the centre
+    less than `tolerance_px` (taken without a further pass: it is far below
+    the uncertainty; the matrix is the one of the point before it), or a
+    rejected step whose full size would already be that small.  A column
+    whose damping runs away stops, unconverged.
     """
+    n_par = theta.shape[1]
+    n_pix = off_r.shape[0]
+    h_img, w_img = image.shape
+    for j in prange(idx.shape[0]):
+        k = idx[j]
+        cr = centres[k, 0]
+        cc = centres[k, 1]
+        t = theta[k].copy()
+        sign0 = 1.0 if t[2] >= 0 else -1.0
+        if t[2] == 0.0:
+            t[2] = sign0
+        # the window, read once: data minus neighbours, neighbours, inside-frame mask
+        scratch = np.zeros((6 + 2 * n_par, n_pix))
+        d = scratch[0]
+        o = scratch[1]
+        vm = scratch[2]
+        w_cur = scratch[3]
+        w_try = scratch[4]
+        Gs = scratch[5]
+        J = scratch[6:6 + n_par]
+        WJ = scratch[6 + n_par:]
+        nv = 0
+        for i in range(n_pix):
+            row = cr + int(off_r[i])
+            col = cc + int(off_c[i])
+            if row < 0 or row >= h_img or col < 0 or col >= w_img:
+                continue
+            nv += 1
+            vm[i] = 1.0
+            if has_others:
+                o[i] = others[j, i]
+            d[i] = image[row, col] - o[i]
+        H = np.empty((n_par, n_par))
+        g = np.empty(n_par)
+        H_try = np.empty((n_par, n_par))
+        g_try = np.empty(n_par)
+        M = np.empty((n_par, n_par))
+        step = np.empty(n_par)
+        trial = np.empty(n_par)
+        _, cost = _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain,
+                               floor, w_try, w_cur, Gs, J, WJ, H, g)
+        lam = 1e-3
+        done = False
+        it = 0
+        for _ in range(max_iterations):
+            _damped_step(H, g, lam, M, step)
+            for a in range(n_par):
+                trial[a] = t[a] + step[a]
+            it += 1
+            moved = math.hypot(step[0], step[1])
+            ok = physical(trial, start[k, 0], start[k, 1], radius, sign0, elliptical)
+            if ok and moved < tolerance_px:
+                t[:] = trial
+                done = True
+                break
+            better = False
+            if ok:
+                c_trial, c_next = _window_pass(d, o, vm, off_r, off_c, trial, cr, cc, elliptical,
+                                               uniform, gain, floor, w_cur, w_try, Gs, J, WJ,
+                                               H_try, g_try)
+                better = math.isfinite(c_trial) and c_trial <= cost
+            if better:
+                t[:] = trial
+                H, H_try = H_try, H
+                g, g_try = g_try, g
+                w_cur, w_try = w_try, w_cur
+                cost = c_next
+                lam = max(lam / 3.0, 1e-7)
+            else:
+                lam = lam * 5.0
+                if moved * (1.0 + lam) < tolerance_px:
+                    done = True
+                    break
+                if lam > 1e8:
+                    break
+        theta_out[j] = t
+        done = done and physical(t, start[k, 0], start[k, 1], radius, sign0, elliptical)
+        if done:
+            done = _invert(H, cov_out[j])
+        else:
+            cov_out[j] = np.nan
+        converged[j] = done
+        iterations[j] = it
+        cost_out[j] = cost
+        n_valid[j] = nv
+
+
+@njit(cache=True, parallel=True)
+def window_starts(image, centres, start, off_r, off_c, radius, fallback, background, peak,
+                  variance):
+    """Per window: background (lower quartile of the outer ring, robust to a
+    neighbour's tail; pixels outside the frame never count, `fallback` if none
+    is inside), peak (mean of the pixels within 1 px of the centre) and the
+    second moment of the background-subtracted window about the start,
+    ``sum w |r - start|^2 / (2 sum w)`` (NaN when nothing is above background).
+    """
+    h_img, w_img = image.shape
+    n_pix = off_r.shape[0]
+    outer_r2 = (0.7 * radius) ** 2
+    n_outer = 0
+    for i in range(n_pix):
+        if off_r[i] * off_r[i] + off_c[i] * off_c[i] > outer_r2:
+            n_outer += 1
+    kth = max(0, n_outer // 4)
+    for k in prange(centres.shape[0]):
+        cr = centres[k, 0]
+        cc = centres[k, 1]
+        ring = np.empty(n_outer)
+        n_ring = 0
+        c_sum = 0.0
+        c_n = 0
+        for i in range(n_pix):
+            row = cr + int(off_r[i])
+            col = cc + int(off_c[i])
+            if row < 0 or row >= h_img or col < 0 or col >= w_img:
+                continue
+            v = image[row, col]
+            r2 = off_r[i] * off_r[i] + off_c[i] * off_c[i]
+            if r2 > outer_r2:
+                ring[n_ring] = v
+                n_ring += 1
+            if r2 <= 1.0:
+                c_sum += v
+                c_n += 1
+        if kth < n_ring:
+            B0 = np.partition(ring[:n_ring], kth)[kth]
+        else:
+            B0 = fallback
+        background[k] = B0
+        peak[k] = c_sum / max(c_n, 1)
+        sgn = peak[k] - B0
+        sgn = 1.0 if sgn > 0 else (-1.0 if sgn < 0 else 0.0)
+        sub_r = start[k, 0] - cr
+        sub_c = start[k, 1] - cc
+        s_w = 0.0
+        s_wr2 = 0.0
+        for i in range(n_pix):
+            row = cr + int(off_r[i])
+            col = cc + int(off_c[i])
+            if row < 0 or row >= h_img or col < 0 or col >= w_img:
+                continue
+            wgt = max((image[row, col] - B0) * sgn, 0.0)
+            dr = off_r[i] - sub_r
+            dc = off_c[i] - sub_c
+            s_w += wgt
+            s_wr2 += wgt * (dr * dr + dc * dc)
+        variance[k] = s_wr2 / (2.0 * s_w) if s_w > 0 else np.nan
+
+
+@njit(cache=True)
+def render_gaussians(theta, centres, off_r, off_c, elliptical, out):
+    """Add every column's Gaussian ``A G`` (no background) into image `out`
+    over the footprint ``(off_r, off_c)`` around its integer centre.
+
+    Serial on purpose: footprints overlap, so parallel adds would race.
+    """
+    shape_r, shape_c = out.shape
     for k in range(theta.shape[0]):
         t = theta[k]
-        A, p, q, s, d_r, d_c = _unpack(t, centres[k], elliptical)
+        A, p, q, s, d_r, d_c = _unpack(t, centres[k, 0], centres[k, 1], elliptical)
         decay = math.exp(-s)
         prev_row = 1e300
         G = 0.0
@@ -297,8 +502,43 @@ def render_gaussians(theta, centres, off_r, off_c, shape_r, shape_c, elliptical,
             dc = off_c[i] - d_c
             G, step, prev_row = _next_gaussian(off_r[i], prev_row, dr, dc, p, q, s, decay, G,
                                                step)
-            row = centres[k, 0] + off_r[i]
-            col = centres[k, 1] + off_c[i]
+            row = centres[k, 0] + int(off_r[i])
+            col = centres[k, 1] + int(off_c[i])
             if row < 0 or row >= shape_r or col < 0 or col >= shape_c:
                 continue
-            out[int(row), int(col)] += A * G
+            out[row, col] += A * G
+
+
+@njit(cache=True, parallel=True)
+def window_others(total, image, theta, centres, off_r, off_c, idx, elliptical, gain, out,
+                  touched):
+    """The neighbours' model in the windows of columns `idx`: the rendered
+    `total` minus the column's own Gaussian (zero outside the frame), written
+    to ``out[j]`` when `out` has a row per column; and whether it exceeds a
+    tenth of the local noise ``sqrt(gain max(|data|, 1))`` anywhere."""
+    h_img, w_img = total.shape
+    write = out.shape[0] == idx.shape[0]
+    for j in prange(idx.shape[0]):
+        k = idx[j]
+        t = theta[k]
+        A, p, q, s, d_r, d_c = _unpack(t, centres[k, 0], centres[k, 1], elliptical)
+        decay = math.exp(-s)
+        prev_row = 1e300
+        G = 0.0
+        step = 0.0
+        hit = False
+        for i in range(off_r.shape[0]):
+            dr = off_r[i] - d_r
+            dc = off_c[i] - d_c
+            G, step, prev_row = _next_gaussian(off_r[i], prev_row, dr, dc, p, q, s, decay, G,
+                                               step)
+            row = centres[k, 0] + int(off_r[i])
+            col = centres[k, 1] + int(off_c[i])
+            o = 0.0
+            if row >= 0 and row < h_img and col >= 0 and col < w_img:
+                o = total[row, col] - A * G
+                if abs(o) > 0.1 * math.sqrt(max(abs(image[row, col]), 1.0) * gain):
+                    hit = True
+            if write:
+                out[j, i] = o
+        touched[j] = hit
