@@ -63,29 +63,14 @@ def _next_gaussian(row, prev_row, dr, dc, p, q, s, decay, G, step):
     return G, step, prev_row
 
 
-# Reductions may be reordered (and so vectorised); nothing else is relaxed.
+# Sums may be reordered (and so vectorised) and multiply-adds fused; nothing
+# else is relaxed (no assumptions about NaN, infinities or signed zeros).
 _FASTMATH = {"reassoc", "contract"}
 
 
-@njit(cache=True, fastmath=_FASTMATH)
-def _dot(a, b, n):
-    acc = 0.0
-    for i in range(n):
-        acc += a[i] * b[i]
-    return acc
-
-
-@njit(cache=True, fastmath=_FASTMATH)
-def _total(a, n):
-    acc = 0.0
-    for i in range(n):
-        acc += a[i]
-    return acc
-
-
-@njit(cache=True, fastmath=_FASTMATH)
+@njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
 def _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, floor, w_old,
-                 w_new, Gs, J, WJ, H, g):
+                 w_new, Gs, H, g):
     """One pass over a window at parameters `t`.
 
     `d` is the window's data minus the neighbours' model `o`, `vm` 1 for a
@@ -94,12 +79,14 @@ def _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, f
     max(model + o, floor))`` (Poisson) or `vm` (uniform) into `w_new`, and
     ``J^T W J`` and ``J^T W r`` into `H` and `g`.
 
-    Three loops: the Gaussian by its row recurrence (serial but two
-    multiplications a pixel), then everything else per pixel, independent and
-    so vectorised (the Jacobian rows go to `J`, weighted to `WJ`), then the
-    28 products of the symmetric matrix as dot products over the window.
-    Written as one scalar loop with 35 accumulators the same sums ran at a
-    third of the speed (registers spill).
+    Two loops: the Gaussian by its row recurrence (serial, two
+    multiplications a pixel) into `Gs`, then everything else, independent
+    per pixel and so vectorised by the compiler: the 28 sums of the symmetric
+    7 x 7 matrix and the 7 of the gradient are written out as scalar
+    accumulators, which become vector registers.  (Two things had kept that
+    loop scalar: the recurrence inside it, and numba's Python error model,
+    whose division-by-zero check blocks vectorisation; the weights' floor
+    keeps every divisor positive.)  The round model uses five parameters.
 
     Jacobian of ``m = B + A exp(-(p dr^2 + 2 q dr dc + s dc^2) / 2)`` for
     ``(mu_r, mu_c, A, B, p, q, s)``: ``A G (p dr + q dc)``, ``A G (q dr + s dc)``,
@@ -118,8 +105,34 @@ def _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, f
         G, step, prev_row = _next_gaussian(off_r[i], prev_row, off_r[i] - d_r, off_c[i] - d_c,
                                            p, q, s, decay, G, step)
         Gs[i] = G
-    c_old = 0.0
-    c_new = 0.0
+    h00 = 0.0
+    h01 = 0.0
+    h02 = 0.0
+    h03 = 0.0
+    h04 = 0.0
+    h05 = 0.0
+    h06 = 0.0
+    h11 = 0.0
+    h12 = 0.0
+    h13 = 0.0
+    h14 = 0.0
+    h15 = 0.0
+    h16 = 0.0
+    h22 = 0.0
+    h23 = 0.0
+    h24 = 0.0
+    h25 = 0.0
+    h26 = 0.0
+    h33 = 0.0
+    h34 = 0.0
+    h35 = 0.0
+    h36 = 0.0
+    h44 = 0.0
+    h45 = 0.0
+    h46 = 0.0
+    h55 = 0.0
+    h56 = 0.0
+    h66 = 0.0
     g0 = 0.0
     g1 = 0.0
     g2 = 0.0
@@ -127,6 +140,8 @@ def _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, f
     g4 = 0.0
     g5 = 0.0
     g6 = 0.0
+    c_old = 0.0
+    c_new = 0.0
     for i in range(n_pix):
         dr = off_r[i] - d_r
         dc = off_c[i] - d_c
@@ -144,51 +159,95 @@ def _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, f
         c_new += wr * r
         j0 = AG * (p * dr + q * dc)
         j1 = AG * (q * dr + s * dc)
-        J[0, i] = j0
-        J[1, i] = j1
-        J[2, i] = G
-        WJ[0, i] = w * j0
-        WJ[1, i] = w * j1
-        WJ[2, i] = w * G
-        WJ[3, i] = w
-        g0 += wr * j0
-        g1 += wr * j1
-        g2 += wr * G
-        g3 += wr
+        j2 = G
         if elliptical:
             j4 = -0.5 * AG * dr * dr
             j5 = -AG * dr * dc
             j6 = -0.5 * AG * dc * dc
-            J[4, i] = j4
-            J[5, i] = j5
-            J[6, i] = j6
-            WJ[4, i] = w * j4
-            WJ[5, i] = w * j5
-            WJ[6, i] = w * j6
-            g4 += wr * j4
-            g5 += wr * j5
-            g6 += wr * j6
         else:
             j4 = -0.5 * AG * (dr * dr + dc * dc)
-            J[4, i] = j4
-            WJ[4, i] = w * j4
-            g4 += wr * j4
+            j5 = 0.0
+            j6 = 0.0
+        w0 = w * j0
+        w1 = w * j1
+        w2 = w * j2
+        w4 = w * j4
+        w5 = w * j5
+        w6 = w * j6
+        g0 += wr * j0
+        g1 += wr * j1
+        g2 += wr * j2
+        g3 += wr
+        g4 += wr * j4
+        g5 += wr * j5
+        g6 += wr * j6
+        h00 += w0 * j0
+        h01 += w0 * j1
+        h02 += w0 * j2
+        h03 += w0
+        h04 += w0 * j4
+        h05 += w0 * j5
+        h06 += w0 * j6
+        h11 += w1 * j1
+        h12 += w1 * j2
+        h13 += w1
+        h14 += w1 * j4
+        h15 += w1 * j5
+        h16 += w1 * j6
+        h22 += w2 * j2
+        h23 += w2
+        h24 += w2 * j4
+        h25 += w2 * j5
+        h26 += w2 * j6
+        h33 += w
+        h34 += w4
+        h35 += w5
+        h36 += w6
+        h44 += w4 * j4
+        h45 += w4 * j5
+        h46 += w4 * j6
+        h55 += w5 * j5
+        h56 += w5 * j6
+        h66 += w6 * j6
+    H[0, 0] = h00
+    H[0, 1] = h01
+    H[0, 2] = h02
+    H[0, 3] = h03
+    H[0, 4] = h04
+    H[1, 1] = h11
+    H[1, 2] = h12
+    H[1, 3] = h13
+    H[1, 4] = h14
+    H[2, 2] = h22
+    H[2, 3] = h23
+    H[2, 4] = h24
+    H[3, 3] = h33
+    H[3, 4] = h34
+    H[4, 4] = h44
     g[0] = g0
     g[1] = g1
     g[2] = g2
     g[3] = g3
     g[4] = g4
     if n_par == 7:
+        H[0, 5] = h05
+        H[0, 6] = h06
+        H[1, 5] = h15
+        H[1, 6] = h16
+        H[2, 5] = h25
+        H[2, 6] = h26
+        H[3, 5] = h35
+        H[3, 6] = h36
+        H[4, 5] = h45
+        H[4, 6] = h46
+        H[5, 5] = h55
+        H[5, 6] = h56
+        H[6, 6] = h66
         g[5] = g5
         g[6] = g6
     for a in range(n_par):
-        for b in range(a, n_par):
-            if b == 3:  # the background's Jacobian row is 1
-                v = _total(WJ[a], n_pix)
-            else:
-                v = _dot(WJ[a], J[b], n_pix)
-            H[a, b] = v
-            H[b, a] = v
+        for b in range(a):
+            H[a, b] = H[b, a]
     return c_old, c_new
 
 
@@ -310,7 +369,7 @@ def _invert(H, out):
     return True
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=True, error_model="numpy")
 def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_others, radius,
                 gain, floor, uniform, elliptical, max_iterations, tolerance_px,
                 theta_out, cov_out, converged, iterations, cost_out, n_valid):
@@ -345,15 +404,13 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
         if t[2] == 0.0:
             t[2] = sign0
         # the window, read once: data minus neighbours, neighbours, inside-frame mask
-        scratch = np.zeros((6 + 2 * n_par, n_pix))
+        scratch = np.zeros((6, n_pix))
         d = scratch[0]
         o = scratch[1]
         vm = scratch[2]
         w_cur = scratch[3]
         w_try = scratch[4]
         Gs = scratch[5]
-        J = scratch[6:6 + n_par]
-        WJ = scratch[6 + n_par:]
         nv = 0
         for i in range(n_pix):
             row = cr + int(off_r[i])
@@ -373,7 +430,7 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
         step = np.empty(n_par)
         trial = np.empty(n_par)
         _, cost = _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain,
-                               floor, w_try, w_cur, Gs, J, WJ, H, g)
+                               floor, w_try, w_cur, Gs, H, g)
         lam = 1e-3
         done = False
         it = 0
@@ -391,8 +448,8 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
             better = False
             if ok:
                 c_trial, c_next = _window_pass(d, o, vm, off_r, off_c, trial, cr, cc, elliptical,
-                                               uniform, gain, floor, w_cur, w_try, Gs, J, WJ,
-                                               H_try, g_try)
+                                               uniform, gain, floor, w_cur, w_try, Gs, H_try,
+                                               g_try)
                 better = math.isfinite(c_trial) and c_trial <= cost
             if better:
                 t[:] = trial
@@ -420,7 +477,44 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
         n_valid[j] = nv
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True)
+def _select(a, n, kth):
+    """The `kth` smallest of ``a[:n]`` (reorders them): quickselect with a
+    median-of-three pivot.  numba's ``np.partition`` copies and cost more than
+    the rest of `window_starts` together."""
+    lo = 0
+    hi = n - 1
+    while hi > lo:
+        mid = (lo + hi) // 2
+        # median of three to a[mid], then Hoare partition around it
+        if a[mid] < a[lo]:
+            a[mid], a[lo] = a[lo], a[mid]
+        if a[hi] < a[lo]:
+            a[hi], a[lo] = a[lo], a[hi]
+        if a[hi] < a[mid]:
+            a[hi], a[mid] = a[mid], a[hi]
+        pivot = a[mid]
+        i = lo
+        j = hi
+        while i <= j:
+            while a[i] < pivot:
+                i += 1
+            while a[j] > pivot:
+                j -= 1
+            if i <= j:
+                a[i], a[j] = a[j], a[i]
+                i += 1
+                j -= 1
+        if kth <= j:
+            hi = j
+        elif kth >= i:
+            lo = i
+        else:
+            return a[kth]
+    return a[kth]
+
+
+@njit(cache=True, parallel=True, fastmath=_FASTMATH, error_model="numpy")
 def window_starts(image, centres, start, off_r, off_c, radius, fallback, background, peak,
                   variance):
     """Per window: background (lower quartile of the outer ring, robust to a
@@ -431,38 +525,35 @@ def window_starts(image, centres, start, off_r, off_c, radius, fallback, backgro
     """
     h_img, w_img = image.shape
     n_pix = off_r.shape[0]
-    outer_r2 = (0.7 * radius) ** 2
-    n_outer = 0
-    for i in range(n_pix):
-        if off_r[i] * off_r[i] + off_c[i] * off_c[i] > outer_r2:
-            n_outer += 1
-    kth = max(0, n_outer // 4)
+    r2 = off_r * off_r + off_c * off_c
+    outer = np.nonzero(r2 > (0.7 * radius) ** 2)[0]
+    centre = np.nonzero(r2 <= 1.0)[0]
+    kth = max(0, outer.shape[0] // 4)
     for k in prange(centres.shape[0]):
         cr = centres[k, 0]
         cc = centres[k, 1]
-        ring = np.empty(n_outer)
-        n_ring = 0
-        c_sum = 0.0
-        c_n = 0
+        vals = np.zeros(n_pix)
+        vm = np.zeros(n_pix)
+        ring = np.empty(outer.shape[0])
         for i in range(n_pix):
             row = cr + int(off_r[i])
             col = cc + int(off_c[i])
-            if row < 0 or row >= h_img or col < 0 or col >= w_img:
-                continue
-            v = image[row, col]
-            r2 = off_r[i] * off_r[i] + off_c[i] * off_c[i]
-            if r2 > outer_r2:
-                ring[n_ring] = v
+            if row >= 0 and row < h_img and col >= 0 and col < w_img:
+                vals[i] = image[row, col]
+                vm[i] = 1.0
+        n_ring = 0
+        for i in outer:
+            if vm[i] > 0:
+                ring[n_ring] = vals[i]
                 n_ring += 1
-            if r2 <= 1.0:
-                c_sum += v
-                c_n += 1
-        if kth < n_ring:
-            B0 = np.partition(ring[:n_ring], kth)[kth]
-        else:
-            B0 = fallback
+        B0 = _select(ring, n_ring, kth) if kth < n_ring else fallback
         background[k] = B0
-        peak[k] = c_sum / max(c_n, 1)
+        c_sum = 0.0
+        c_n = 0.0
+        for i in centre:
+            c_sum += vals[i] * vm[i]
+            c_n += vm[i]
+        peak[k] = c_sum / max(c_n, 1.0)
         sgn = peak[k] - B0
         sgn = 1.0 if sgn > 0 else (-1.0 if sgn < 0 else 0.0)
         sub_r = start[k, 0] - cr
@@ -470,11 +561,7 @@ def window_starts(image, centres, start, off_r, off_c, radius, fallback, backgro
         s_w = 0.0
         s_wr2 = 0.0
         for i in range(n_pix):
-            row = cr + int(off_r[i])
-            col = cc + int(off_c[i])
-            if row < 0 or row >= h_img or col < 0 or col >= w_img:
-                continue
-            wgt = max((image[row, col] - B0) * sgn, 0.0)
+            wgt = max((vals[i] - B0) * sgn, 0.0) * vm[i]
             dr = off_r[i] - sub_r
             dc = off_c[i] - sub_c
             s_w += wgt
