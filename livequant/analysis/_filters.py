@@ -8,10 +8,15 @@ the edge handled as scipy's ``mode="nearest"`` (the edge pixel repeated).
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from numba import njit, prange
 
-__all__ = ["gaussian_nearest", "local_maxima", "block_minimum", "gaussian_weights"]
+from livequant.analysis._kernels import _select
+
+__all__ = ["gaussian_nearest", "local_maxima", "block_minimum", "gaussian_weights",
+           "band_quantiles"]
 
 
 def gaussian_weights(sigma, truncate=4.0) -> np.ndarray:
@@ -143,3 +148,27 @@ def block_minimum(image, factor) -> np.ndarray:
     out = np.empty((-(-h // factor), -(-w // factor)))
     _block_minimum(a, int(factor), out)
     return out
+
+
+@njit(cache=True, parallel=True)
+def band_quantiles(values, lo, hi, q, out):
+    """``out[k] = np.quantile(values[lo[k]:hi[k]], q)`` (numpy's default linear
+    method, its interpolation formula included); 0 for an empty band."""
+    for k in prange(lo.shape[0]):
+        n = hi[k] - lo[k]
+        if n <= 0:
+            out[k] = 0.0
+            continue
+        a = values[lo[k]:hi[k]].copy()
+        pos = q * (n - 1)
+        i = int(math.floor(pos))
+        t = pos - i
+        v0 = _select(a, n, i)
+        v1 = v0
+        if i + 1 < n:
+            v1 = a[i + 1]
+            for m in range(i + 2, n):
+                if a[m] < v1:
+                    v1 = a[m]
+        d = v1 - v0
+        out[k] = v1 - d * (1.0 - t) if t >= 0.5 else v0 + d * t
