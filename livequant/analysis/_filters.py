@@ -15,8 +15,16 @@ from numba import njit, prange
 
 from livequant.analysis._kernels import _select
 
-__all__ = ["gaussian_nearest", "local_maxima", "block_minimum", "gaussian_weights",
+__all__ = ["compute_threads", "gaussian_nearest", "local_maxima", "block_minimum", "gaussian_weights",
            "band_quantiles"]
+
+
+def compute_threads() -> int:
+    """The number of threads the compiled kernels use in this thread (numba's
+    setting, see ``livequant.pipeline.limit_threads``); FFTs use the same."""
+    import numba
+
+    return int(numba.get_num_threads())
 
 
 def gaussian_weights(sigma, truncate=4.0) -> np.ndarray:

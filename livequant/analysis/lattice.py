@@ -98,7 +98,7 @@ def _central_crop(image, size):
 def _power_spectrum(crop):
     h, w = crop.shape
     win, kr, kc = _spectrum_layout(h, w)
-    f = sfft.fft2((crop - crop.mean()) * win, workers=-1)
+    f = sfft.fft2((crop - crop.mean()) * win, workers=_filters.compute_threads())
     power = sfft.fftshift(np.abs(f) ** 2)
     return power, kr, kc
 
