@@ -63,6 +63,9 @@ def _next_gaussian(row, prev_row, dr, dc, p, q, s, decay, G, step):
     return G, step, prev_row
 
 
+#: Columns per scratch allocation in `fit_columns` (and per task of its loop).
+_COLUMNS_PER_CHUNK = 32
+
 # Sums may be reordered (and so vectorised) and multiply-adds fused; nothing
 # else is relaxed (no assumptions about NaN, infinities or signed zeros).
 _FASTMATH = {"reassoc", "contract"}
@@ -394,87 +397,110 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
     """
     n_par = theta.shape[1]
     n_pix = off_r.shape[0]
+    n = idx.shape[0]
+    n_chunks = (n + _COLUMNS_PER_CHUNK - 1) // _COLUMNS_PER_CHUNK
+    for c in prange(n_chunks):
+        # scratch for a run of columns: allocating it per column cost as much
+        # as a pixel pass
+        pix = np.empty((6, n_pix))
+        mats = np.empty((3, n_par, n_par))
+        vecs = np.empty((4, n_par))
+        for j in range(c * _COLUMNS_PER_CHUNK, min((c + 1) * _COLUMNS_PER_CHUNK, n)):
+            _fit_one(image, centres, off_r, off_c, idx[j], j, theta, start, others, has_others,
+                     radius, gain, floor, uniform, elliptical, max_iterations, tolerance_px,
+                     pix, mats, vecs, theta_out, cov_out, converged, iterations, cost_out,
+                     n_valid)
+
+
+@njit(cache=True, error_model="numpy")
+def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_others, radius,
+             gain, floor, uniform, elliptical, max_iterations, tolerance_px, pix, mats, vecs,
+             theta_out, cov_out, converged, iterations, cost_out, n_valid):
+    """`fit_columns` for column ``k = idx[j]``, with scratch arrays `pix`, `mats`, `vecs`."""
+    n_par = theta.shape[1]
+    n_pix = off_r.shape[0]
     h_img, w_img = image.shape
-    for j in prange(idx.shape[0]):
-        k = idx[j]
-        cr = centres[k, 0]
-        cc = centres[k, 1]
-        t = theta[k].copy()
-        sign0 = 1.0 if t[2] >= 0 else -1.0
-        if t[2] == 0.0:
-            t[2] = sign0
-        # the window, read once: data minus neighbours, neighbours, inside-frame mask
-        scratch = np.zeros((6, n_pix))
-        d = scratch[0]
-        o = scratch[1]
-        vm = scratch[2]
-        w_cur = scratch[3]
-        w_try = scratch[4]
-        Gs = scratch[5]
-        nv = 0
-        for i in range(n_pix):
-            row = cr + int(off_r[i])
-            col = cc + int(off_c[i])
-            if row < 0 or row >= h_img or col < 0 or col >= w_img:
-                continue
-            nv += 1
-            vm[i] = 1.0
-            if has_others:
-                o[i] = others[j, i]
-            d[i] = image[row, col] - o[i]
-        H = np.empty((n_par, n_par))
-        g = np.empty(n_par)
-        H_try = np.empty((n_par, n_par))
-        g_try = np.empty(n_par)
-        M = np.empty((n_par, n_par))
-        step = np.empty(n_par)
-        trial = np.empty(n_par)
-        _, cost = _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain,
-                               floor, w_try, w_cur, Gs, H, g)
-        lam = 1e-3
-        done = False
-        it = 0
-        for _ in range(max_iterations):
-            _damped_step(H, g, lam, M, step)
-            for a in range(n_par):
-                trial[a] = t[a] + step[a]
-            it += 1
-            moved = math.hypot(step[0], step[1])
-            ok = physical(trial, start[k, 0], start[k, 1], radius, sign0, elliptical)
-            if ok and moved < tolerance_px:
-                t[:] = trial
+    cr = centres[k, 0]
+    cc = centres[k, 1]
+    t = theta[k].copy()
+    sign0 = 1.0 if t[2] >= 0 else -1.0
+    if t[2] == 0.0:
+        t[2] = sign0
+    # the window, read once: data minus neighbours, neighbours, inside-frame mask
+    d = pix[0]
+    o = pix[1]
+    vm = pix[2]
+    w_cur = pix[3]
+    w_try = pix[4]
+    Gs = pix[5]
+    nv = 0
+    for i in range(n_pix):
+        row = cr + int(off_r[i])
+        col = cc + int(off_c[i])
+        d[i] = 0.0
+        o[i] = 0.0
+        vm[i] = 0.0
+        w_try[i] = 0.0
+        if row < 0 or row >= h_img or col < 0 or col >= w_img:
+            continue
+        nv += 1
+        vm[i] = 1.0
+        if has_others:
+            o[i] = others[j, i]
+        d[i] = image[row, col] - o[i]
+    H = mats[0]
+    H_try = mats[1]
+    M = mats[2]
+    g = vecs[0]
+    g_try = vecs[1]
+    step = vecs[2]
+    trial = vecs[3]
+    _, cost = _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain,
+                           floor, w_try, w_cur, Gs, H, g)
+    lam = 1e-3
+    done = False
+    it = 0
+    for _ in range(max_iterations):
+        _damped_step(H, g, lam, M, step)
+        for a in range(n_par):
+            trial[a] = t[a] + step[a]
+        it += 1
+        moved = math.hypot(step[0], step[1])
+        ok = physical(trial, start[k, 0], start[k, 1], radius, sign0, elliptical)
+        if ok and moved < tolerance_px:
+            t[:] = trial
+            done = True
+            break
+        better = False
+        if ok:
+            c_trial, c_next = _window_pass(d, o, vm, off_r, off_c, trial, cr, cc, elliptical,
+                                           uniform, gain, floor, w_cur, w_try, Gs, H_try,
+                                           g_try)
+            better = math.isfinite(c_trial) and c_trial <= cost
+        if better:
+            t[:] = trial
+            H, H_try = H_try, H
+            g, g_try = g_try, g
+            w_cur, w_try = w_try, w_cur
+            cost = c_next
+            lam = max(lam / 3.0, 1e-7)
+        else:
+            lam = lam * 5.0
+            if moved * (1.0 + lam) < tolerance_px:
                 done = True
                 break
-            better = False
-            if ok:
-                c_trial, c_next = _window_pass(d, o, vm, off_r, off_c, trial, cr, cc, elliptical,
-                                               uniform, gain, floor, w_cur, w_try, Gs, H_try,
-                                               g_try)
-                better = math.isfinite(c_trial) and c_trial <= cost
-            if better:
-                t[:] = trial
-                H, H_try = H_try, H
-                g, g_try = g_try, g
-                w_cur, w_try = w_try, w_cur
-                cost = c_next
-                lam = max(lam / 3.0, 1e-7)
-            else:
-                lam = lam * 5.0
-                if moved * (1.0 + lam) < tolerance_px:
-                    done = True
-                    break
-                if lam > 1e8:
-                    break
-        theta_out[j] = t
-        done = done and physical(t, start[k, 0], start[k, 1], radius, sign0, elliptical)
-        if done:
-            done = _invert(H, cov_out[j])
-        else:
-            cov_out[j] = np.nan
-        converged[j] = done
-        iterations[j] = it
-        cost_out[j] = cost
-        n_valid[j] = nv
+            if lam > 1e8:
+                break
+    theta_out[j] = t
+    done = done and physical(t, start[k, 0], start[k, 1], radius, sign0, elliptical)
+    if done:
+        done = _invert(H, cov_out[j])
+    else:
+        cov_out[j] = np.nan
+    converged[j] = done
+    iterations[j] = it
+    cost_out[j] = cost
+    n_valid[j] = nv
 
 
 @njit(cache=True)
@@ -529,44 +555,49 @@ def window_starts(image, centres, start, off_r, off_c, radius, fallback, backgro
     outer = np.nonzero(r2 > (0.7 * radius) ** 2)[0]
     centre = np.nonzero(r2 <= 1.0)[0]
     kth = max(0, outer.shape[0] // 4)
-    for k in prange(centres.shape[0]):
-        cr = centres[k, 0]
-        cc = centres[k, 1]
-        vals = np.zeros(n_pix)
-        vm = np.zeros(n_pix)
+    n = centres.shape[0]
+    n_chunks = (n + _COLUMNS_PER_CHUNK - 1) // _COLUMNS_PER_CHUNK
+    for chunk in prange(n_chunks):
+        vals = np.empty(n_pix)
+        vm = np.empty(n_pix)
         ring = np.empty(outer.shape[0])
-        for i in range(n_pix):
-            row = cr + int(off_r[i])
-            col = cc + int(off_c[i])
-            if row >= 0 and row < h_img and col >= 0 and col < w_img:
-                vals[i] = image[row, col]
-                vm[i] = 1.0
-        n_ring = 0
-        for i in outer:
-            if vm[i] > 0:
-                ring[n_ring] = vals[i]
-                n_ring += 1
-        B0 = _select(ring, n_ring, kth) if kth < n_ring else fallback
-        background[k] = B0
-        c_sum = 0.0
-        c_n = 0.0
-        for i in centre:
-            c_sum += vals[i] * vm[i]
-            c_n += vm[i]
-        peak[k] = c_sum / max(c_n, 1.0)
-        sgn = peak[k] - B0
-        sgn = 1.0 if sgn > 0 else (-1.0 if sgn < 0 else 0.0)
-        sub_r = start[k, 0] - cr
-        sub_c = start[k, 1] - cc
-        s_w = 0.0
-        s_wr2 = 0.0
-        for i in range(n_pix):
-            wgt = max((vals[i] - B0) * sgn, 0.0) * vm[i]
-            dr = off_r[i] - sub_r
-            dc = off_c[i] - sub_c
-            s_w += wgt
-            s_wr2 += wgt * (dr * dr + dc * dc)
-        variance[k] = s_wr2 / (2.0 * s_w) if s_w > 0 else np.nan
+        for k in range(chunk * _COLUMNS_PER_CHUNK, min((chunk + 1) * _COLUMNS_PER_CHUNK, n)):
+            cr = centres[k, 0]
+            cc = centres[k, 1]
+            for i in range(n_pix):
+                row = cr + int(off_r[i])
+                col = cc + int(off_c[i])
+                vals[i] = 0.0
+                vm[i] = 0.0
+                if row >= 0 and row < h_img and col >= 0 and col < w_img:
+                    vals[i] = image[row, col]
+                    vm[i] = 1.0
+            n_ring = 0
+            for i in outer:
+                if vm[i] > 0:
+                    ring[n_ring] = vals[i]
+                    n_ring += 1
+            B0 = _select(ring, n_ring, kth) if kth < n_ring else fallback
+            background[k] = B0
+            c_sum = 0.0
+            c_n = 0.0
+            for i in centre:
+                c_sum += vals[i] * vm[i]
+                c_n += vm[i]
+            peak[k] = c_sum / max(c_n, 1.0)
+            sgn = peak[k] - B0
+            sgn = 1.0 if sgn > 0 else (-1.0 if sgn < 0 else 0.0)
+            sub_r = start[k, 0] - cr
+            sub_c = start[k, 1] - cc
+            s_w = 0.0
+            s_wr2 = 0.0
+            for i in range(n_pix):
+                wgt = max((vals[i] - B0) * sgn, 0.0) * vm[i]
+                dr = off_r[i] - sub_r
+                dc = off_c[i] - sub_c
+                s_w += wgt
+                s_wr2 += wgt * (dr * dr + dc * dc)
+            variance[k] = s_wr2 / (2.0 * s_w) if s_w > 0 else np.nan
 
 
 @njit(cache=True)

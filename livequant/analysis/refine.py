@@ -306,24 +306,40 @@ class _Fitter:
 
 def _neighbours_reach(theta, radius, gain, elliptical):
     """Cheap bound: which columns have a neighbour whose Gaussian exceeds a tenth of
-    the noise inside their window?  (Nearest eight neighbours, widest axis.)"""
+    the noise inside their window?  (Widest axis; only pairs close enough that the
+    brightest, widest column could reach the quietest window are looked at, so a
+    well-separated lattice costs one tree search and no pair.)"""
     from scipy.spatial import cKDTree
 
     n = len(theta)
     pos = theta[:, :2]
-    k = min(9, n)
-    dist, nb = cKDTree(pos).query(pos, k=k)
-    dist, nb = dist[:, 1:], nb[:, 1:]
     p = theta[:, 4]
     if elliptical:
         tr, det = theta[:, 4] + theta[:, 6], theta[:, 4] * theta[:, 6] - theta[:, 5] ** 2
         p = tr / 2 - np.sqrt(np.maximum(tr**2 / 4 - det, 0))
     with np.errstate(divide="ignore", invalid="ignore"):
         sig2 = np.where(p > 0, 1.0 / p, np.inf)
-    gap = np.clip(dist - radius, 0, None)
-    reach = np.abs(theta[nb, 2]) * np.exp(-0.5 * gap**2 / sig2[nb])
+    amp = np.abs(theta[:, 2])
     noise = np.sqrt(np.maximum(np.abs(theta[:, 3]), 1.0) * gain)
-    return (reach > 0.1 * noise[:, None]).any(axis=1)
+    ok = np.isfinite(pos).all(axis=1) & np.isfinite(sig2) & np.isfinite(amp)
+    reach = np.zeros(n, bool)
+    if ok.sum() < 2:
+        return reach
+    # |A| exp(-gap^2 / 2 s^2) > 0.1 noise needs gap < s sqrt(2 ln(10 |A| / noise))
+    ratio = 10.0 * amp[ok].max() / noise.min()
+    cutoff = radius + np.sqrt(sig2[ok].max() * 2.0 * np.log(max(ratio, 1.0)))
+    sel = np.nonzero(ok)[0]
+    pairs = cKDTree(pos[sel]).query_pairs(cutoff, output_type="ndarray")
+    if len(pairs) == 0:
+        return reach
+    i, j = sel[pairs[:, 0]], sel[pairs[:, 1]]
+    gap = np.clip(np.hypot(*(pos[i] - pos[j]).T) - radius, 0, None)
+    # j reaching into i's window, and i into j's
+    reach_i = amp[j] * np.exp(-0.5 * gap**2 / sig2[j]) > 0.1 * noise[i]
+    reach_j = amp[i] * np.exp(-0.5 * gap**2 / sig2[i]) > 0.1 * noise[j]
+    reach[i[reach_i]] = True
+    reach[j[reach_j]] = True
+    return reach
 
 
 def _render_radius(theta, fit_radius, spacing_px, elliptical):
