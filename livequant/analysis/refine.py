@@ -1,9 +1,11 @@
 """Batched refinement of atomic columns: 2D Gaussian plus local background.
 
-Every column is fitted in its own circular window, all columns at once: the
-parameters form a ``(K, P)`` array and each Levenberg-Marquardt iteration is a
-handful of array operations and one batched ``P x P`` solve, never a Python
-loop over columns.
+Every column is fitted in its own circular window, all columns in one call:
+the parameters form a ``(K, P)`` array, and the Levenberg-Marquardt loop of
+each column runs compiled and in parallel over the columns
+(``_kernels.fit_columns``), one pass over the window pixels per iteration;
+never a Python loop over columns.  Windows are read from the image by offset
+(no per-pixel copies of all windows), so memory stays near the frame's size.
 
 Model of column ``k`` at pixel ``r`` (row, col)::
 
