@@ -255,7 +255,52 @@ def _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, f
 
 
 @njit(cache=True)
+def _cholesky(M, n):
+    """In place: the lower Cholesky factor of symmetric `M` (``M = L L^T``) in its
+    lower triangle.  False when `M` is not numerically positive definite."""
+    for c in range(n):
+        acc = M[c, c]
+        for k in range(c):
+            acc -= M[c, k] * M[c, k]
+        if not acc > 0.0 or not math.isfinite(acc):
+            return False
+        d = math.sqrt(acc)
+        M[c, c] = d
+        for a in range(c + 1, n):
+            acc = M[a, c]
+            for k in range(c):
+                acc -= M[a, k] * M[c, k]
+            M[a, c] = acc / d
+    return True
+
+
+@njit(cache=True)
 def _damped_step(H, g, lam, M, step):
+    """Solve ``(H + lam diag(H)) step = g``: by Cholesky (the damped normal
+    matrix is positive definite), or by `_damped_step_lu` when it is not
+    numerically so.  Returns False, with a zero step, when singular."""
+    n = g.shape[0]
+    for a in range(n):
+        for b in range(a + 1):
+            M[a, b] = H[a, b]
+        M[a, a] += lam * max(H[a, a], 1e-12)
+    if not _cholesky(M, n):
+        return _damped_step_lu(H, g, lam, M, step)
+    for a in range(n):  # L y = g
+        acc = g[a]
+        for b in range(a):
+            acc -= M[a, b] * step[b]
+        step[a] = acc / M[a, a]
+    for a in range(n - 1, -1, -1):  # L^T x = y
+        acc = step[a]
+        for b in range(a + 1, n):
+            acc -= M[b, a] * step[b]
+        step[a] = acc / M[a, a]
+    return True
+
+
+@njit(cache=True)
+def _damped_step_lu(H, g, lam, M, step):
     """Solve ``(H + lam diag(H)) step = g`` by Gaussian elimination with partial
     pivoting (the ``n x n`` systems are tiny; a library call per column would
     cost more than the arithmetic).  Returns False, with a zero step, when the
@@ -332,6 +377,40 @@ def physical(t, start_r, start_c, radius, sign0, elliptical):
 
 @njit(cache=True)
 def _invert(H, out):
+    """Inverse of a symmetric positive definite matrix through its Cholesky
+    factor (``H^-1 = L^-T L^-1``), or `_invert_gauss_jordan` when it is not
+    numerically positive definite; False (and NaN) when it is singular."""
+    n = H.shape[0]
+    L = np.empty((n, n))
+    for a in range(n):
+        for b in range(a + 1):
+            L[a, b] = H[a, b]
+    if not _cholesky(L, n):
+        return _invert_gauss_jordan(H, out)
+    # L^-1, lower triangular, into the upper triangle's mirror: Li[a, b] for b <= a
+    Li = np.zeros((n, n))
+    for b in range(n):
+        Li[b, b] = 1.0 / L[b, b]
+        for a in range(b + 1, n):
+            acc = 0.0
+            for k in range(b, a):
+                acc -= L[a, k] * Li[k, b]
+            Li[a, b] = acc / L[a, a]
+    for a in range(n):
+        for b in range(a + 1):
+            acc = 0.0
+            for k in range(a, n):
+                acc += Li[k, a] * Li[k, b]
+            out[a, b] = acc
+            out[b, a] = acc
+            if not math.isfinite(acc):
+                out[:, :] = np.nan
+                return False
+    return True
+
+
+@njit(cache=True)
+def _invert_gauss_jordan(H, out):
     """Inverse of a small matrix by Gauss-Jordan elimination with partial
     pivoting; False (and NaN) when it is singular."""
     n = H.shape[0]

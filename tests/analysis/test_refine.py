@@ -256,3 +256,30 @@ def test_results_do_not_depend_on_the_thread_count():
     many = refine_columns(f.pixels, start, **kwargs)
     for name in ("positions_px", "sigma_positions_px", "amplitude", "reduced_chi2"):
         assert np.array_equal(getattr(one, name), getattr(many, name), equal_nan=True), name
+
+
+def test_small_solvers_match_numpy():
+    """The compiled 7 x 7 solve and inverse of the fit (Cholesky, with pivoted
+    elimination when the matrix is not positive definite) against numpy.linalg."""
+    from livequant.analysis._kernels import _damped_step, _invert
+
+    rng = np.random.default_rng(12)
+    for trial in range(40):
+        n = 7 if trial % 2 else 5
+        X = rng.normal(size=(n, 3 * n)) * rng.uniform(0.1, 100, size=(n, 1))
+        H = X @ X.T
+        if trial % 4 == 3:
+            H[0, 0] = -abs(H[0, 0])     # indefinite: the fallback path
+        g = rng.normal(size=n)
+        lam = 10.0 ** rng.uniform(-7, 2)
+        A = H + np.diag(lam * np.maximum(np.diag(H), 1e-12))
+        step, M = np.empty(n), np.empty((n, n))
+        assert _damped_step(H, g, lam, M, step)
+        assert np.allclose(step, np.linalg.solve(A, g), rtol=1e-8, atol=1e-12 * np.abs(step).max())
+        out = np.empty((n, n))
+        assert _invert(H, out)
+        ref = np.linalg.inv(H)
+        assert np.allclose(out, ref, rtol=1e-7, atol=1e-9 * np.abs(ref).max())
+    singular = np.zeros((7, 7))
+    out = np.empty((7, 7))
+    assert not _invert(singular, out) and np.isnan(out).all()
