@@ -64,3 +64,10 @@ def test_limit_threads_sets_numba_threads():
             limit_threads(0)
     finally:
         numba.set_num_threads(before)
+
+
+def test_bench_reports_cpu_time_ratio(quick_result):
+    r = quick_result["refinement"]
+    # per CPU-second the batched fit cannot gain from threads: it is the per-core ratio
+    assert r["ratio_cpu_time"] > 0
+    assert len(r["load_average"]) == 2
