@@ -24,7 +24,8 @@ from livequant.analysis.types import Columns, Lattice
 from livequant.config import Settings, get_material
 from livequant.frames import Frame, FrameMeta
 
-__all__ = ["FrameResult", "analyze_frame", "STATUS_OK", "STATUS_NO_LATTICE"]
+__all__ = ["FrameResult", "analyze_frame", "STATUS_OK", "STATUS_NO_LATTICE", "limit_threads",
+           "threads_per_worker"]
 
 STATUS_OK = "ok"
 STATUS_NO_LATTICE = "no-lattice"
@@ -159,6 +160,41 @@ def _strain_reference(cells_cfg, shape):
     c0, c1 = max(0, int(np.floor(x0))), min(shape[1], int(np.ceil(x1)))
     mask[r0:r1, c0:c1] = True
     return mask
+
+
+def threads_per_worker(n_workers: int, n_cores: int | None = None) -> int:
+    """Compute threads each of `n_workers` analysis processes should use so that
+    together they do not oversubscribe the cores: ``max(1, cores // workers)``.
+    Cores are the ones this process may run on (its CPU affinity)."""
+    import os
+
+    if n_cores is None:
+        try:
+            n_cores = len(os.sched_getaffinity(0))
+        except AttributeError:  # not on Linux
+            n_cores = os.cpu_count() or 1
+    if n_workers < 1:
+        raise ValueError(f"`n_workers` must be at least 1, got {n_workers}")
+    return max(1, int(n_cores) // int(n_workers))
+
+
+def limit_threads(n_threads: int) -> int:
+    """Use at most `n_threads` compute threads in this process's analysis.
+
+    The compiled kernels (numba) start with one thread per core in *every*
+    process, so N worker processes on N cores would run N x N threads; call this
+    once at the start of each worker (e.g. in the pool initializer) with
+    ``threads_per_worker(n_workers)``.  The Fourier transforms follow the same
+    number.  Returns the number now in effect (capped by numba's maximum,
+    ``NUMBA_NUM_THREADS``).
+    """
+    import numba
+
+    if n_threads < 1:
+        raise ValueError(f"`n_threads` must be at least 1, got {n_threads}")
+    n = min(int(n_threads), int(numba.config.NUMBA_NUM_THREADS))
+    numba.set_num_threads(n)
+    return n
 
 
 def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult:

@@ -1,17 +1,24 @@
-"""Compiled inner sums of the batched column fit.
+"""Compiled per-column work of the batched column fit.
 
-The Levenberg-Marquardt iteration itself (damping, acceptance, convergence)
-is array code over all columns in ``refine.py``.  What is compiled here is the
-one expensive step of every iteration: for each active column, one pass over
-its window pixels that evaluates the model and accumulates the Poisson
-weighted cost, ``J^T W J`` and ``J^T W r``.  Written with numpy operations
-that step makes a dozen full passes over ``(K, P)`` arrays and a batched
-``(7 x P)(P x 7)`` product per column; fused, it reads each pixel once.
-Columns are independent, so they are spread over the cores (``prange``).
+``refine.py`` decides what to fit (windows, starting values, neighbour
+passes) with array code over all columns; what is compiled here is the work
+done *inside* one column, spread over the cores with ``prange`` (columns are
+independent, so results do not depend on the thread count):
 
-numba is a dependency for this reason only: the same sums in numpy ran at a
-fifth of the speed (measured by ``livequant bench``), and nothing we would
-write by hand in C is easier to keep right than these twenty lines.
+* ``window_starts``: the starting background, amplitude and width moment of
+  every window, read straight from the image;
+* ``fit_columns``: the whole Levenberg-Marquardt loop of every column.  Each
+  iteration costs one pass over the window pixels, which evaluates the model
+  at the trial point and accumulates, in one go, the trial's cost under the
+  current weights (to accept or reject the step) and the Poisson weights,
+  cost, ``J^T W J`` and ``J^T W r`` at the trial point (what the next
+  iteration needs when the step is accepted, as it nearly always is);
+* ``render_gaussians`` and ``window_others``: the neighbours' Gaussians
+  inside each window for the neighbour passes.
+
+Windows are read from the image by offset, never copied into ``(K, P)``
+arrays.  numba is a dependency for this reason only: the same loop in numpy
+ran at a fifth of the speed with many times the memory (``livequant bench``).
 """
 
 from __future__ import annotations
@@ -21,11 +28,11 @@ import math
 import numpy as np
 from numba import njit, prange
 
-__all__ = ["normal_equations", "weighted_cost", "render_gaussians"]
+__all__ = ["fit_columns", "window_starts", "render_gaussians", "window_others"]
 
 
 @njit(cache=True, inline="always")
-def _unpack(t, centre, elliptical):
+def _unpack(t, centre_r, centre_c, elliptical):
     """Amplitude, shape (p, q, s; round: q = 0, s = p) and the centre's offset
     from its window centre, for one column's parameters `t`."""
     if elliptical:
@@ -34,7 +41,7 @@ def _unpack(t, centre, elliptical):
     else:
         q = 0.0
         s = t[4]
-    return t[2], t[4], q, s, t[0] - centre[0], t[1] - centre[1]
+    return t[2], t[4], q, s, t[0] - centre_r, t[1] - centre_c
 
 
 @njit(cache=True, inline="always")
@@ -56,238 +63,632 @@ def _next_gaussian(row, prev_row, dr, dc, p, q, s, decay, G, step):
     return G, step, prev_row
 
 
-@njit(cache=True, parallel=True)
-def normal_equations(theta, centres, off_r, off_c, data, valid, others, idx, gain, floor,
-                     uniform, elliptical, weights_out, model_out, H, g, cost):
-    """For columns ``idx``: weights, model, cost, ``J^T W J`` and ``J^T W r``.
+#: Columns per scratch allocation in `fit_columns` (and per task of its loop).
+_COLUMNS_PER_CHUNK = 32
 
-    Writes ``weights_out[k]`` and ``model_out[k]`` (per pixel) and ``H[j]``,
-    ``g[j]``, ``cost[j]`` for ``k = idx[j]``.  Weights are ``1 / (gain *
-    max(model + others, floor))`` (Poisson) or 1 (`uniform`), zero outside
-    the frame.  The 28 sums of the symmetric 7 x 7 matrix are kept in scalar
-    accumulators (written out below rather than in a loop) so they stay in
-    registers; the round model uses the first five parameters only.
+# Sums may be reordered (and so vectorised) and multiply-adds fused; nothing
+# else is relaxed (no assumptions about NaN, infinities or signed zeros).
+_FASTMATH = {"reassoc", "contract"}
+
+
+@njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
+def _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, floor, w_old,
+                 w_new, Gs, H, g):
+    """One pass over a window at parameters `t`.
+
+    `d` is the window's data minus the neighbours' model `o`, `vm` 1 for a
+    pixel inside the frame and 0 outside.  Returns ``(cost under w_old, cost
+    under the new weights)`` and writes the new weights ``vm / (gain *
+    max(model + o, floor))`` (Poisson) or `vm` (uniform) into `w_new`, and
+    ``J^T W J`` and ``J^T W r`` into `H` and `g`.
+
+    Two loops: the Gaussian by its row recurrence (serial, two
+    multiplications a pixel) into `Gs`, then everything else, independent
+    per pixel and so vectorised by the compiler: the 28 sums of the symmetric
+    7 x 7 matrix and the 7 of the gradient are written out as scalar
+    accumulators, which become vector registers.  (Two things had kept that
+    loop scalar: the recurrence inside it, and numba's Python error model,
+    whose division-by-zero check blocks vectorisation; the weights' floor
+    keeps every divisor positive.)  The round model uses five parameters.
 
     Jacobian of ``m = B + A exp(-(p dr^2 + 2 q dr dc + s dc^2) / 2)`` for
     ``(mu_r, mu_c, A, B, p, q, s)``: ``A G (p dr + q dc)``, ``A G (q dr + s dc)``,
     ``G``, ``1``, ``-A G dr^2 / 2``, ``-A G dr dc``, ``-A G dc^2 / 2`` (round:
     ``q = 0``, ``s = p`` and ``-A G (dr^2 + dc^2) / 2`` for ``p``).
     """
-    n_par = theta.shape[1]
+    n_par = t.shape[0]
     n_pix = off_r.shape[0]
-    for j in prange(idx.shape[0]):
-        k = idx[j]
-        t = theta[k]
-        B = t[3]
-        A, p, q, s, d_r, d_c = _unpack(t, centres[k], elliptical)
-        h00 = 0.0
-        h01 = 0.0
-        h02 = 0.0
-        h03 = 0.0
-        h04 = 0.0
-        h05 = 0.0
-        h06 = 0.0
-        h11 = 0.0
-        h12 = 0.0
-        h13 = 0.0
-        h14 = 0.0
-        h15 = 0.0
-        h16 = 0.0
-        h22 = 0.0
-        h23 = 0.0
-        h24 = 0.0
-        h25 = 0.0
-        h26 = 0.0
-        h33 = 0.0
-        h34 = 0.0
-        h35 = 0.0
-        h36 = 0.0
-        h44 = 0.0
-        h45 = 0.0
-        h46 = 0.0
-        h55 = 0.0
-        h56 = 0.0
-        h66 = 0.0
-        g0 = 0.0
-        g1 = 0.0
-        g2 = 0.0
-        g3 = 0.0
-        g4 = 0.0
-        g5 = 0.0
-        g6 = 0.0
-        ck = 0.0
-        decay = math.exp(-s)
-        prev_row = 1e300
-        G = 0.0
-        step = 0.0
-        for i in range(n_pix):
-            dr = off_r[i] - d_r
-            dc = off_c[i] - d_c
-            G, step, prev_row = _next_gaussian(off_r[i], prev_row, dr, dc, p, q, s, decay, G,
-                                               step)
-            if not valid[k, i]:
-                weights_out[k, i] = 0.0
-                model_out[k, i] = 0.0
-                continue
-            AG = A * G
-            m = B + AG
-            if uniform:
-                w = 1.0
-            else:
-                w = 1.0 / (gain * max(m + others[k, i], floor))
-            r = data[k, i] - others[k, i] - m
-            weights_out[k, i] = w
-            model_out[k, i] = m
-            ck += w * r * r
-            j0 = AG * (p * dr + q * dc)
-            j1 = AG * (q * dr + s * dc)
-            j2 = G
-            j3 = 1.0
-            if elliptical:
-                j4 = -0.5 * AG * dr * dr
-                j5 = -AG * dr * dc
-                j6 = -0.5 * AG * dc * dc
-            else:
-                j4 = -0.5 * AG * (dr * dr + dc * dc)
-                j5 = 0.0
-                j6 = 0.0
-            w0 = w * j0
-            w1 = w * j1
-            w2 = w * j2
-            w3 = w * j3
-            w4 = w * j4
-            w5 = w * j5
-            w6 = w * j6
-            wr = w * r
-            g0 += wr * j0
-            g1 += wr * j1
-            g2 += wr * j2
-            g3 += wr * j3
-            g4 += wr * j4
-            g5 += wr * j5
-            g6 += wr * j6
-            h00 += w0 * j0
-            h01 += w0 * j1
-            h02 += w0 * j2
-            h03 += w0 * j3
-            h04 += w0 * j4
-            h05 += w0 * j5
-            h06 += w0 * j6
-            h11 += w1 * j1
-            h12 += w1 * j2
-            h13 += w1 * j3
-            h14 += w1 * j4
-            h15 += w1 * j5
-            h16 += w1 * j6
-            h22 += w2 * j2
-            h23 += w2 * j3
-            h24 += w2 * j4
-            h25 += w2 * j5
-            h26 += w2 * j6
-            h33 += w3 * j3
-            h34 += w3 * j4
-            h35 += w3 * j5
-            h36 += w3 * j6
-            h44 += w4 * j4
-            h45 += w4 * j5
-            h46 += w4 * j6
-            h55 += w5 * j5
-            h56 += w5 * j6
-            h66 += w6 * j6
-        Hk = np.zeros((7, 7))
-        Hk[0, 0] = h00
-        Hk[0, 1] = h01
-        Hk[1, 0] = h01
-        Hk[0, 2] = h02
-        Hk[2, 0] = h02
-        Hk[0, 3] = h03
-        Hk[3, 0] = h03
-        Hk[0, 4] = h04
-        Hk[4, 0] = h04
-        Hk[0, 5] = h05
-        Hk[5, 0] = h05
-        Hk[0, 6] = h06
-        Hk[6, 0] = h06
-        Hk[1, 1] = h11
-        Hk[1, 2] = h12
-        Hk[2, 1] = h12
-        Hk[1, 3] = h13
-        Hk[3, 1] = h13
-        Hk[1, 4] = h14
-        Hk[4, 1] = h14
-        Hk[1, 5] = h15
-        Hk[5, 1] = h15
-        Hk[1, 6] = h16
-        Hk[6, 1] = h16
-        Hk[2, 2] = h22
-        Hk[2, 3] = h23
-        Hk[3, 2] = h23
-        Hk[2, 4] = h24
-        Hk[4, 2] = h24
-        Hk[2, 5] = h25
-        Hk[5, 2] = h25
-        Hk[2, 6] = h26
-        Hk[6, 2] = h26
-        Hk[3, 3] = h33
-        Hk[3, 4] = h34
-        Hk[4, 3] = h34
-        Hk[3, 5] = h35
-        Hk[5, 3] = h35
-        Hk[3, 6] = h36
-        Hk[6, 3] = h36
-        Hk[4, 4] = h44
-        Hk[4, 5] = h45
-        Hk[5, 4] = h45
-        Hk[4, 6] = h46
-        Hk[6, 4] = h46
-        Hk[5, 5] = h55
-        Hk[5, 6] = h56
-        Hk[6, 5] = h56
-        Hk[6, 6] = h66
-        gk = np.array([g0, g1, g2, g3, g4, g5, g6])
-        for a in range(n_par):
-            g[j, a] = gk[a]
-            for b in range(n_par):
-                H[j, a, b] = Hk[a, b]
-        cost[j] = ck
-
-
-@njit(cache=True, parallel=True)
-def weighted_cost(theta, centres, off_r, off_c, data, others, idx, weights, elliptical, cost):
-    """Cost of parameters `theta` for columns `idx` with given per-pixel weights."""
-    n_pix = off_r.shape[0]
-    for j in prange(idx.shape[0]):
-        k = idx[j]
-        t = theta[k]
-        A, p, q, s, d_r, d_c = _unpack(t, centres[k], elliptical)
-        ck = 0.0
-        decay = math.exp(-s)
-        prev_row = 1e300
-        G = 0.0
-        step = 0.0
-        for i in range(n_pix):
-            dr = off_r[i] - d_r
-            dc = off_c[i] - d_c
-            G, step, prev_row = _next_gaussian(off_r[i], prev_row, dr, dc, p, q, s, decay, G,
-                                               step)
-            w = weights[k, i]
-            if w == 0.0:
-                continue
-            m = t[3] + A * G
-            r = data[k, i] - others[k, i] - m
-            ck += w * r * r
-        cost[j] = ck
+    B = t[3]
+    A, p, q, s, d_r, d_c = _unpack(t, cr, cc, elliptical)
+    decay = math.exp(-s)
+    prev_row = 1e300
+    G = 0.0
+    step = 0.0
+    for i in range(n_pix):
+        G, step, prev_row = _next_gaussian(off_r[i], prev_row, off_r[i] - d_r, off_c[i] - d_c,
+                                           p, q, s, decay, G, step)
+        Gs[i] = G
+    h00 = 0.0
+    h01 = 0.0
+    h02 = 0.0
+    h03 = 0.0
+    h04 = 0.0
+    h05 = 0.0
+    h06 = 0.0
+    h11 = 0.0
+    h12 = 0.0
+    h13 = 0.0
+    h14 = 0.0
+    h15 = 0.0
+    h16 = 0.0
+    h22 = 0.0
+    h23 = 0.0
+    h24 = 0.0
+    h25 = 0.0
+    h26 = 0.0
+    h33 = 0.0
+    h34 = 0.0
+    h35 = 0.0
+    h36 = 0.0
+    h44 = 0.0
+    h45 = 0.0
+    h46 = 0.0
+    h55 = 0.0
+    h56 = 0.0
+    h66 = 0.0
+    g0 = 0.0
+    g1 = 0.0
+    g2 = 0.0
+    g3 = 0.0
+    g4 = 0.0
+    g5 = 0.0
+    g6 = 0.0
+    c_old = 0.0
+    c_new = 0.0
+    for i in range(n_pix):
+        dr = off_r[i] - d_r
+        dc = off_c[i] - d_c
+        G = Gs[i]
+        AG = A * G
+        m = B + AG
+        r = d[i] - m
+        c_old += w_old[i] * r * r
+        if uniform:
+            w = vm[i]
+        else:
+            w = vm[i] / (gain * max(m + o[i], floor))
+        w_new[i] = w
+        wr = w * r
+        c_new += wr * r
+        j0 = AG * (p * dr + q * dc)
+        j1 = AG * (q * dr + s * dc)
+        j2 = G
+        if elliptical:
+            j4 = -0.5 * AG * dr * dr
+            j5 = -AG * dr * dc
+            j6 = -0.5 * AG * dc * dc
+        else:
+            j4 = -0.5 * AG * (dr * dr + dc * dc)
+            j5 = 0.0
+            j6 = 0.0
+        w0 = w * j0
+        w1 = w * j1
+        w2 = w * j2
+        w4 = w * j4
+        w5 = w * j5
+        w6 = w * j6
+        g0 += wr * j0
+        g1 += wr * j1
+        g2 += wr * j2
+        g3 += wr
+        g4 += wr * j4
+        g5 += wr * j5
+        g6 += wr * j6
+        h00 += w0 * j0
+        h01 += w0 * j1
+        h02 += w0 * j2
+        h03 += w0
+        h04 += w0 * j4
+        h05 += w0 * j5
+        h06 += w0 * j6
+        h11 += w1 * j1
+        h12 += w1 * j2
+        h13 += w1
+        h14 += w1 * j4
+        h15 += w1 * j5
+        h16 += w1 * j6
+        h22 += w2 * j2
+        h23 += w2
+        h24 += w2 * j4
+        h25 += w2 * j5
+        h26 += w2 * j6
+        h33 += w
+        h34 += w4
+        h35 += w5
+        h36 += w6
+        h44 += w4 * j4
+        h45 += w4 * j5
+        h46 += w4 * j6
+        h55 += w5 * j5
+        h56 += w5 * j6
+        h66 += w6 * j6
+    H[0, 0] = h00
+    H[0, 1] = h01
+    H[0, 2] = h02
+    H[0, 3] = h03
+    H[0, 4] = h04
+    H[1, 1] = h11
+    H[1, 2] = h12
+    H[1, 3] = h13
+    H[1, 4] = h14
+    H[2, 2] = h22
+    H[2, 3] = h23
+    H[2, 4] = h24
+    H[3, 3] = h33
+    H[3, 4] = h34
+    H[4, 4] = h44
+    g[0] = g0
+    g[1] = g1
+    g[2] = g2
+    g[3] = g3
+    g[4] = g4
+    if n_par == 7:
+        H[0, 5] = h05
+        H[0, 6] = h06
+        H[1, 5] = h15
+        H[1, 6] = h16
+        H[2, 5] = h25
+        H[2, 6] = h26
+        H[3, 5] = h35
+        H[3, 6] = h36
+        H[4, 5] = h45
+        H[4, 6] = h46
+        H[5, 5] = h55
+        H[5, 6] = h56
+        H[6, 6] = h66
+        g[5] = g5
+        g[6] = g6
+    for a in range(n_par):
+        for b in range(a):
+            H[a, b] = H[b, a]
+    return c_old, c_new
 
 
 @njit(cache=True)
-def render_gaussians(theta, centres, off_r, off_c, shape_r, shape_c, elliptical, out):
-    """Add every column's Gaussian ``A G`` (no background) into image `out`.
+def _cholesky(M, n):
+    """In place: the lower Cholesky factor of symmetric `M` (``M = L L^T``) in its
+    lower triangle.  False when `M` is not numerically positive definite."""
+    for c in range(n):
+        acc = M[c, c]
+        for k in range(c):
+            acc -= M[c, k] * M[c, k]
+        if not acc > 0.0 or not math.isfinite(acc):
+            return False
+        d = math.sqrt(acc)
+        M[c, c] = d
+        for a in range(c + 1, n):
+            acc = M[a, c]
+            for k in range(c):
+                acc -= M[a, k] * M[c, k]
+            M[a, c] = acc / d
+    return True
 
-    Serial on purpose: windows overlap, so parallel adds would race.
+
+@njit(cache=True)
+def _damped_step(H, g, lam, M, step):
+    """Solve ``(H + lam diag(H)) step = g``: by Cholesky (the damped normal
+    matrix is positive definite), or by `_damped_step_lu` when it is not
+    numerically so.  Returns False, with a zero step, when singular."""
+    n = g.shape[0]
+    for a in range(n):
+        for b in range(a + 1):
+            M[a, b] = H[a, b]
+        M[a, a] += lam * max(H[a, a], 1e-12)
+    if not _cholesky(M, n):
+        return _damped_step_lu(H, g, lam, M, step)
+    for a in range(n):  # L y = g
+        acc = g[a]
+        for b in range(a):
+            acc -= M[a, b] * step[b]
+        step[a] = acc / M[a, a]
+    for a in range(n - 1, -1, -1):  # L^T x = y
+        acc = step[a]
+        for b in range(a + 1, n):
+            acc -= M[b, a] * step[b]
+        step[a] = acc / M[a, a]
+    return True
+
+
+@njit(cache=True)
+def _damped_step_lu(H, g, lam, M, step):
+    """Solve ``(H + lam diag(H)) step = g`` by Gaussian elimination with partial
+    pivoting (the ``n x n`` systems are tiny; a library call per column would
+    cost more than the arithmetic).  Returns False, with a zero step, when the
+    matrix is singular."""
+    n = g.shape[0]
+    for a in range(n):
+        for b in range(n):
+            M[a, b] = H[a, b]
+        M[a, a] += lam * max(H[a, a], 1e-12)
+        step[a] = g[a]
+    for c in range(n):
+        piv = c
+        big = abs(M[c, c])
+        for a in range(c + 1, n):
+            if abs(M[a, c]) > big:
+                big = abs(M[a, c])
+                piv = a
+        if not big > 0.0 or not math.isfinite(big):
+            step[:] = 0.0
+            return False
+        if piv != c:
+            for b in range(n):
+                tmp = M[c, b]
+                M[c, b] = M[piv, b]
+                M[piv, b] = tmp
+            tmp = step[c]
+            step[c] = step[piv]
+            step[piv] = tmp
+        for a in range(c + 1, n):
+            f = M[a, c] / M[c, c]
+            if f != 0.0:
+                for b in range(c, n):
+                    M[a, b] -= f * M[c, b]
+                step[a] -= f * step[c]
+    for a in range(n - 1, -1, -1):
+        acc = step[a]
+        for b in range(a + 1, n):
+            acc -= M[a, b] * step[b]
+        step[a] = acc / M[a, a]
+    for a in range(n):
+        if not math.isfinite(step[a]):
+            step[:] = 0.0
+            return False
+    return True
+
+
+@njit(cache=True)
+def physical(t, start_r, start_c, radius, sign0, elliptical):
+    """Is `t` a column?  Finite, amplitude of the starting sign, a positive
+    definite shape narrower than the window but wider than a tenth of a pixel,
+    centre within half a window radius of the start."""
+    for a in range(t.shape[0]):
+        if not math.isfinite(t[a]):
+            return False
+    amp_sign = 1.0 if t[2] > 0 else (-1.0 if t[2] < 0 else 0.0)
+    if amp_sign != sign0 or not t[4] > 0:
+        return False
+    if elliptical:
+        det = t[4] * t[6] - t[5] * t[5]
+        if not (t[6] > 0 and det > 0):
+            return False
+        tr = t[4] + t[6]
+        lam_min = tr / 2 - math.sqrt(max(tr * tr / 4 - det, 0.0))
+    else:
+        lam_min = t[4]
+    # a Gaussian wider than the fit window is background, not a column
+    if not lam_min > 1.0 / (radius * radius):
+        return False
+    if not math.hypot(t[0] - start_r, t[1] - start_c) < 0.5 * radius:
+        return False
+    # widths narrower than a tenth of a pixel are not columns
+    return t[4] < 100.0
+
+
+@njit(cache=True)
+def _invert(H, out):
+    """Inverse of a symmetric positive definite matrix through its Cholesky
+    factor (``H^-1 = L^-T L^-1``), or `_invert_gauss_jordan` when it is not
+    numerically positive definite; False (and NaN) when it is singular."""
+    n = H.shape[0]
+    L = np.empty((n, n))
+    for a in range(n):
+        for b in range(a + 1):
+            L[a, b] = H[a, b]
+    if not _cholesky(L, n):
+        return _invert_gauss_jordan(H, out)
+    # L^-1, lower triangular, into the upper triangle's mirror: Li[a, b] for b <= a
+    Li = np.zeros((n, n))
+    for b in range(n):
+        Li[b, b] = 1.0 / L[b, b]
+        for a in range(b + 1, n):
+            acc = 0.0
+            for k in range(b, a):
+                acc -= L[a, k] * Li[k, b]
+            Li[a, b] = acc / L[a, a]
+    for a in range(n):
+        for b in range(a + 1):
+            acc = 0.0
+            for k in range(a, n):
+                acc += Li[k, a] * Li[k, b]
+            out[a, b] = acc
+            out[b, a] = acc
+            if not math.isfinite(acc):
+                out[:, :] = np.nan
+                return False
+    return True
+
+
+@njit(cache=True)
+def _invert_gauss_jordan(H, out):
+    """Inverse of a small matrix by Gauss-Jordan elimination with partial
+    pivoting; False (and NaN) when it is singular."""
+    n = H.shape[0]
+    M = np.empty((n, 2 * n))
+    for a in range(n):
+        for b in range(n):
+            M[a, b] = H[a, b]
+            M[a, n + b] = 1.0 if a == b else 0.0
+    for c in range(n):
+        piv = c
+        big = abs(M[c, c])
+        for a in range(c + 1, n):
+            if abs(M[a, c]) > big:
+                big = abs(M[a, c])
+                piv = a
+        if not big > 0.0 or not math.isfinite(big):
+            out[:, :] = np.nan
+            return False
+        if piv != c:
+            for b in range(2 * n):
+                tmp = M[c, b]
+                M[c, b] = M[piv, b]
+                M[piv, b] = tmp
+        f = 1.0 / M[c, c]
+        for b in range(2 * n):
+            M[c, b] *= f
+        for a in range(n):
+            if a != c and M[a, c] != 0.0:
+                f = M[a, c]
+                for b in range(2 * n):
+                    M[a, b] -= f * M[c, b]
+    for a in range(n):
+        for b in range(n):
+            out[a, b] = M[a, n + b]
+            if not math.isfinite(out[a, b]):
+                out[:, :] = np.nan
+                return False
+    return True
+
+
+@njit(cache=True, parallel=True, error_model="numpy")
+def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_others, radius,
+                gain, floor, uniform, elliptical, max_iterations, tolerance_px,
+                theta_out, cov_out, converged, iterations, cost_out, n_valid):
+    """Levenberg-Marquardt (Fisher scoring with Poisson weights) for columns `idx`.
+
+    Column ``k = idx[j]`` starts at ``theta[k]`` in the window at integer
+    ``centres[k]`` with pixel offsets ``(off_r, off_c)`` (row by row);
+    ``others[j]`` (when `has_others`) is the neighbours' model in its window.
+    Writes, at index `j`, the final parameters, the inverse of ``J^T W J``
+    there (the covariance before any chi-square scaling; NaN unless
+    converged), the converged flag, the iteration count, the weighted cost
+    (chi-square) and the number of pixels inside the frame.
+
+    Each iteration solves one damped weighted least-squares problem with the
+    weights of the current point (IRLS) and judges the trial by its cost under
+    those same weights; the same pass already computes everything the next
+    iteration needs at the trial.  Converged: a step that moves the centre
+    less than `tolerance_px` (taken without a further pass: it is far below
+    the uncertainty; the matrix is the one of the point before it), or a
+    rejected step whose full size would already be that small.  A column
+    whose damping runs away stops, unconverged.
     """
+    n_par = theta.shape[1]
+    n_pix = off_r.shape[0]
+    n = idx.shape[0]
+    n_chunks = (n + _COLUMNS_PER_CHUNK - 1) // _COLUMNS_PER_CHUNK
+    for c in prange(n_chunks):
+        # scratch for a run of columns: allocating it per column cost as much
+        # as a pixel pass
+        pix = np.empty((6, n_pix))
+        mats = np.empty((3, n_par, n_par))
+        vecs = np.empty((4, n_par))
+        for j in range(c * _COLUMNS_PER_CHUNK, min((c + 1) * _COLUMNS_PER_CHUNK, n)):
+            _fit_one(image, centres, off_r, off_c, idx[j], j, theta, start, others, has_others,
+                     radius, gain, floor, uniform, elliptical, max_iterations, tolerance_px,
+                     pix, mats, vecs, theta_out, cov_out, converged, iterations, cost_out,
+                     n_valid)
+
+
+@njit(cache=True, error_model="numpy")
+def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_others, radius,
+             gain, floor, uniform, elliptical, max_iterations, tolerance_px, pix, mats, vecs,
+             theta_out, cov_out, converged, iterations, cost_out, n_valid):
+    """`fit_columns` for column ``k = idx[j]``, with scratch arrays `pix`, `mats`, `vecs`."""
+    n_par = theta.shape[1]
+    n_pix = off_r.shape[0]
+    h_img, w_img = image.shape
+    cr = centres[k, 0]
+    cc = centres[k, 1]
+    t = theta[k].copy()
+    sign0 = 1.0 if t[2] >= 0 else -1.0
+    if t[2] == 0.0:
+        t[2] = sign0
+    # the window, read once: data minus neighbours, neighbours, inside-frame mask
+    d = pix[0]
+    o = pix[1]
+    vm = pix[2]
+    w_cur = pix[3]
+    w_try = pix[4]
+    Gs = pix[5]
+    nv = 0
+    for i in range(n_pix):
+        row = cr + int(off_r[i])
+        col = cc + int(off_c[i])
+        d[i] = 0.0
+        o[i] = 0.0
+        vm[i] = 0.0
+        w_try[i] = 0.0
+        if row < 0 or row >= h_img or col < 0 or col >= w_img:
+            continue
+        nv += 1
+        vm[i] = 1.0
+        if has_others:
+            o[i] = others[j, i]
+        d[i] = image[row, col] - o[i]
+    H = mats[0]
+    H_try = mats[1]
+    M = mats[2]
+    g = vecs[0]
+    g_try = vecs[1]
+    step = vecs[2]
+    trial = vecs[3]
+    _, cost = _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain,
+                           floor, w_try, w_cur, Gs, H, g)
+    lam = 1e-3
+    done = False
+    it = 0
+    for _ in range(max_iterations):
+        _damped_step(H, g, lam, M, step)
+        for a in range(n_par):
+            trial[a] = t[a] + step[a]
+        it += 1
+        moved = math.hypot(step[0], step[1])
+        ok = physical(trial, start[k, 0], start[k, 1], radius, sign0, elliptical)
+        if ok and moved < tolerance_px:
+            t[:] = trial
+            done = True
+            break
+        better = False
+        if ok:
+            c_trial, c_next = _window_pass(d, o, vm, off_r, off_c, trial, cr, cc, elliptical,
+                                           uniform, gain, floor, w_cur, w_try, Gs, H_try,
+                                           g_try)
+            better = math.isfinite(c_trial) and c_trial <= cost
+        if better:
+            t[:] = trial
+            H, H_try = H_try, H
+            g, g_try = g_try, g
+            w_cur, w_try = w_try, w_cur
+            cost = c_next
+            lam = max(lam / 3.0, 1e-7)
+        else:
+            lam = lam * 5.0
+            if moved * (1.0 + lam) < tolerance_px:
+                done = True
+                break
+            if lam > 1e8:
+                break
+    theta_out[j] = t
+    done = done and physical(t, start[k, 0], start[k, 1], radius, sign0, elliptical)
+    if done:
+        done = _invert(H, cov_out[j])
+    else:
+        cov_out[j] = np.nan
+    converged[j] = done
+    iterations[j] = it
+    cost_out[j] = cost
+    n_valid[j] = nv
+
+
+@njit(cache=True)
+def _select(a, n, kth):
+    """The `kth` smallest of ``a[:n]`` (reorders them): quickselect with a
+    median-of-three pivot and a branch-free partition (whether an element goes
+    left is added to an index, not branched on: on noisy data a branch is
+    mispredicted half the time).  numba's ``np.partition`` copies and cost more
+    than the rest of `window_starts` together."""
+    lo = 0
+    hi = n - 1
+    while lo < hi:
+        mid = (lo + hi) // 2
+        # median of a[lo], a[mid], a[hi] to a[hi]
+        if a[mid] < a[lo]:
+            a[mid], a[lo] = a[lo], a[mid]
+        if a[hi] < a[lo]:
+            a[hi], a[lo] = a[lo], a[hi]
+        if a[mid] < a[hi]:
+            a[mid], a[hi] = a[hi], a[mid]
+        pivot = a[hi]
+        store = lo
+        for i in range(lo, hi):
+            x = a[i]
+            a[i] = a[store]
+            a[store] = x
+            store += 1 if x < pivot else 0
+        a[hi] = a[store]
+        a[store] = pivot
+        if kth == store:
+            return pivot
+        if kth < store:
+            hi = store - 1
+        else:
+            lo = store + 1
+    return a[kth]
+
+
+@njit(cache=True, parallel=True, fastmath=_FASTMATH, error_model="numpy")
+def window_starts(image, centres, start, off_r, off_c, radius, fallback, background, peak,
+                  variance):
+    """Per window: background (lower quartile of the outer ring, robust to a
+    neighbour's tail; pixels outside the frame never count, `fallback` if none
+    is inside), peak (mean of the pixels within 1 px of the centre) and the
+    second moment of the background-subtracted window about the start,
+    ``sum w |r - start|^2 / (2 sum w)`` (NaN when nothing is above background).
+    """
+    h_img, w_img = image.shape
+    n_pix = off_r.shape[0]
+    r2 = off_r * off_r + off_c * off_c
+    outer = np.nonzero(r2 > (0.7 * radius) ** 2)[0]
+    centre = np.nonzero(r2 <= 1.0)[0]
+    kth = max(0, outer.shape[0] // 4)
+    n = centres.shape[0]
+    n_chunks = (n + _COLUMNS_PER_CHUNK - 1) // _COLUMNS_PER_CHUNK
+    for chunk in prange(n_chunks):
+        vals = np.empty(n_pix)
+        vm = np.empty(n_pix)
+        ring = np.empty(outer.shape[0])
+        for k in range(chunk * _COLUMNS_PER_CHUNK, min((chunk + 1) * _COLUMNS_PER_CHUNK, n)):
+            cr = centres[k, 0]
+            cc = centres[k, 1]
+            for i in range(n_pix):
+                row = cr + int(off_r[i])
+                col = cc + int(off_c[i])
+                vals[i] = 0.0
+                vm[i] = 0.0
+                if row >= 0 and row < h_img and col >= 0 and col < w_img:
+                    vals[i] = image[row, col]
+                    vm[i] = 1.0
+            n_ring = 0
+            for i in outer:
+                if vm[i] > 0:
+                    ring[n_ring] = vals[i]
+                    n_ring += 1
+            B0 = _select(ring, n_ring, kth) if kth < n_ring else fallback
+            background[k] = B0
+            c_sum = 0.0
+            c_n = 0.0
+            for i in centre:
+                c_sum += vals[i] * vm[i]
+                c_n += vm[i]
+            peak[k] = c_sum / max(c_n, 1.0)
+            sgn = peak[k] - B0
+            sgn = 1.0 if sgn > 0 else (-1.0 if sgn < 0 else 0.0)
+            sub_r = start[k, 0] - cr
+            sub_c = start[k, 1] - cc
+            s_w = 0.0
+            s_wr2 = 0.0
+            for i in range(n_pix):
+                wgt = max((vals[i] - B0) * sgn, 0.0) * vm[i]
+                dr = off_r[i] - sub_r
+                dc = off_c[i] - sub_c
+                s_w += wgt
+                s_wr2 += wgt * (dr * dr + dc * dc)
+            variance[k] = s_wr2 / (2.0 * s_w) if s_w > 0 else np.nan
+
+
+@njit(cache=True)
+def render_gaussians(theta, centres, off_r, off_c, elliptical, out):
+    """Add every column's Gaussian ``A G`` (no background) into image `out`
+    over the footprint ``(off_r, off_c)`` around its integer centre.
+
+    Serial on purpose: footprints overlap, so parallel adds would race.
+    """
+    shape_r, shape_c = out.shape
     for k in range(theta.shape[0]):
         t = theta[k]
-        A, p, q, s, d_r, d_c = _unpack(t, centres[k], elliptical)
+        A, p, q, s, d_r, d_c = _unpack(t, centres[k, 0], centres[k, 1], elliptical)
         decay = math.exp(-s)
         prev_row = 1e300
         G = 0.0
@@ -297,8 +698,43 @@ def render_gaussians(theta, centres, off_r, off_c, shape_r, shape_c, elliptical,
             dc = off_c[i] - d_c
             G, step, prev_row = _next_gaussian(off_r[i], prev_row, dr, dc, p, q, s, decay, G,
                                                step)
-            row = centres[k, 0] + off_r[i]
-            col = centres[k, 1] + off_c[i]
+            row = centres[k, 0] + int(off_r[i])
+            col = centres[k, 1] + int(off_c[i])
             if row < 0 or row >= shape_r or col < 0 or col >= shape_c:
                 continue
-            out[int(row), int(col)] += A * G
+            out[row, col] += A * G
+
+
+@njit(cache=True, parallel=True)
+def window_others(total, image, theta, centres, off_r, off_c, idx, elliptical, gain, out,
+                  touched):
+    """The neighbours' model in the windows of columns `idx`: the rendered
+    `total` minus the column's own Gaussian (zero outside the frame), written
+    to ``out[j]`` when `out` has a row per column; and whether it exceeds a
+    tenth of the local noise ``sqrt(gain max(|data|, 1))`` anywhere."""
+    h_img, w_img = total.shape
+    write = out.shape[0] == idx.shape[0]
+    for j in prange(idx.shape[0]):
+        k = idx[j]
+        t = theta[k]
+        A, p, q, s, d_r, d_c = _unpack(t, centres[k, 0], centres[k, 1], elliptical)
+        decay = math.exp(-s)
+        prev_row = 1e300
+        G = 0.0
+        step = 0.0
+        hit = False
+        for i in range(off_r.shape[0]):
+            dr = off_r[i] - d_r
+            dc = off_c[i] - d_c
+            G, step, prev_row = _next_gaussian(off_r[i], prev_row, dr, dc, p, q, s, decay, G,
+                                               step)
+            row = centres[k, 0] + int(off_r[i])
+            col = centres[k, 1] + int(off_c[i])
+            o = 0.0
+            if row >= 0 and row < h_img and col >= 0 and col < w_img:
+                o = total[row, col] - A * G
+                if abs(o) > 0.1 * math.sqrt(max(abs(image[row, col]), 1.0) * gain):
+                    hit = True
+            if write:
+                out[j, i] = o
+        touched[j] = hit

@@ -13,6 +13,7 @@ import numpy as np
 from scipy import ndimage as ndi
 from scipy.spatial import cKDTree
 
+from livequant.analysis import _filters
 from livequant.analysis.types import Lattice, readonly
 
 __all__ = ["Candidates", "detect_columns", "noise_sigma"]
@@ -82,13 +83,13 @@ def detect_columns(image, lattice: Lattice, *, min_distance_fraction=0.3,
     # A Gaussian of a tenth of the spacing is narrower than any column at the
     # sampling we accept, so it removes shot noise without merging columns.
     smoothing = max(0.7, 0.1 * spacing)
-    smooth = ndi.gaussian_filter(work, smoothing, mode="nearest")
+    smooth = _filters.gaussian_nearest(work, smoothing)  # = ndi.gaussian_filter, mode "nearest"
     min_dist = max(1.0, min_distance_fraction * spacing)
     # Local maxima in a small footprint (a tenth of a spacing), then the minimum
     # separation among them.  A footprint as wide as the separation would let the
     # shoulder of a bright column hide a dim neighbour (an O column beside A).
     size = 2 * max(1, int(0.1 * spacing)) + 1
-    is_max = (smooth == ndi.maximum_filter(smooth, size=size, mode="nearest"))
+    is_max = _filters.local_maxima(smooth, size)  # smooth == ndi.maximum_filter(smooth, size)
     # Local background: the minimum within one spacing, smoothed over half a
     # spacing.  It varies on the scale of a cell, so it is computed on a grid
     # coarsened by a quarter spacing and interpolated back (a full-resolution
@@ -116,10 +117,7 @@ def _coarse_background_at(smooth, spacing, rr, cc):
     """The background at pixels (rr, cc) only: interpolating the coarse grid back
     to every pixel of a 2048 frame cost more than everything else in detection."""
     factor = max(1, int(spacing / 4))
-    h, w = smooth.shape
-    hc, wc = -(-h // factor), -(-w // factor)
-    padded = np.pad(smooth, [(0, hc * factor - h), (0, wc * factor - w)], mode="edge")
-    coarse = padded.reshape(hc, factor, wc, factor).min(axis=(1, 3))
+    coarse = _filters.block_minimum(smooth, factor)
     size = max(3, int(round(spacing / factor)))
     coarse = ndi.gaussian_filter(ndi.minimum_filter(coarse, size=size, mode="nearest"),
                                  0.5 * spacing / factor, mode="nearest")
@@ -146,6 +144,15 @@ def _one_per_plateau(rr, cc, height, shape):
         return rr, cc, height
     mask = np.zeros(shape, dtype=bool)
     mask[rr, cc] = True
+    # nearly always every maximum stands alone: then there is nothing to label
+    pr = np.pad(mask, 1)
+    touching = np.zeros(len(rr), bool)
+    for dr in (-1, 0, 1):
+        for dc in (-1, 0, 1):
+            if dr or dc:
+                touching |= pr[rr + 1 + dr, cc + 1 + dc]
+    if not touching.any():
+        return rr, cc, height
     labels, n = ndi.label(mask, structure=np.ones((3, 3)))
     lab = labels[rr, cc]
     _, first = np.unique(lab, return_index=True)

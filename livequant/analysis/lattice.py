@@ -8,10 +8,13 @@ report come from a least-squares fit of the refined A-site positions to
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 from scipy import fft as sfft
 from scipy import ndimage as ndi
 
+from livequant.analysis import _filters
 from livequant.analysis.types import Columns, Lattice, readonly
 
 __all__ = ["NoLatticeError", "find_lattice", "lattice_from_columns", "fractional"]
@@ -99,12 +102,37 @@ def _central_crop(image, size):
 
 def _power_spectrum(crop):
     h, w = crop.shape
-    win = np.outer(np.hanning(h), np.hanning(w))
-    f = sfft.fft2((crop - crop.mean()) * win, workers=-1)
+    win, kr, kc = _spectrum_layout(h, w)
+    f = sfft.fft2((crop - crop.mean()) * win, workers=_filters.compute_threads())
     power = sfft.fftshift(np.abs(f) ** 2)
+    return power, kr, kc
+
+
+@functools.lru_cache(maxsize=4)
+def _spectrum_layout(h, w):
+    """Window and frequency grids of an ``h x w`` crop (the same for every frame
+    of a session, so made once)."""
+    win = np.outer(np.hanning(h), np.hanning(w))
     kr = sfft.fftshift(sfft.fftfreq(h))[:, None] * np.ones((1, w))
     kc = np.ones((h, 1)) * sfft.fftshift(sfft.fftfreq(w))[None, :]
-    return power, kr, kc
+    return readonly(win), readonly(kr), readonly(kc)
+
+
+@functools.lru_cache(maxsize=4)
+def _ring_layout(h, w, half_width):
+    """Frequency rings of an ``h x w`` spectrum: ring index per bin, the bins in
+    ring order, and where each band of ``2 half_width + 1`` rings starts and ends
+    in that order (made once per crop shape)."""
+    _, kr, kc = _spectrum_layout(h, w)
+    step = 1.0 / min(h, w)
+    kmag = np.hypot(kr, kc)
+    ring = np.rint(kmag / step).astype(np.int64)
+    n_rings = int(ring.max()) + 1
+    order = np.argsort(ring, axis=None, kind="stable")
+    r_sorted = ring.ravel()[order]
+    lo = np.searchsorted(r_sorted, np.arange(n_rings) - half_width, side="left")
+    hi = np.searchsorted(r_sorted, np.arange(n_rings) + half_width, side="right")
+    return readonly(kmag), readonly(ring), readonly(order), readonly(lo), readonly(hi)
 
 
 def _whitened(power, kr, kc, k_min, k_max):
@@ -121,27 +149,20 @@ def _whitened(power, kr, kc, k_min, k_max):
     """
     smooth = ndi.uniform_filter(power, size=3, mode="wrap")
     h, w = power.shape
-    step = 1.0 / min(h, w)
-    kmag = np.hypot(kr, kc)
-    ring = np.rint(kmag / step).astype(np.int64)
-    n_rings = int(ring.max()) + 1
-    background = _ring_quantile(smooth, ring, n_rings, q=0.25, half_width=2) / 0.77
+    kmag, ring, order, lo, hi = _ring_layout(h, w, 2)
+    background = _ring_quantile(smooth, order, lo, hi, q=0.25) / 0.77
     ratio = smooth / np.maximum(background[ring], np.finfo(float).tiny)
     ratio[(kmag < k_min) | (kmag > k_max)] = 0.0
     return ratio
 
 
-def _ring_quantile(values, ring, n_rings, *, q, half_width):
-    order = np.argsort(ring, axis=None, kind="stable")
-    r_sorted = ring.ravel()[order]
-    v_sorted = values.ravel()[order]
-    lo = np.searchsorted(r_sorted, np.arange(n_rings) - half_width, side="left")
-    hi = np.searchsorted(r_sorted, np.arange(n_rings) + half_width, side="right")
-    out = np.zeros(n_rings)
-    # one partial sort per ring band: n_rings ~ frame size / 2 calls, not one per pixel
-    for k in range(n_rings):
-        if hi[k] > lo[k]:
-            out[k] = np.quantile(v_sorted[lo[k]:hi[k]], q)
+def _ring_quantile(values, order, lo, hi, *, q):
+    """``np.quantile`` (linear) of `values` over each ring band of `_ring_layout`,
+    the bands in parallel (compiled)."""
+    v_sorted = np.ascontiguousarray(values.ravel()[order])
+    out = np.zeros(len(lo))
+    _filters.band_quantiles(v_sorted, np.asarray(lo, np.int64), np.asarray(hi, np.int64),
+                            float(q), out)
     return out
 
 

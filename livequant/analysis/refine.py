@@ -1,9 +1,11 @@
 """Batched refinement of atomic columns: 2D Gaussian plus local background.
 
-Every column is fitted in its own circular window, all columns at once: the
-parameters form a ``(K, P)`` array and each Levenberg-Marquardt iteration is a
-handful of array operations and one batched ``P x P`` solve, never a Python
-loop over columns.
+Every column is fitted in its own circular window, all columns in one call:
+the parameters form a ``(K, P)`` array, and the Levenberg-Marquardt loop of
+each column runs compiled and in parallel over the columns
+(``_kernels.fit_columns``), one pass over the window pixels per iteration;
+never a Python loop over columns.  Windows are read from the image by offset
+(no per-pixel copies of all windows), so memory stays near the frame's size.
 
 Model of column ``k`` at pixel ``r`` (row, col)::
 
@@ -28,10 +30,8 @@ import numpy as np
 from livequant.analysis import _kernels
 from livequant.analysis.types import Columns, readonly
 
-__all__ = ["refine_columns", "FitWindows", "extract_windows", "gaussian_model"]
-
-_CHUNK = 4096  # columns per batch: bounds the per-pixel weight and model arrays
-
+__all__ = ["refine_columns", "starting_parameters", "FitWindows", "extract_windows",
+           "gaussian_model"]
 
 class FitWindows:
     """Pixel windows around columns: ``(K, P)`` arrays of coordinates, data and mask."""
@@ -136,7 +136,7 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
     window_fraction : float
     max_iterations : int
     tolerance_px : float
-        Converged when an accepted step moves the centre less than this.
+        Converged when a step moves the centre less than this.
     elliptical : bool
         Fit an elliptical Gaussian (7 parameters) instead of a round one (5).
     joint_neighbours : bool
@@ -154,7 +154,7 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
         Failed fits keep their starting position, ``converged=False`` and NaN
         uncertainties; they never raise.
     """
-    image = np.asarray(image, dtype=np.float64)
+    image = np.ascontiguousarray(image, dtype=np.float64)
     pos0 = np.atleast_2d(np.asarray(positions_px, dtype=np.float64))
     n = len(pos0)
     if weighting not in ("poisson", "uniform"):
@@ -166,39 +166,66 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
     if n == 0:
         return _empty_columns()
     radius = max(2.0, window_fraction * spacing_px)
-    win = extract_windows(image, pos0, radius)
-    theta = _initial_theta(win, pos0, sublattice, elliptical)
+    off_r, off_c = _disk(radius)
+    centres = np.rint(pos0).astype(np.int64)
+    theta = _initial_theta(image, centres, pos0, off_r, off_c, radius, sublattice, elliptical)
+    fit = _Fitter(image, centres, off_r, off_c, pos0, radius, elliptical=elliptical,
+                  max_iterations=max_iterations, tolerance_px=tolerance_px,
+                  weighting=weighting, gain=gain)
+    everyone = np.arange(n)
+    theta, state = fit(theta, everyone, None)
 
-    others = np.zeros_like(win.data)
     passes = 1 + (neighbour_passes if joint_neighbours and n > 1 else 0)
-    render = None
-    theta, state = _fit_batched(theta, win, others, elliptical=elliptical,
-                                max_iterations=max_iterations, tolerance_px=tolerance_px,
-                                weighting=weighting, gain=gain, start=pos0)
+    render_off = None
     for _ in range(passes - 1):
         if not _neighbours_reach(theta, radius, gain, elliptical).any():
             break
-        if render is None:
-            render = extract_windows(image, pos0, _render_radius(theta, radius, spacing_px,
-                                                                 elliptical))
-        others = _neighbour_contribution(theta, win, render, image.shape, elliptical)
+        if render_off is None:
+            render_off = _disk(_render_radius(theta, radius, spacing_px, elliptical))
+        total = np.zeros(image.shape)
+        _kernels.render_gaussians(theta, centres, render_off[0], render_off[1], elliptical, total)
         # Refit only the columns whose neighbours reach into their window by more
         # than a tenth of the local noise somewhere: for well-separated columns
         # the second pass would change nothing but cost as much as the first.
-        noise = np.sqrt(np.maximum(np.abs(win.data), 1.0) * gain)
-        touched = (np.abs(others) * win.valid > 0.1 * noise).any(axis=1)
+        touched = np.zeros(n, bool)
+        _kernels.window_others(total, image, theta, centres, off_r, off_c, everyone, elliptical,
+                               float(gain), np.zeros((0, len(off_r))), touched)
         if not touched.any():
             break
         sub = np.nonzero(touched)[0]
-        th_sub, st_sub = _fit_batched(theta[sub], win.take(sub), others[sub],
-                                      elliptical=elliptical, max_iterations=max_iterations,
-                                      tolerance_px=tolerance_px, weighting=weighting, gain=gain,
-                                      start=pos0[sub])
+        others = np.empty((len(sub), len(off_r)))
+        _kernels.window_others(total, image, theta, centres, off_r, off_c, sub, elliptical,
+                               float(gain), others, touched[sub])
+        del total
+        th_sub, st_sub = fit(theta, sub, others)
         theta[sub] = th_sub
         for key in state:
             state[key][sub] = st_sub[key]
-    return _to_columns(theta, state, win, others, pos0, sublattice, ij, elliptical, weighting,
-                       gain)
+    return _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius)
+
+
+def starting_parameters(image, positions_px, *, spacing_px, window_fraction=0.3, sublattice=None,
+                        elliptical=True):
+    """The parameters `refine_columns` starts from, ``(N, 7)`` (or ``(N, 5)``
+    round): ``[mu_r, mu_c, A, B, p, q, s]`` in the windows it fits.  For
+    references that must solve the same problem from the same point."""
+    image = np.ascontiguousarray(image, dtype=np.float64)
+    pos0 = np.atleast_2d(np.asarray(positions_px, dtype=np.float64))
+    sublattice = np.full(len(pos0), "A") if sublattice is None else np.asarray(sublattice)
+    radius = max(2.0, window_fraction * spacing_px)
+    off_r, off_c = _disk(radius)
+    return _initial_theta(image, np.rint(pos0).astype(np.int64), pos0, off_r, off_c, radius,
+                          sublattice, elliptical)
+
+
+def _disk(radius_px):
+    """Row and column offsets (float) of the pixels within `radius_px`, row by row."""
+    rc = int(np.ceil(radius_px))
+    off = np.arange(-rc, rc + 1)
+    orow, ocol = np.meshgrid(off, off, indexing="ij")
+    disk = (orow**2 + ocol**2) <= radius_px**2 + 1e-9
+    return (np.ascontiguousarray(orow[disk], dtype=np.float64),
+            np.ascontiguousarray(ocol[disk], dtype=np.float64))
 
 
 def _empty_columns() -> Columns:
@@ -211,31 +238,20 @@ def _empty_columns() -> Columns:
                    message="no columns")
 
 
-def _initial_theta(win: FitWindows, pos0, sublattice, elliptical):
-    off_r, off_c = win.offsets
-    r2_off = off_r.astype(float) ** 2 + off_c.astype(float) ** 2
-    # background: lower quartile of the outer ring (robust to a neighbour's tail);
-    # pixels outside the frame are pushed to the top so they never count
-    outer = np.nonzero(r2_off > (0.7 * win.radius_px) ** 2)[0]
-    ring = np.where(win.valid[:, outer], win.data[:, outer], np.inf)
-    kth = max(0, len(outer) // 4)
-    B0 = np.partition(ring, kth, axis=1)[:, kth]
-    B0 = np.where(np.isfinite(B0), B0, np.median(win.data))
-    centre = np.nonzero(r2_off <= 1.0)[0]
-    peak = (win.data[:, centre] * win.valid[:, centre]).sum(1) / np.maximum(
-        win.valid[:, centre].sum(1), 1)
+def _initial_theta(image, centres, pos0, off_r, off_c, radius, sublattice, elliptical):
+    n = len(pos0)
+    B0, peak, var = np.empty(n), np.empty(n), np.empty(n)
+    _kernels.window_starts(image, centres, pos0, off_r, off_c, float(radius), np.nan, B0, peak,
+                           var)
+    if not np.isfinite(B0).all():  # a window whose outer ring lies wholly outside the frame
+        _kernels.window_starts(image, centres, pos0, off_r, off_c, float(radius),
+                               float(np.median(image)), B0, peak, var)
     A0 = peak - B0
     # width from the second moment of the background-subtracted window, then the
     # median per sublattice (a single window's moment is too noisy to start from)
-    wgt = np.clip((win.data - B0[:, None]) * np.sign(A0)[:, None], 0, None) * win.valid
-    sub = pos0 - win.centres
-    dr = off_r[None, :] - sub[:, 0:1]
-    dc = off_c[None, :] - sub[:, 1:2]
-    with np.errstate(all="ignore"):
-        var = (wgt * (dr**2 + dc**2)).sum(1) / (2.0 * wgt.sum(1))
-    var = np.where(np.isfinite(var) & (var > 0), var, (win.radius_px / 3) ** 2)
+    var = np.where(np.isfinite(var) & (var > 0), var, (radius / 3) ** 2)
     # moments inside a truncated window underestimate; clamp to a sane range
-    var = np.clip(var, 0.25, (win.radius_px / 1.5) ** 2)
+    var = np.clip(var, 0.25, (radius / 1.5) ** 2)
     labels, inverse = np.unique(sublattice, return_inverse=True)
     for k in range(len(labels)):  # a handful of sublattices, not columns
         sel = inverse == k
@@ -247,166 +263,85 @@ def _initial_theta(win: FitWindows, pos0, sublattice, elliptical):
     return np.stack(cols, axis=1)
 
 
-def _weights(m_total, weighting, gain, floor):
-    if weighting == "uniform":
-        return np.ones_like(m_total)
-    return 1.0 / (gain * np.maximum(m_total, floor))
-
-
-def _variance_floor(win: FitWindows) -> float:
+def _variance_floor(image, centres, off_r, off_c) -> float:
     """Smallest model value used as a Poisson variance: a thousandth of the typical
-    pixel (a subsample is as good as all pixels for a median)."""
-    return max(1e-6, 1e-3 * float(np.median(np.abs(win.data[:, ::5]))))
+    window pixel (the median of every fifth pixel of up to ~400 evenly spread
+    windows: as good as all of them for a median, and cheap)."""
+    h, w = image.shape
+    every = max(1, len(centres) // 400)
+    c = centres[::every]
+    rows = np.clip(c[:, 0, None] + off_r[None, ::5].astype(np.int64), 0, h - 1)
+    cols = np.clip(c[:, 1, None] + off_c[None, ::5].astype(np.int64), 0, w - 1)
+    return max(1e-6, 1e-3 * float(np.median(np.abs(image[rows, cols]))))
 
 
-def _fit_batched(theta, win, others, *, elliptical, max_iterations, tolerance_px, weighting, gain,
-                 start):
-    """Levenberg-Marquardt over all columns, in chunks to bound memory."""
-    n = len(theta)
-    out = theta.copy()
-    state = {"converged": np.zeros(n, bool), "iterations": np.zeros(n, int),
-             "H": np.zeros((n, theta.shape[1], theta.shape[1])),
-             "model": np.zeros_like(win.data)}
-    floor = _variance_floor(win)
-    for lo in range(0, n, _CHUNK):
-        sl = slice(lo, min(n, lo + _CHUNK))
-        th, conv, it, H, m = _lm_chunk(theta[sl].copy(), win.centres[sl], win.offsets, win.data[sl],
-                                    win.valid[sl], others[sl], start[sl], win.radius_px,
-                                    elliptical=elliptical, max_iterations=max_iterations,
-                                    tolerance_px=tolerance_px, weighting=weighting, gain=gain,
-                                    floor=floor)
-        out[sl] = th
-        state["converged"][sl] = conv
-        state["iterations"][sl] = it
-        state["H"][sl] = H
-        state["model"][sl] = m
-    return out, state
+class _Fitter:
+    """The compiled Levenberg-Marquardt over a set of columns of one image."""
 
+    def __init__(self, image, centres, off_r, off_c, start, radius, *, elliptical,
+                 max_iterations, tolerance_px, weighting, gain):
+        self.image, self.centres, self.off_r, self.off_c = image, centres, off_r, off_c
+        self.start, self.radius, self.elliptical = start, float(radius), bool(elliptical)
+        self.max_iterations, self.tolerance_px = int(max_iterations), float(tolerance_px)
+        self.uniform, self.gain = weighting == "uniform", float(gain)
+        self.floor = _variance_floor(image, centres, off_r, off_c)
 
-def _physical(theta, start, radius, sign0, elliptical):
-    ok = np.all(np.isfinite(theta), axis=1)
-    ok &= np.sign(theta[:, 2]) == sign0
-    ok &= theta[:, 4] > 0
-    if elliptical:
-        ok &= (theta[:, 6] > 0) & (theta[:, 4] * theta[:, 6] - theta[:, 5] ** 2 > 0)
-        tr, det = theta[:, 4] + theta[:, 6], theta[:, 4] * theta[:, 6] - theta[:, 5] ** 2
-        lam_min = tr / 2 - np.sqrt(np.maximum(tr**2 / 4 - det, 0))
-    else:
-        lam_min = theta[:, 4]
-    # a Gaussian wider than the fit window is background, not a column
-    ok &= lam_min > 1.0 / radius**2
-    ok &= np.hypot(theta[:, 0] - start[:, 0], theta[:, 1] - start[:, 1]) < 0.5 * radius
-    # widths narrower than a tenth of a pixel are not columns
-    ok &= theta[:, 4] < 100.0
-    return ok
-
-
-def _lm_chunk(theta, centres, offsets, data, valid, others, start, radius, *, elliptical,
-              max_iterations, tolerance_px, weighting, gain, floor):
-    k, n_par = theta.shape
-    cen = np.ascontiguousarray(centres, dtype=np.float64)
-    off_r = np.ascontiguousarray(offsets[0], dtype=np.float64)
-    off_c = np.ascontiguousarray(offsets[1], dtype=np.float64)
-    data = np.ascontiguousarray(data, dtype=np.float64)
-    others = np.ascontiguousarray(others, dtype=np.float64)
-    valid = np.ascontiguousarray(valid, dtype=np.bool_)
-    uniform = weighting == "uniform"
-    W = np.zeros_like(data)
-    M = np.zeros_like(data)
-    sign0 = np.sign(theta[:, 2])
-    sign0[sign0 == 0] = 1.0
-    theta[:, 2] = np.where(theta[:, 2] == 0, sign0, theta[:, 2])
-    lam = np.full(k, 1e-3)
-    active = np.ones(k, bool)
-    converged = np.zeros(k, bool)
-    iterations = np.zeros(k, int)
-    eye = np.eye(n_par)
-
-    def equations(idx):
-        H = np.empty((len(idx), n_par, n_par))
-        g = np.empty((len(idx), n_par))
-        cost = np.empty(len(idx))
-        _kernels.normal_equations(theta, cen, off_r, off_c, data, valid, others, idx,
-                                  float(gain), float(floor), uniform, elliptical, W, M, H, g,
-                                  cost)
-        return H, g, cost
-
-    H_last = np.zeros((k, n_par, n_par))
-    fresh = np.zeros(k, bool)  # H_last and M hold the values at the current theta
-    for _ in range(max_iterations):
-        idx = np.nonzero(active)[0]
-        if len(idx) == 0:
-            break
-        # one weighted least-squares problem per iteration (IRLS): weights at the
-        # current point, the step judged with those same weights
-        H, g, cost = equations(idx)
-        H_last[idx] = H
-        fresh[idx] = True
-        diag = np.einsum("kii->ki", H)
-        A_mat = H + (lam[idx, None] * np.maximum(diag, 1e-12))[:, :, None] * eye
-        try:
-            step = np.linalg.solve(A_mat, g[..., None])[..., 0]
-        except np.linalg.LinAlgError:
-            step = np.stack([_safe_solve(a, b) for a, b in zip(A_mat, g)])  # rare: singular batch
-        trial = theta.copy()
-        trial[idx] = theta[idx] + step
-        ok = _physical(trial[idx], start[idx], radius, sign0[idx], elliptical)
-        ct = np.empty(len(idx))
-        _kernels.weighted_cost(trial, cen, off_r, off_c, data, others, idx, W, elliptical, ct)
-        better = ok & np.isfinite(ct) & (ct <= cost)
-        acc = idx[better]
-        theta[acc] = trial[acc]
-        moved = np.hypot(step[:, 0], step[:, 1])
-        fresh[idx[better & (moved >= tolerance_px)]] = False
-        lam[acc] = np.maximum(lam[acc] / 3.0, 1e-7)
-        rej = idx[~better]
-        lam[rej] = lam[rej] * 5.0
-        iterations[idx] += 1
-        # converged: an accepted step that barely moves the centre, or a
-        # rejected one whose full Gauss-Newton size would already be tiny
-        done = (better & (moved < tolerance_px)) | (~better & (moved * (1 + lam[idx]) < tolerance_px))
-        converged[idx[done]] = True
-        active[idx[done]] = False
-        # a column whose damping has run away is stuck: stop it, unconverged
-        active[rej[lam[rej] > 1e8]] = False
-    # Fisher information at the final parameters, for the covariance.  Columns
-    # whose last accepted step was below the tolerance keep the matrix of the
-    # point before it (a difference far below the uncertainty); the others get
-    # a fresh evaluation.
-    stale = np.nonzero(~fresh | ~converged)[0]
-    if len(stale):
-        H_last[stale], _, _ = equations(stale)
-    converged &= _physical(theta, start, radius, sign0, elliptical)
-    return theta, converged, iterations, H_last, M.copy()
-
-
-def _safe_solve(a, b):
-    try:
-        return np.linalg.solve(a, b)
-    except np.linalg.LinAlgError:
-        return np.zeros_like(b)
+    def __call__(self, theta, idx, others):
+        """Fit columns `idx` from `theta[idx]`; `others` (len(idx), P) or None."""
+        m, n_par = len(idx), theta.shape[1]
+        has_others = others is not None
+        if not has_others:
+            others = np.zeros((1, len(self.off_r)))
+        out = np.empty((m, n_par))
+        state = {"converged": np.zeros(m, bool), "iterations": np.zeros(m, np.int64),
+                 "cov": np.zeros((m, n_par, n_par)), "chi2": np.zeros(m),
+                 "n_valid": np.zeros(m, np.int64)}
+        _kernels.fit_columns(self.image, self.centres, self.off_r, self.off_c,
+                             np.ascontiguousarray(idx, dtype=np.int64),
+                             np.ascontiguousarray(theta, dtype=np.float64), self.start,
+                             np.ascontiguousarray(others), has_others, self.radius, self.gain,
+                             self.floor, self.uniform, self.elliptical, self.max_iterations,
+                             self.tolerance_px, out, state["cov"], state["converged"],
+                             state["iterations"], state["chi2"], state["n_valid"])
+        return out, state
 
 
 def _neighbours_reach(theta, radius, gain, elliptical):
     """Cheap bound: which columns have a neighbour whose Gaussian exceeds a tenth of
-    the noise inside their window?  (Nearest eight neighbours, widest axis.)"""
+    the noise inside their window?  (Widest axis; only pairs close enough that the
+    brightest, widest column could reach the quietest window are looked at, so a
+    well-separated lattice costs one tree search and no pair.)"""
     from scipy.spatial import cKDTree
 
     n = len(theta)
     pos = theta[:, :2]
-    k = min(9, n)
-    dist, nb = cKDTree(pos).query(pos, k=k)
-    dist, nb = dist[:, 1:], nb[:, 1:]
     p = theta[:, 4]
     if elliptical:
         tr, det = theta[:, 4] + theta[:, 6], theta[:, 4] * theta[:, 6] - theta[:, 5] ** 2
         p = tr / 2 - np.sqrt(np.maximum(tr**2 / 4 - det, 0))
     with np.errstate(divide="ignore", invalid="ignore"):
         sig2 = np.where(p > 0, 1.0 / p, np.inf)
-    gap = np.clip(dist - radius, 0, None)
-    reach = np.abs(theta[nb, 2]) * np.exp(-0.5 * gap**2 / sig2[nb])
+    amp = np.abs(theta[:, 2])
     noise = np.sqrt(np.maximum(np.abs(theta[:, 3]), 1.0) * gain)
-    return (reach > 0.1 * noise[:, None]).any(axis=1)
+    ok = np.isfinite(pos).all(axis=1) & np.isfinite(sig2) & np.isfinite(amp)
+    reach = np.zeros(n, bool)
+    if ok.sum() < 2:
+        return reach
+    # |A| exp(-gap^2 / 2 s^2) > 0.1 noise needs gap < s sqrt(2 ln(10 |A| / noise))
+    ratio = 10.0 * amp[ok].max() / noise.min()
+    cutoff = radius + np.sqrt(sig2[ok].max() * 2.0 * np.log(max(ratio, 1.0)))
+    sel = np.nonzero(ok)[0]
+    pairs = cKDTree(pos[sel]).query_pairs(cutoff, output_type="ndarray")
+    if len(pairs) == 0:
+        return reach
+    i, j = sel[pairs[:, 0]], sel[pairs[:, 1]]
+    gap = np.clip(np.hypot(*(pos[i] - pos[j]).T) - radius, 0, None)
+    # j reaching into i's window, and i into j's
+    reach_i = amp[j] * np.exp(-0.5 * gap**2 / sig2[j]) > 0.1 * noise[i]
+    reach_j = amp[i] * np.exp(-0.5 * gap**2 / sig2[i]) > 0.1 * noise[j]
+    reach[i[reach_i]] = True
+    reach[j[reach_j]] = True
+    return reach
 
 
 def _render_radius(theta, fit_radius, spacing_px, elliptical):
@@ -428,45 +363,16 @@ def _render_radius(theta, fit_radius, spacing_px, elliptical):
     return float(np.clip(4.0 * typical, fit_radius, 1.5 * spacing_px))
 
 
-def _neighbour_contribution(theta, win: FitWindows, render: FitWindows, shape, elliptical):
-    """For each fit window, the sum of all *other* columns' fitted Gaussians.
-
-    Every column is rendered over its (larger) `render` footprint; the fit
-    window pixels are a subset of it, so subtracting the column's own
-    Gaussian on its window leaves exactly the neighbours.
-    """
-    _, AG_render, _ = gaussian_model(theta, render.rows, render.cols, elliptical=elliptical)
-    AG_render = np.where(render.valid, AG_render, 0.0)
-    total = np.bincount(render.flat.ravel(), weights=AG_render.ravel(),
-                        minlength=shape[0] * shape[1])
-    _, AG_own, _ = gaussian_model(theta, win.rows, win.cols, elliptical=elliptical)
-    return total[win.flat] - np.where(win.valid, AG_own, 0.0)
-
-
-def _to_columns(theta, state, win, others, pos0, sublattice, ij, elliptical, weighting, gain):
+def _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius):
     n = len(theta)
     n_par = theta.shape[1]
     converged = state["converged"].copy()
-    H = state["H"]
-    # inverse of the Fisher information; singular ones mark the column failed
-    cov = np.full_like(H, np.nan)
-    good = converged & np.all(np.isfinite(H), axis=(1, 2))
-    if good.any():
-        try:
-            cov[good] = np.linalg.inv(H[good])
-        except np.linalg.LinAlgError:
-            for k in np.nonzero(good)[0]:
-                try:
-                    cov[k] = np.linalg.inv(H[k])
-                except np.linalg.LinAlgError:
-                    converged[k] = False
-    # reduced chi-square per column with the final weights
-    floor = _variance_floor(win)
-    m = state["model"]
-    W = _weights(m + others, weighting, gain, floor) * win.valid
-    res = (win.data - others) - m
-    dof = np.maximum(win.valid.sum(1) - n_par, 1)
-    chi2 = (W * res * res).sum(1) / dof
+    # inverse of the Fisher information (from the kernel; NaN and not
+    # converged where it was singular)
+    cov = state["cov"]
+    # reduced chi-square per column with the final weights (the kernel's cost)
+    dof = np.maximum(state["n_valid"] - n_par, 1)
+    chi2 = state["chi2"] / dof
     if weighting == "poisson":
         # One frame-wide factor: the median reduced chi-square estimates the
         # true gain / excess noise; it scales every covariance alike.
@@ -511,6 +417,6 @@ def _to_columns(theta, state, win, others, pos0, sublattice, ij, elliptical, wei
         background=readonly(theta[:, 3]), sublattice=readonly(np.asarray(sublattice, "<U2")),
         ij=readonly(np.asarray(ij, dtype=np.int64)), converged=readonly(converged),
         reduced_chi2=readonly(chi2), message=msg,
-        extra={"window_radius_px": float(win.radius_px),
+        extra={"window_radius_px": float(radius),
                "iterations_median": float(np.median(state["iterations"]))},
     )

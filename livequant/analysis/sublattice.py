@@ -25,6 +25,8 @@ from scipy import sparse
 from scipy.sparse import csgraph
 from scipy.spatial import cKDTree
 
+from numba import njit
+
 from livequant.analysis.columns import Candidates
 from livequant.analysis.types import Lattice, readonly
 
@@ -115,22 +117,25 @@ def assign_sites(candidates: Candidates, lattice: Lattice, *, projection="perovs
         return empty
     ref = int(np.argmax(sizes))
 
-    # 3. integer indices inside each group, by frontier propagation along links
+    # 3. integer indices inside each group: breadth first along the links from
+    #    the group's first member (each column gets its index from the link it
+    #    was first reached by, level by level)
     idx = np.zeros((n, 2), int)
-    known = np.zeros(n, bool)
     seeds = np.zeros(n_groups, int)
     seeds[group[::-1]] = np.arange(n)[::-1]  # first member of each group
-    known[seeds[big]] = True
     e_src = np.concatenate([src, dst])
     e_dst = np.concatenate([dst, src])
     e_off = np.concatenate([off, -off])
-    while True:
-        m = known[e_src] & ~known[e_dst]
-        if not m.any():
-            break
-        d = e_dst[m]
-        idx[d] = idx[e_src[m]] + e_off[m]
-        known[d] = True
+    key = e_src.astype(np.int64) * n + e_dst
+    key, first = np.unique(key, return_index=True)  # sorted; one offset per linked pair
+    e_off = e_off[first]
+    graph = sparse.csr_matrix((np.ones(len(key)), (key // n, key % n)), shape=(n, n))
+    for seed in seeds[big]:
+        order, pred = csgraph.breadth_first_order(graph, seed, directed=True,
+                                                  return_predecessors=True)
+        child = order[1:]
+        step = e_off[np.searchsorted(key, pred[child].astype(np.int64) * n + child)]
+        _accumulate(order, pred, step, idx)
 
     # 4. half-integer indices relative to the reference group
     half = 2 * idx
@@ -204,3 +209,14 @@ def assign_sites(candidates: Candidates, lattice: Lattice, *, projection="perovs
     final = final[np.lexsort((ij[final, 0], ij[final, 1]))]
     return Sites(positions_px=readonly(pos[final]), sublattice=readonly(label[final].astype("<U2")),
                  ij=readonly(ij[final]), height=readonly(height[final]), message="; ".join(notes))
+
+
+@njit(cache=True)
+def _accumulate(order, pred, step, idx):
+    """``idx[c] = idx[pred[c]] + step`` along a breadth-first `order` (parents
+    come before their children, so one pass suffices)."""
+    for m in range(1, order.shape[0]):
+        c = order[m]
+        p = pred[c]
+        idx[c, 0] = idx[p, 0] + step[m - 1, 0]
+        idx[c, 1] = idx[p, 1] + step[m - 1, 1]

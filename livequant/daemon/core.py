@@ -49,6 +49,7 @@ from livequant.daemon.sources import (Candidate, FolderSource, SocketSource,
 from livequant.daemon.status import LastFrame, Snapshot, last_frame_from_summary
 from livequant.daemon.worker import DEFAULT_ANALYZE, Outcome, init_worker, process_path
 from livequant.frames import sidecar_path
+from livequant.pipeline import threads_per_worker
 from livequant.proposals.propose import CAUTION
 
 __all__ = ["Daemon", "SetupError", "file_sha256"]
@@ -262,7 +263,8 @@ class Daemon:
         return cf.ProcessPoolExecutor(
             max_workers=self.n_workers, mp_context=multiprocessing.get_context("spawn"),
             initializer=init_worker,
-            initargs=(self.settings, self.analyze, str(self.paths.frames)))
+            initargs=(self.settings, self.analyze, str(self.paths.frames),
+                      threads_per_worker(self.n_workers)))
 
     def _republish_missed(self) -> None:
         """Publish summaries of frames marked done whose event a crash cut off."""

@@ -168,3 +168,118 @@ def test_uncertainty_calibrated_when_gain_is_wrong():
     cols = refine_columns(img, truth, spacing_px=spacing, joint_neighbours=False, gain=1.0)
     pulls = (cols.positions_px - truth) / cols.sigma_positions_px
     assert 0.8 < pulls.std() < 1.25
+
+
+def _round_or_elliptical_model(theta, rows, cols):
+    if len(theta) == 5:
+        r0, c0, A, B, p = theta
+        q, s = 0.0, p
+    else:
+        r0, c0, A, B, p, q, s = theta
+    dr, dc = rows - r0, cols - c0
+    return B + A * np.exp(-0.5 * (p * dr * dr + 2 * q * dr * dc + s * dc * dc))
+
+
+@pytest.mark.parametrize("elliptical, weighting", [(False, "poisson"), (True, "uniform"),
+                                                   (False, "uniform")])
+def test_round_model_and_uniform_weights_agree_with_scipy(elliptical, weighting):
+    """The other model and weighting paths of the compiled fit, against
+    scipy.optimize.least_squares on the same windows: Poisson deviance
+    residuals, or plain residuals for uniform weights (ordinary least squares)."""
+    rng = np.random.default_rng(8)
+    spacing = 8 * SIGMA_PX
+    truth = isolated_grid(4, spacing, margin_px=spacing, rng=rng)
+    size = int(spacing * 5)
+    img = render_columns((size, size), truth, PEAK, SIGMA_PX, background=50.0, rng=rng)
+    cols = refine_columns(img, truth, spacing_px=spacing, window_fraction=0.3,
+                          joint_neighbours=False, tolerance_px=1e-7, max_iterations=100,
+                          elliptical=elliptical, weighting=weighting)
+    assert cols.converged.all()
+    win = extract_windows(img, truth, 0.3 * spacing)
+    p0 = 1 / SIGMA_PX**2
+    for k in range(len(truth)):
+        v = win.valid[k]
+        rows, cc, data = win.rows[k, v], win.cols[k, v], win.data[k, v]
+        x0 = [truth[k, 0], truth[k, 1], PEAK, 50.0, p0] + ([0.0, p0] if elliptical else [])
+        if weighting == "poisson":
+            def resid(t):
+                m = np.maximum(_round_or_elliptical_model(t, rows, cc), 1e-9)
+                term = np.where(data > 0, data * np.log(np.where(data > 0, data, 1.0) / m), 0.0)
+                return np.sign(data - m) * np.sqrt(2 * np.maximum(term - (data - m), 0))
+        else:
+            def resid(t):
+                return data - _round_or_elliptical_model(t, rows, cc)
+        ref = least_squares(resid, x0, xtol=1e-12, ftol=1e-12, gtol=1e-12)
+        assert ref.success
+        diff = np.abs(cols.positions_px[k] - ref.x[:2])
+        assert np.all(diff < 0.01 * cols.sigma_positions_px[k]), (diff, cols.sigma_positions_px[k])
+
+
+def test_column_at_the_frame_edge_agrees_with_scipy():
+    """A window cut by the frame edge: only the pixels inside count (same
+    Poisson-deviance reference as above, on those pixels)."""
+    rng = np.random.default_rng(9)
+    truth = np.array([[3.3, 40.2], [40.4, 2.6], [2.8, 2.1], [40.0, 40.0]])
+    img = render_columns((80, 80), truth, PEAK, SIGMA_PX, background=50.0, rng=rng)
+    cols = refine_columns(img, truth, spacing_px=32.0, window_fraction=0.3,
+                          joint_neighbours=False, tolerance_px=1e-7, max_iterations=100)
+    assert cols.converged.all(), cols.message
+    win = extract_windows(img, truth, 0.3 * 32.0)
+    assert not win.valid[:3].all(axis=1).any()          # the first three are cut
+    for k in range(len(truth)):
+        v = win.valid[k]
+        x0 = [truth[k, 0], truth[k, 1], PEAK, 50.0, 1 / SIGMA_PX**2, 0.0, 1 / SIGMA_PX**2]
+        ref = least_squares(_deviance_residuals, x0, args=(win.rows[k, v], win.cols[k, v],
+                                                           win.data[k, v]),
+                            xtol=1e-12, ftol=1e-12, gtol=1e-12)
+        assert ref.success
+        diff = np.abs(cols.positions_px[k] - ref.x[:2])
+        assert np.all(diff < 0.01 * cols.sigma_positions_px[k]), (diff, cols.sigma_positions_px[k])
+
+
+def test_results_do_not_depend_on_the_thread_count():
+    """Columns are fitted independently, so one thread and all threads give
+    identical numbers (deterministic results on any machine load)."""
+    import numba
+
+    f = perovskite_frame((256, 256), a_pm=390.53, pixel_size_pm=15.0, sigma_pm=65.0,
+                         peak_a=800, peak_b=200, background=20, rotation_deg=7.0, seed=1,
+                         margin_px=0)
+    start = f.positions_px + np.random.default_rng(1).normal(0, 0.2, f.positions_px.shape)
+    kwargs = dict(sublattice=f.sublattice, spacing_px=390.53 / 15.0, window_fraction=0.35)
+    before = numba.get_num_threads()
+    try:
+        numba.set_num_threads(1)
+        one = refine_columns(f.pixels, start, **kwargs)
+    finally:
+        numba.set_num_threads(before)
+    many = refine_columns(f.pixels, start, **kwargs)
+    for name in ("positions_px", "sigma_positions_px", "amplitude", "reduced_chi2"):
+        assert np.array_equal(getattr(one, name), getattr(many, name), equal_nan=True), name
+
+
+def test_small_solvers_match_numpy():
+    """The compiled 7 x 7 solve and inverse of the fit (Cholesky, with pivoted
+    elimination when the matrix is not positive definite) against numpy.linalg."""
+    from livequant.analysis._kernels import _damped_step, _invert
+
+    rng = np.random.default_rng(12)
+    for trial in range(40):
+        n = 7 if trial % 2 else 5
+        X = rng.normal(size=(n, 3 * n)) * rng.uniform(0.1, 100, size=(n, 1))
+        H = X @ X.T
+        if trial % 4 == 3:
+            H[0, 0] = -abs(H[0, 0])     # indefinite: the fallback path
+        g = rng.normal(size=n)
+        lam = 10.0 ** rng.uniform(-7, 2)
+        A = H + np.diag(lam * np.maximum(np.diag(H), 1e-12))
+        step, M = np.empty(n), np.empty((n, n))
+        assert _damped_step(H, g, lam, M, step)
+        assert np.allclose(step, np.linalg.solve(A, g), rtol=1e-8, atol=1e-12 * np.abs(step).max())
+        out = np.empty((n, n))
+        assert _invert(H, out)
+        ref = np.linalg.inv(H)
+        assert np.allclose(out, ref, rtol=1e-7, atol=1e-9 * np.abs(ref).max())
+    singular = np.zeros((7, 7))
+    out = np.empty((7, 7))
+    assert not _invert(singular, out) and np.isnan(out).all()
