@@ -363,6 +363,28 @@ def _render_radius(theta, fit_radius, spacing_px, elliptical):
     return float(np.clip(4.0 * typical, fit_radius, 1.5 * spacing_px))
 
 
+#: A converged fit whose minor width is below this fraction of the median minor width
+#: of its sublattice's converged fits is rejected as collapsed onto a noise spike.
+_COLLAPSE_FRACTION = 0.4
+
+
+def _collapsed(minor_width, labels, converged) -> np.ndarray:
+    """Fits much narrower than the median of their sublattice (vectorised over labels)."""
+    out = np.zeros(len(minor_width), bool)
+    if not converged.any():
+        return out
+    names, inv = np.unique(labels, return_inverse=True)
+    med = np.full(len(names), np.nan)
+    for k in range(len(names)):  # a handful of sublattices, not one pass per column
+        sel = converged & (inv == k) & np.isfinite(minor_width)
+        if sel.sum() >= 5:
+            med[k] = np.median(minor_width[sel])
+    ref = med[inv]
+    with np.errstate(invalid="ignore"):
+        out = converged & np.isfinite(ref) & (minor_width < _COLLAPSE_FRACTION * ref)
+    return out
+
+
 def _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius):
     n = len(theta)
     n_par = theta.shape[1]
@@ -388,11 +410,6 @@ def _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radiu
     with np.errstate(invalid="ignore", divide="ignore"):
         significant = np.abs(theta[:, 2]) > 3.0 * sig_amp
     converged &= significant
-    bad = ~converged
-    pos = theta[:, 0:2].copy()
-    pos[bad] = pos0[bad]
-    sig_pos[bad] = np.nan
-    sig_amp[bad] = np.nan
     # widths: eigen-decomposition of the covariance Q^-1 of the Gaussian
     if elliptical:
         p, q, s = theta[:, 4], theta[:, 5], theta[:, 6]
@@ -408,8 +425,21 @@ def _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radiu
         width = np.sqrt(np.stack([np.clip(lam1, 0, None), np.clip(lam2, 0, None)], 1))
         # major-axis direction in (x, y) = (col, row): eigenvector of [[c_cc, c_rc], [c_rc, c_rr]]
         ang = 0.5 * np.degrees(np.arctan2(2 * c_rc, c_cc - c_rr))
+    # A fit that shrank to a needle on one bright pixel (shot noise at low dose) has
+    # a huge amplitude and a tiny volume; no column is several times narrower than
+    # the others of its sublattice, whose width the probe sets.
+    collapsed = _collapsed(width[:, 1], np.asarray(sublattice).astype(str), converged)
+    converged &= ~collapsed
+    bad = ~converged
+    pos = theta[:, 0:2].copy()
+    pos[bad] = pos0[bad]
+    sig_pos[bad] = np.nan
+    sig_amp[bad] = np.nan
     n_conv = int(converged.sum())
     msg = f"{n_conv} of {n} columns converged"
+    if collapsed.any():
+        msg += (f" ({int(collapsed.sum())} fits collapsed below {_COLLAPSE_FRACTION:g} of their "
+                "sublattice's median width and were rejected)")
     return Columns(
         positions_px=readonly(pos), sigma_positions_px=readonly(sig_pos),
         amplitude=readonly(theta[:, 2]), sigma_amplitude=readonly(sig_amp),

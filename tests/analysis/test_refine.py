@@ -283,3 +283,27 @@ def test_small_solvers_match_numpy():
     singular = np.zeros((7, 7))
     out = np.empty((7, 7))
     assert not _invert(singular, out) and np.isnan(out).all()
+
+
+def test_fits_collapsed_onto_a_noise_spike_are_rejected():
+    """At low dose a weak B column's elliptical Gaussian can shrink onto one bright pixel:
+    a huge amplitude, a width of a fifth of a pixel.  Every true column here has the same
+    width (the probe's, 45 pm), so a converged fit several times narrower than its
+    sublattice's median is wrong; such fits come back unconverged, with NaN sigmas, and
+    the message says how many."""
+    from livequant.synthetic import perovskite_frame
+
+    f = perovskite_frame((256, 256), pixel_size_pm=26.0, sigma_pm=45, peak_a=42, peak_b=7,
+                         background=5, seed=4)
+    c = refine_columns(f.pixels, f.positions_px, sublattice=f.sublattice, ij=f.ij,
+                       spacing_px=390.0 / 26.0)
+    assert "collapsed" in c.message
+    n_collapsed = int(c.message.split("(")[1].split()[0])
+    assert n_collapsed >= 1
+    for lab in ("A", "B"):
+        ok = c.converged & (c.sublattice == lab)
+        minor = c.width_px[ok, 1]
+        assert minor.min() >= 0.4 * np.median(minor)
+        # and the amplitudes of what is kept stay within a few times the true peak
+        assert c.amplitude[ok].max() < 4 * (42 if lab == "A" else 7)
+    assert np.isnan(c.sigma_positions_px[~c.converged]).all()
