@@ -29,8 +29,10 @@ Region
     A square of ``region_cells`` cells around the core (axis-aligned).
 
 Score
-    ``n_loops / (n_loops + L^2)``: ``L^2`` loops of side ``L`` enclose a
-    point core, so a core seen by all of them scores 1/2 or more.
+    ``min(1, n_loops / L^2)``: the fraction of the ``L^2`` loops of side ``L``
+    that enclose a point core and see its winding (a core seen by every
+    enclosing loop scores 1; one seen by a few loops at a frame's edge, or
+    through noisy cells, less).
 
 Thresholds (``[rules.vortex_cores]``)
     ``loop_cells``, ``smooth_cells``, ``min_snr``, ``max_step_deg``,
@@ -228,5 +230,5 @@ class VortexCoreRule:
                     "i": int(cells["i"][near]), "j": int(cells["j"][near])}
         msg = (f"{kind} core (winding {winding:+d}) seen by {n_loops} loop(s) of "
                f"{L} cells near cell ({evidence['i']}, {evidence['j']})")
-        return Flag(kind, n_loops / (n_loops + L * L),
+        return Flag(kind, min(1.0, n_loops / (L * L)),
                     Region(x_px=x_px, y_px=y_px, width_px=side, height_px=side), msg, evidence)
