@@ -534,7 +534,8 @@ def throughput_figure(finished_s, lag_s, analyze_s, *, bin_s: float | None = Non
     label = f"time since the session started ({'min' if minutes else 's'})"
     if t.size:
         span = float(np.ptp(t)) if t.size > 1 else 1.0
-        width = bin_s or max(span / 30.0, 1.0)
+        # about five frames a bin at the session's mean rate, 1 s at least: a rate, not a comb
+        width = bin_s or max(span / 30.0, 5.0 * span / max(t.size, 1), 1.0)
         edges = np.arange(t.min(), t.max() + width, width)
         if edges.size < 2:
             edges = np.array([t.min(), t.min() + width])
