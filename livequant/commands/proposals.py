@@ -125,7 +125,7 @@ def proposals_command(args) -> int:
     if not rows:
         console.print("no proposals" + (f" in state {args.state}" if args.state else ""))
     else:
-        console.print(proposals_table(rows, limit=len(rows), width=None))
+        console.print(proposals_table(rows, limit=len(rows), width=max(60, console.width)))
     if source == "ledger":
         console.print("(no daemon running: read from the ledger)", style="dim")
     print_caution(console)

@@ -128,5 +128,22 @@ def snapshot_from_ledger(ledger: Ledger, *, session: str) -> Snapshot:
     warnings = tuple(f"{reason}: {message}" for _path, reason, message
                      in ledger.recent_quarantined(5))
     return Snapshot(state="offline", session=session, counts=counts, warnings=warnings,
-                    frames_per_s=0.0, lag_s=0.0)
+                    frames_per_s=0.0, lag_s=0.0, last=_last_done(ledger, session))
+
+
+def _last_done(ledger: Ledger, session: str) -> LastFrame | None:
+    """The newest done frame, from its ``summary.json`` (None when there is none to read)."""
+    import json
+    from pathlib import Path
+
+    done = [r for r in ledger.rows(state="done") if r.frame_id and r.finished_at]
+    if not done:
+        return None
+    newest = max(done, key=lambda r: r.finished_at)
+    try:
+        summary = json.loads((Path(session) / "frames" / newest.frame_id / "summary.json")
+                             .read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None  # outputs moved or unreadable: the counts still stand
+    return last_frame_from_summary(summary)
 

@@ -63,7 +63,11 @@ def render_status(snap: Snapshot):
     grid.add_column(no_wrap=True, overflow="ellipsis", max_width=66)
 
     grid.add_row("session", shorten_path(snap.session, 66))
-    grid.add_row("watching", shorten_path(snap.watch, 66) if snap.watch else "(socket only)")
+    if snap.state == "offline":
+        watching = "(no daemon running: counts from the ledger)"
+    else:
+        watching = shorten_path(snap.watch, 66) if snap.watch else "(socket only)"
+    grid.add_row("watching", watching)
 
     frames = Text()
     frames.append(f"{c.get('done', 0)} done", style="green")
@@ -151,25 +155,32 @@ def _nm(v) -> str:
     return "-" if v is None else f"{v:.1f}"
 
 
-def proposals_table(rows, *, limit: int = _MAX_PROPOSALS, width: int | None = 80) -> Table:
-    """Proposals with their ids: state, score, centre and size (nm), reason."""
+def proposals_table(rows, *, limit: int = _MAX_PROPOSALS, width: int = 80) -> Table:
+    """Proposals with their ids: state, score, centre and size (nm), reason.
+
+    The id, state, score, centre and size keep their full width (the operator
+    needs the id to accept); only the reason is shortened to fit.
+    """
     rows = list(rows)
-    t = Table(title=None, box=box.SIMPLE_HEAD, width=width, padding=(0, 1), expand=False,
-              title_justify="left")
-    t.add_column("proposal", no_wrap=True)
-    t.add_column("state", no_wrap=True)
-    t.add_column("score", justify="right", no_wrap=True)
-    t.add_column("centre nm", no_wrap=True)
-    t.add_column("size nm", no_wrap=True)
-    t.add_column("reason", no_wrap=True, overflow="ellipsis", ratio=1)
+    cells = []
     for r in rows[:limit]:
         c = r.get("center_nm") or (None, None)
         sz = r.get("size_nm") or (None, None)
-        state = r.get("state", "")
-        t.add_row(str(r.get("id")), Text(state, style=_PROPOSAL_STYLE.get(state, "")),
-                  "-" if r.get("score") is None else f"{r['score']:.2f}",
-                  f"{_nm(c[0])}, {_nm(c[1])}", f"{_nm(sz[0])} x {_nm(sz[1])}",
-                  str(r.get("reason") or ""))
+        cells.append((str(r.get("id")), r.get("state", ""),
+                      "-" if r.get("score") is None else f"{r['score']:.2f}",
+                      f"{_nm(c[0])}, {_nm(c[1])}", f"{_nm(sz[0])} x {_nm(sz[1])}",
+                      str(r.get("reason") or "")))
+    heads = ("proposal", "state", "score", "centre nm", "size nm")
+    fixed = [max([len(h)] + [len(row[k]) for row in cells]) for k, h in enumerate(heads)]
+    t = Table(title=None, box=box.SIMPLE_HEAD, width=width, padding=(0, 1), expand=False,
+              title_justify="left")
+    for k, head in enumerate(heads):
+        t.add_column(head, no_wrap=True, min_width=fixed[k],
+                     justify="right" if head == "score" else "left")
+    reason_w = max(8, width - sum(fixed) - 2 * len(fixed) - 4)
+    t.add_column("reason", no_wrap=True, overflow="ellipsis", min_width=8, max_width=reason_w)
+    for row in cells:
+        t.add_row(row[0], Text(row[1], style=_PROPOSAL_STYLE.get(row[1], "")), *row[2:])
     if len(rows) > limit:
         t.caption = f"{len(rows) - limit} more: livequant proposals"
     return t

@@ -206,6 +206,9 @@ def test_status_json_from_daemon_and_from_ledger(tmp_path, capsys):
     offline = json.loads(capsys.readouterr().out)
     assert offline["source"] == "ledger" and offline["status"]["state"] == "offline"
     assert offline["status"]["counts"] == live["status"]["counts"]
+    # the newest done frame, read back from its summary.json
+    assert offline["status"]["last"]["frame_id"] in ("s0", "s1")
+    assert offline["status"]["last"]["n_columns"] > 0
     assert status_command(Namespace(**{**vars(args), "json": False})) == 0
     human = capsys.readouterr()
     assert human.out == "" and "2 done" in human.err and "1 quarantined" in human.err

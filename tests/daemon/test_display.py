@@ -115,3 +115,19 @@ def test_proposals_table_and_flags_panel_fit_80_columns():
 def test_no_decisions_keeps_the_plain_panel():
     lines = _render(_busy_snapshot())
     assert "recent flags" not in "\n".join(lines)
+
+
+def test_proposals_table_keeps_ids_and_scores_whole_beside_a_long_reason():
+    from rich.console import Console
+
+    from livequant.display.status import proposals_table
+
+    rows = [{"id": "p0123", "state": "open", "score": 0.97, "center_nm": [-100.25, 67.1],
+             "size_nm": [21.6, 4.0], "reason": "domain-wall: " + "long reason " * 20}]
+    for width in (60, 80, 120):
+        console = Console(width=width, color_system=None, record=True)
+        console.print(proposals_table(rows, width=width))
+        text = console.export_text()
+        line = next(t for t in text.splitlines() if "p0123" in t)
+        assert "0.97" in line and "-100.2, 67.1" in line and "21.6 x 4.0" in line
+        assert max(len(t) for t in text.splitlines()) <= width
