@@ -87,10 +87,54 @@ def find_lattice(image, *, min_spacing_px=4.0, max_spacing_fraction=0.25, min_qu
         raise NoLatticeError("no lattice: the periodic peaks are all collinear (fringes, not "
                              "columns)")
     basis = np.linalg.inv(np.stack([g1, g2])).T  # rows a, b: a_i . g_j = delta_ij
-    basis, sigma_basis = _order_basis(basis, _propagate(np.stack([g1, g2]), sigma_g))
+    sigma_basis = _propagate(np.stack([g1, g2]), sigma_g)
+    basis, sigma_basis = _halve_superperiods(crop, basis, sigma_basis, min_spacing_px)
+    basis, sigma_basis = _order_basis(basis, sigma_basis)
     return Lattice(basis_px=readonly(basis), sigma_basis_px=readonly(sigma_basis),
                    origin_px=readonly(np.array([image.shape[0] / 2.0, image.shape[1] / 2.0])),
                    quality=float(qual), method="fft")
+
+
+def _shift_similarity(crop, shift_rc) -> float:
+    """Correlation coefficient of the crop with itself moved by `shift_rc` (pixels,
+    bilinear), over the part where the two overlap."""
+    from scipy.ndimage import shift as nd_shift
+
+    dr, dc = float(shift_rc[0]), float(shift_rc[1])
+    h, w = crop.shape
+    m = int(np.ceil(max(abs(dr), abs(dc)))) + 1
+    if 2 * m >= min(h, w):
+        return 0.0
+    moved = nd_shift(crop, (-dr, -dc), order=1, mode="nearest")
+    a = crop[m:h - m, m:w - m]
+    b = moved[m:h - m, m:w - m]
+    a = a - a.mean()
+    b = b - b.mean()
+    den = float(np.sqrt(np.sum(a * a) * np.sum(b * b)))
+    return float(np.sum(a * b) / den) if den > 0 else 0.0
+
+
+def _halve_superperiods(crop, basis, sigma_basis, min_spacing_px):
+    """Halve a basis vector whose half is a lattice translation too.
+
+    Where two lattice parameters meet (a film on its substrate) the Fourier peaks
+    of the two split, and a split pair can pass for the harmonics of a period
+    twice the cell's.  A true basis vector v maps the image onto itself while
+    v / 2 does not (on a perovskite it moves A columns onto empty O sites), so a
+    v whose half matches the image about as well as v itself is a superperiod.
+    """
+    basis = np.array(basis, dtype=float)
+    sigma_basis = np.array(sigma_basis, dtype=float)
+    for k in range(2):
+        v = basis[k]
+        if np.hypot(*v) / 2 < min_spacing_px:
+            continue
+        full = _shift_similarity(crop, v)
+        half = _shift_similarity(crop, v / 2)
+        if full > 0.2 and half > 0.8 * full:
+            basis[k] = v / 2
+            sigma_basis[k] = sigma_basis[k] / 2
+    return basis, sigma_basis
 
 
 def _central_crop(image, size):

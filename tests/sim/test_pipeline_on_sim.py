@@ -112,7 +112,10 @@ def test_fourier_basis_is_one_cell_across_a_layered_interface():
     from livequant.analysis.lattice import find_lattice
 
     engine = ScanEngine(Specimen.from_scenario("demo"), drift=DriftModel.none(), seed=2)
-    acq = engine.acquire((-120.0, -58.0), 16.0, (512, 512))
-    lat = find_lattice(acq.pixels)
-    lengths = np.hypot(*lat.basis_px.T)
-    assert np.all((lengths > 12.0) & (lengths < 13.6)), lengths
+    # several noise realisations across the interfaces: split Fourier peaks of the two
+    # lattice parameters once passed for a two-cell period in some of them
+    for centre_y_nm in (-58.0, -58.0, -54.0, -58.0, -62.0, -54.0):
+        acq = engine.acquire((-120.0, centre_y_nm), 16.0, (512, 512))
+        lat = find_lattice(acq.pixels)
+        lengths = np.hypot(*lat.basis_px.T)
+        assert np.all((lengths > 12.0) & (lengths < 13.6)), (centre_y_nm, lengths)
