@@ -88,7 +88,7 @@ def find_lattice(image, *, min_spacing_px=4.0, max_spacing_fraction=0.25, min_qu
                              "columns)")
     basis = np.linalg.inv(np.stack([g1, g2])).T  # rows a, b: a_i . g_j = delta_ij
     sigma_basis = _propagate(np.stack([g1, g2]), sigma_g)
-    basis, sigma_basis = _halve_superperiods(crop, basis, sigma_basis, min_spacing_px)
+    basis, sigma_basis = _divide_superperiods(crop, basis, sigma_basis, min_spacing_px)
     basis, sigma_basis = _order_basis(basis, sigma_basis)
     return Lattice(basis_px=readonly(basis), sigma_basis_px=readonly(sigma_basis),
                    origin_px=readonly(np.array([image.shape[0] / 2.0, image.shape[1] / 2.0])),
@@ -114,26 +114,28 @@ def _shift_similarity(crop, shift_rc) -> float:
     return float(np.sum(a * b) / den) if den > 0 else 0.0
 
 
-def _halve_superperiods(crop, basis, sigma_basis, min_spacing_px):
-    """Halve a basis vector whose half is a lattice translation too.
+def _divide_superperiods(crop, basis, sigma_basis, min_spacing_px):
+    """Divide a basis vector by n (2..5) when v / n is a lattice translation too.
 
     Where two lattice parameters meet (a film on its substrate) the Fourier peaks
     of the two split, and a split pair can pass for the harmonics of a period
-    twice the cell's.  A true basis vector v maps the image onto itself while
-    v / 2 does not (on a perovskite it moves A columns onto empty O sites), so a
-    v whose half matches the image about as well as v itself is a superperiod.
+    two or three times the cell's.  A true basis vector v maps the image onto
+    itself while v / n does not (v / 2 moves perovskite A columns onto empty O
+    sites), so a v whose n-th part matches the image about as well as v itself
+    is a superperiod.
     """
     basis = np.array(basis, dtype=float)
     sigma_basis = np.array(sigma_basis, dtype=float)
     for k in range(2):
         v = basis[k]
-        if np.hypot(*v) / 2 < min_spacing_px:
-            continue
         full = _shift_similarity(crop, v)
-        half = _shift_similarity(crop, v / 2)
-        if full > 0.2 and half > 0.8 * full:
-            basis[k] = v / 2
-            sigma_basis[k] = sigma_basis[k] / 2
+        if not full > 0.2:
+            continue
+        for n in (5, 4, 3, 2):  # the finest sub-period that is a translation too
+            if np.hypot(*v) / n >= min_spacing_px and _shift_similarity(crop, v / n) > 0.8 * full:
+                basis[k] = v / n
+                sigma_basis[k] = sigma_basis[k] / n
+                break
     return basis, sigma_basis
 
 
