@@ -230,6 +230,7 @@ class ProposalSettings(_Model):
     dwell_time_us: float = Field(default=4.0, gt=0, le=1000)
     max_side_px: int = Field(default=2048, ge=64, le=8192)
     lead_time_s: float = Field(default=10.0, ge=0, le=3600)
+    expire_after_s: float = Field(default=900.0, ge=0)
     auto_accept: bool = False
 
 

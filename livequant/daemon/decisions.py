@@ -142,6 +142,7 @@ class DecisionLoop:
 
     def on_frame(self, view, *, complete_at: float | None = None) -> None:
         """Everything the decision loop does with one finished frame (never raises)."""
+        self._step("expire", lambda _view: self.expire_stale(), view)
         with self._lock:
             self.n_frames += 1
             try:
@@ -264,7 +265,31 @@ class DecisionLoop:
 
     # ------------------------------------------------------------- operator side
 
+    def expire_stale(self) -> list[str]:
+        """Expire open proposals older than ``proposals.expire_after_s`` (ledger, event).
+
+        An old proposal's feature has drifted further than its placement allowed
+        for and the session has moved on; it leaves the open list with a recorded
+        ``expire`` decision instead of waiting there for ever.
+        """
+        limit = self.cfg.expire_after_s
+        if not limit:
+            return []
+        cutoff = self.clock() - limit
+        expired = []
+        with self._lock:
+            for row in self.ledger.proposals(state="open"):
+                if row["created_at"] < cutoff:
+                    note = f"open longer than proposals.expire_after_s = {limit:g} s"
+                    self.ledger.decide(row["id"], "expire", decided_by="auto", note=note)
+                    self.publisher.publish("proposal", {"id": row["id"], "state": "expired",
+                                                        "decided_by": "auto", "note": note})
+                    log.info("proposal %s expired (%s)", row["id"], note)
+                    expired.append(row["id"])
+        return expired
+
     def list(self, state: str | None = None) -> list[dict]:
+        self.expire_stale()
         if state is not None and state not in ("open", "accepted", "rejected", "expired"):
             raise ValueError(f"`state` must be open, accepted, rejected or expired, got "
                              f"{state!r}")
@@ -282,6 +307,7 @@ class DecisionLoop:
 
     def accept(self, pid, *, decided_by: str = "operator", note: str | None = None) -> dict:
         """Accept a proposal: ledger, ``proposal`` event, ``scan-request`` placed for now."""
+        self.expire_stale()
         with self._lock:
             row = self._open(pid)
             prop = proposal_from_json({**row["payload"], "state": "accepted"})
