@@ -31,7 +31,8 @@ def decide(args, request: dict, verb: str) -> int:
     from livequant.commands.proposals import NoDaemon, ask_daemon, print_caution
 
     try:
-        reply = ask_daemon(Path(args.session), request, timeout_s=args.timeout)
+        reply = ask_daemon(Path(args.session), request, timeout_s=args.timeout,
+                           client_key=getattr(args, "client_key", None))
     except NoDaemon as exc:
         print(f"livequant {verb}: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT if "no daemon" in str(exc) else EXIT_FAILURE

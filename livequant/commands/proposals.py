@@ -28,13 +28,9 @@ def register(subparsers) -> None:
         description="List the scan regions proposed in a session, best first. Proposals are "
                     "suggestions: check the dose budget of a beam-sensitive specimen; facility "
                     "procedures and the instrument's interlocks come first.")
-    p.add_argument("--session", metavar="DIR", default=DEFAULT_SESSION,
-                   help=f"session folder (default ./{DEFAULT_SESSION})")
     p.add_argument("--state", choices=STATES, default=None,
                    help="only proposals in this state (default: all)")
-    p.add_argument("--json", action="store_true", help="one JSON object on stdout")
-    p.add_argument("--timeout", type=float, default=3.0, metavar="S",
-                   help="seconds to wait for the daemon's reply (default 3)")
+    add_session_arguments(p)
     p.set_defaults(func=proposals_command)
 
 
@@ -44,15 +40,39 @@ def add_session_arguments(p) -> None:
     p.add_argument("--json", action="store_true", help="one JSON object on stdout")
     p.add_argument("--timeout", type=float, default=3.0, metavar="S",
                    help="seconds to wait for the daemon's reply (default 3)")
+    p.add_argument("--client-key", metavar="FILE", dest="client_key",
+                   help="your CURVE secret key file (client.key_secret from `livequant keys`), "
+                        "for a daemon that requires CURVE")
 
 
-def ask_daemon(session: Path, request: dict, *, timeout_s: float = 3.0) -> dict:
+def _client_keys(client_key, info: dict):
+    """CURVE client keys for the daemon of `info` (daemon.json), or None without a key file."""
+    if not client_key:
+        return None
+    from livequant.daemon.security import CurveClientKeys, _load_secret
+
+    server_public = info.get("curve_server_public")
+    if not server_public:
+        raise NoDaemon("--client-key was given but the daemon does not use CURVE "
+                       "(daemon.json has no curve_server_public)")
+    try:
+        public, secret = _load_secret(Path(client_key).expanduser(), "--client-key")
+    except Exception as exc:  # noqa: BLE001 - SetupError or OSError: say which file
+        raise NoDaemon(str(exc)) from None
+    return CurveClientKeys(public=public, secret=secret,
+                           server_public=server_public.encode("ascii"))
+
+
+def ask_daemon(session: Path, request: dict, *, timeout_s: float = 3.0,
+               client_key: str | None = None) -> dict:
     """Send `request` to the daemon running on `session` and return its reply.
+
+    `client_key` is the CURVE secret key file for a daemon that requires CURVE.
 
     Raises
     ------
     NoDaemon
-        No daemon.json, a dead pid, or no reply within `timeout_s`.
+        No daemon.json, a dead pid, no reply within `timeout_s`, or an unusable key.
     """
     from livequant.daemon import CommandError, SessionPaths, send_command
     from livequant.daemon.session import pid_alive, read_daemon_file
@@ -63,10 +83,14 @@ def ask_daemon(session: Path, request: dict, *, timeout_s: float = 3.0) -> dict:
     if not info or not pid_alive(info.get("pid", -1)) or not endpoint:
         raise NoDaemon(f"no daemon is running on {paths.root} (start one with `livequant run "
                        f"--session {paths.root}`)")
+    curve = _client_keys(client_key, info)
     try:
-        return send_command(endpoint, request, timeout_s=timeout_s)
+        return send_command(endpoint, request, timeout_s=timeout_s, curve=curve)
     except CommandError as exc:
-        raise NoDaemon(f"the daemon (pid {info.get('pid')}) did not answer: {exc}") from None
+        hint = ("" if curve is not None or not info.get("curve_server_public")
+                else " (it requires CURVE: give --client-key FILE)")
+        raise NoDaemon(f"the daemon (pid {info.get('pid')}) did not answer: {exc}{hint}") \
+            from None
 
 
 def _from_ledger(session: Path, state: str | None) -> list[dict]:
@@ -97,7 +121,7 @@ def proposals_command(args) -> int:
     source = "daemon"
     try:
         reply = ask_daemon(Path(args.session), {"cmd": "proposals", "state": args.state},
-                           timeout_s=args.timeout)
+                           timeout_s=args.timeout, client_key=getattr(args, "client_key", None))
         if not reply.get("ok"):
             print(f"livequant proposals: {reply.get('error')}", file=sys.stderr)
             return EXIT_BAD_INPUT

@@ -6,8 +6,6 @@ import json
 import sys
 from pathlib import Path
 
-from livequant.commands.run import DEFAULT_SESSION
-
 __all__ = ["register", "status_command", "query_status"]
 
 
@@ -16,15 +14,14 @@ def register(subparsers) -> None:
         "status", help="counts and state of a session (running or not)",
         description="Ask the daemon running on a session for its status; when none runs, "
                     "report what the session's ledger holds.")
-    p.add_argument("--session", metavar="DIR", default=DEFAULT_SESSION,
-                   help=f"session folder (default ./{DEFAULT_SESSION})")
-    p.add_argument("--json", action="store_true", help="one JSON object on stdout")
-    p.add_argument("--timeout", type=float, default=3.0, metavar="S",
-                   help="seconds to wait for the daemon's reply (default 3)")
+    from livequant.commands.proposals import add_session_arguments
+
+    add_session_arguments(p)
     p.set_defaults(func=status_command)
 
 
-def query_status(session: Path, *, timeout_s: float = 3.0) -> dict:
+def query_status(session: Path, *, timeout_s: float = 3.0,
+                 client_key: str | None = None) -> dict:
     """``{"source": "daemon" | "ledger", "status": {...}}`` for a session folder.
 
     Raises
@@ -32,22 +29,21 @@ def query_status(session: Path, *, timeout_s: float = 3.0) -> dict:
     FileNotFoundError
         When no daemon runs there and there is no ledger either.
     """
-    from livequant.daemon import CommandError, Ledger, SessionPaths, send_command
-    from livequant.daemon.session import pid_alive, read_daemon_file
+    from livequant.commands.proposals import NoDaemon, ask_daemon
+    from livequant.daemon import Ledger, SessionPaths
     from livequant.daemon.status import snapshot_from_ledger
 
     paths = SessionPaths(Path(session).expanduser().resolve())
-    info = read_daemon_file(paths)
     note = None
-    if info and pid_alive(info.get("pid", -1)) and info.get("endpoints", {}).get("commands"):
-        try:
-            reply = send_command(info["endpoints"]["commands"], {"cmd": "status"},
-                                 timeout_s=timeout_s)
-            if reply.get("ok"):
-                return {"source": "daemon", "status": reply["status"]}
-            note = f"daemon replied with an error: {reply.get('error')}"
-        except CommandError as exc:
-            note = f"daemon (pid {info['pid']}) did not answer: {exc}"
+    try:
+        reply = ask_daemon(paths.root, {"cmd": "status"}, timeout_s=timeout_s,
+                           client_key=client_key)
+        if reply.get("ok"):
+            return {"source": "daemon", "status": reply["status"]}
+        note = f"daemon replied with an error: {reply.get('error')}"
+    except NoDaemon as exc:
+        if "no daemon is running" not in str(exc):
+            note = str(exc)
     if not paths.ledger.exists():
         raise FileNotFoundError(f"{paths.root}: no daemon running and no ledger; is this a "
                                 "session folder? (give --session DIR)")
@@ -63,7 +59,8 @@ def status_command(args) -> int:
     from livequant.cli import EXIT_BAD_INPUT
 
     try:
-        result = query_status(Path(args.session), timeout_s=args.timeout)
+        result = query_status(Path(args.session), timeout_s=args.timeout,
+                              client_key=getattr(args, "client_key", None))
     except FileNotFoundError as exc:
         print(f"livequant status: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT

@@ -262,3 +262,23 @@ def test_a_handler_returning_nonsense_is_an_error_reply():
                                                        "nan": lambda r: {"v": object()}})
     assert "not a dict" in server.answer(b'{"cmd": "status"}')["error"]
     assert json.loads(server.reply_bytes(b'{"cmd": "nan"}'))["ok"] is True  # default=str
+
+
+def test_operator_commands_reach_a_curve_daemon_with_their_client_key(tmp_path, curve_daemon,
+                                                                      capsys):
+    """`livequant status --client-key FILE` talks to a daemon that requires CURVE (the
+    server's public key comes from daemon.json); without the key it says why it fell
+    back to the ledger."""
+    from livequant.cli import main
+
+    d, keys = curve_daemon
+    session = str(tmp_path / "session")
+    assert main(["status", "--session", session, "--json", "--timeout", "10",
+                 "--client-key", str(keys["client_secret"])]) == 0
+    assert json.loads(capsys.readouterr().out)["source"] == "daemon"
+    assert main(["status", "--session", session, "--json", "--timeout", "1.5"]) == 0
+    fallback = json.loads(capsys.readouterr().out)
+    assert fallback["source"] == "ledger" and "--client-key" in fallback["note"]
+    assert main(["proposals", "--session", session, "--json", "--timeout", "10",
+                 "--client-key", str(keys["client_secret"])]) == 0
+    assert json.loads(capsys.readouterr().out)["source"] == "daemon"
