@@ -112,6 +112,14 @@ class CellsSettings(_Model):
         return self
 
 
+class ScanDriftSettings(_Model):
+    """Undo the in-frame distortion of a steady specimen drift (analysis.scan_drift)."""
+
+    enabled: bool = True
+    flyback_s: float = Field(default=0.0, ge=0, le=1.0)
+    min_drift_pairs: int = Field(default=2, ge=1)
+
+
 class AnalysisSettings(_Model):
     lattice: LatticeSettings = LatticeSettings()
     detection: DetectionSettings = DetectionSettings()
@@ -119,6 +127,7 @@ class AnalysisSettings(_Model):
     sublattice: SublatticeSettings = SublatticeSettings()
     calibration: CalibrationSettings = CalibrationSettings()
     cells: CellsSettings = CellsSettings()
+    scan_drift: ScanDriftSettings = ScanDriftSettings()
     material: str | None = None
 
 

@@ -150,6 +150,35 @@ class FrameResult:
         return out
 
 
+def _undo_scan_drift(columns, frame, shape, cfg, velocity):
+    """Columns moved back to the frame's middle time (or unchanged), and what was done."""
+    if velocity is None:
+        return columns, None
+    info = {"velocity_nm_per_s": [float(v) for v in np.asarray(velocity, float).reshape(2)],
+            "flyback_s": cfg.flyback_s, "applied": False}
+    if not cfg.enabled:
+        info["reason"] = "analysis.scan_drift.enabled is false"
+        return columns, info
+    dwell = frame.meta.dwell_time_us
+    if not dwell:
+        info["reason"] = "the frame gives no dwell time: line timing unknown"
+        return columns, info
+    from dataclasses import replace
+
+    from livequant.analysis.scan_drift import correct_scan_drift, line_time_s
+    from livequant.analysis.types import readonly
+
+    moved = correct_scan_drift(columns.positions_px, velocity_nm_per_s=velocity,
+                               pixel_size_pm=frame.meta.pixel_size_pm,
+                               scan_rotation_deg=frame.meta.scan_rotation_deg, shape=shape,
+                               dwell_time_us=dwell, flyback_s=cfg.flyback_s)
+    shift = np.hypot(*(moved - columns.positions_px).T)
+    info.update(applied=True, line_time_s=line_time_s(cols=shape[1], dwell_time_us=dwell,
+                                                      flyback_s=cfg.flyback_s),
+                max_shift_px=float(shift.max()) if shift.size else 0.0)
+    return replace(columns, positions_px=readonly(moved)), info
+
+
 def _strain_reference(cells_cfg, shape):
     """The strain reference for compute_cells: a name, or a pixel mask of the region."""
     if cells_cfg.reference != "region":
@@ -197,7 +226,8 @@ def limit_threads(n_threads: int) -> int:
     return n
 
 
-def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult:
+def analyze_frame(frame: Frame, settings: Settings | None = None, *,
+                  scan_drift_nm_per_s=None) -> FrameResult:
     """Run lattice finding, column detection, site assignment and refinement.
 
     Parameters
@@ -205,6 +235,13 @@ def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult
     frame : Frame
     settings : Settings, optional
         Defaults to the built-in defaults.
+    scan_drift_nm_per_s : (vx, vy), optional
+        The specimen's drift velocity on the stage while the frame was scanned
+        (the daemon's drift model).  With it, and a dwell time in the frame's
+        metadata, the fitted columns are moved back to the frame's middle time
+        (:mod:`livequant.analysis.scan_drift`) before the lattice and the cell
+        descriptors are computed; ``summary()["scan_drift_correction"]`` says
+        what was done.  The GPA strain works on the image and is not corrected.
 
     Returns
     -------
@@ -278,6 +315,9 @@ def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult
     )
     timings["refine"] = time.perf_counter() - t0
 
+    columns, drift_info = _undo_scan_drift(columns, frame, image.shape, cfg.scan_drift,
+                                           scan_drift_nm_per_s)
+
     t0 = time.perf_counter()
     lattice = lattice_from_columns(columns, fallback=fft_lattice)
     calibration = None
@@ -312,7 +352,8 @@ def analyze_frame(frame: Frame, settings: Settings | None = None) -> FrameResult
         cells_message = f"no cell descriptors: {exc}"
     timings["cells"] = time.perf_counter() - t0
     timings["total"] = float(sum(timings.values()))
+    extra = {} if drift_info is None else {"scan_drift_correction": drift_info}
     return FrameResult(**base, status=STATUS_OK, lattice=lattice, columns=columns, cells=cells,
-                       calibration=calibration, timings_s=timings,
+                       calibration=calibration, timings_s=timings, extra=extra,
                        message="; ".join(m for m in (sites.message, columns.message,
                                                      cells_message) if m))

@@ -378,13 +378,20 @@ class Daemon:
             seq, path, _origin = claimed
             self._newest_claimed = max(self._newest_claimed, seq)
             try:
-                fut = self.pool.submit(process_path, path)
+                fut = self.pool.submit(process_path, path, self._scan_drift_velocity())
             except (BrokenProcessPool, RuntimeError) as exc:
                 self.ledger.requeue(seq)
                 self._pool_broke(f"submit failed: {exc}")
                 return
             self._in_flight[seq] = fut
             fut.add_done_callback(lambda f, s=seq: self._on_future_done(s, f))
+
+    def _scan_drift_velocity(self) -> tuple[float, float] | None:
+        """The drift velocity the workers undo inside each frame, once it is measured."""
+        cfg = self.settings.analysis.scan_drift
+        if not cfg.enabled or self.decisions is None:
+            return None
+        return self.decisions.drift_velocity(min_pairs=cfg.min_drift_pairs)
 
     def _on_future_done(self, seq: int, fut: cf.Future) -> None:
         # Runs on the pool's management thread: only hand over, never touch the ledger.

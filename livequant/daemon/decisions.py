@@ -265,6 +265,14 @@ class DecisionLoop:
 
     # ------------------------------------------------------------- operator side
 
+    def drift_velocity(self, *, min_pairs: int = 2) -> tuple[float, float] | None:
+        """The measured drift velocity (stage nm/s), or None before `min_pairs` frame pairs."""
+        with self._lock:
+            if self.model.n_pairs < min_pairs:
+                return None
+            v, _sigma = self.model.velocity()
+            return float(v[0]), float(v[1])
+
     def expire_stale(self) -> list[str]:
         """Expire open proposals older than ``proposals.expire_after_s`` (ledger, event).
 

@@ -102,8 +102,24 @@ def init_worker(settings, analyze_ref, frames_dir: str, n_threads: int | None = 
         limit_threads(n_threads)
 
 
-def process_path(path: str) -> Outcome:
+def _takes_scan_drift(fn) -> bool:
+    """Whether the analysis function accepts ``scan_drift_nm_per_s`` (user ones may not)."""
+    import inspect
+
+    try:
+        params = inspect.signature(fn).parameters
+    except (TypeError, ValueError):
+        return False
+    return "scan_drift_nm_per_s" in params or any(
+        p.kind is inspect.Parameter.VAR_KEYWORD for p in params.values())
+
+
+def process_path(path: str, scan_drift_nm_per_s=None) -> Outcome:
     """Read, analyse and write the outputs of one frame file (runs in a worker).
+
+    `scan_drift_nm_per_s` is the daemon's current drift velocity (stage nm/s),
+    passed on to the analysis to undo the frame's in-scan distortion when the
+    analysis function accepts it.
 
     A frame the readers reject (:class:`FrameError`) and an exception inside the
     analysis both come back as ``state="quarantined"`` with the reason: one bad
@@ -121,7 +137,11 @@ def process_path(path: str) -> Outcome:
         return Outcome(path, "quarantined", reason=exc.reason, message=str(exc))
     t1 = time.perf_counter()
     try:
-        result = _state["analyze"](frame, _state["settings"])
+        analyze = _state["analyze"]
+        if scan_drift_nm_per_s is not None and _takes_scan_drift(analyze):
+            result = analyze(frame, _state["settings"], scan_drift_nm_per_s=scan_drift_nm_per_s)
+        else:
+            result = analyze(frame, _state["settings"])
     except Exception as exc:  # noqa: BLE001 - becomes the frame's quarantine reason
         tb = traceback.format_exception_only(type(exc), exc)[-1].strip()
         return Outcome(path, "quarantined", frame_id=frame.frame_id, reason="analysis-error",
