@@ -97,17 +97,26 @@ def find_lattice(image, *, min_spacing_px=4.0, max_spacing_fraction=0.25, min_qu
 
 def _shift_similarity(crop, shift_rc) -> float:
     """Correlation coefficient of the crop with itself moved by `shift_rc` (pixels,
-    bilinear), over the part where the two overlap."""
-    from scipy.ndimage import shift as nd_shift
+    bilinear), over the part where the two overlap.
 
+    The bilinear resampling is four shifted slices of the crop (what an order-1
+    spline shift gives inside the frame) -- about 5x cheaper than a general shift,
+    which matters because it runs on every frame.
+    """
     dr, dc = float(shift_rc[0]), float(shift_rc[1])
     h, w = crop.shape
     m = int(np.ceil(max(abs(dr), abs(dc)))) + 1
     if 2 * m >= min(h, w):
         return 0.0
-    moved = nd_shift(crop, (-dr, -dc), order=1, mode="nearest")
+    i0, j0 = int(np.floor(dr)), int(np.floor(dc))
+    fr, fc = dr - i0, dc - j0
+
+    def part(di, dj):
+        return crop[m + i0 + di:h - m + i0 + di, m + j0 + dj:w - m + j0 + dj]
+
+    b = ((1 - fr) * ((1 - fc) * part(0, 0) + fc * part(0, 1))
+         + fr * ((1 - fc) * part(1, 0) + fc * part(1, 1)))
     a = crop[m:h - m, m:w - m]
-    b = moved[m:h - m, m:w - m]
     a = a - a.mean()
     b = b - b.mean()
     den = float(np.sqrt(np.sum(a * a) * np.sum(b * b)))

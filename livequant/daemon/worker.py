@@ -94,6 +94,7 @@ def init_worker(settings, analyze_ref, frames_dir: str, n_threads: int | None = 
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     _state["settings"] = settings
     _state["analyze"] = resolve_callable(analyze_ref)
+    _state["takes_scan_drift"] = _takes_scan_drift(_state["analyze"])
     _state["frames_dir"] = Path(frames_dir)
     _state["defaults"] = settings.frame_defaults.as_dict()
     if n_threads is not None:
@@ -138,7 +139,7 @@ def process_path(path: str, scan_drift_nm_per_s=None) -> Outcome:
     t1 = time.perf_counter()
     try:
         analyze = _state["analyze"]
-        if scan_drift_nm_per_s is not None and _takes_scan_drift(analyze):
+        if scan_drift_nm_per_s is not None and _state["takes_scan_drift"]:
             result = analyze(frame, _state["settings"], scan_drift_nm_per_s=scan_drift_nm_per_s)
         else:
             result = analyze(frame, _state["settings"])

@@ -84,6 +84,22 @@ def _deviance_residuals(theta, rows, cols, data):
     return np.sign(data - m) * np.sqrt(2 * np.maximum(term, 0))
 
 
+def _least_squares_reference(img, truth, radius_px):
+    """scipy's least_squares on the Poisson deviance of each truth column's window
+    (the reference library the batched fitter is checked against)."""
+    win = extract_windows(img, truth, radius_px)
+    refs = []
+    for k in range(len(truth)):
+        v = win.valid[k]
+        x0 = [truth[k, 0], truth[k, 1], PEAK, 50.0, 1 / SIGMA_PX**2, 0.0, 1 / SIGMA_PX**2]
+        ref = least_squares(_deviance_residuals, x0, args=(win.rows[k, v], win.cols[k, v],
+                                                           win.data[k, v]),
+                            xtol=1e-12, ftol=1e-12, gtol=1e-12)
+        assert ref.success
+        refs.append(ref)
+    return refs
+
+
 def test_batched_fit_agrees_with_scipy_least_squares():
     """Same windows, same Poisson likelihood: positions agree within 1 % of sigma.
 
@@ -97,14 +113,8 @@ def test_batched_fit_agrees_with_scipy_least_squares():
     img = render_columns((size, size), truth, PEAK, SIGMA_PX, background=50.0, rng=rng)
     cols = refine_columns(img, truth, spacing_px=spacing, window_fraction=0.3,
                           joint_neighbours=False, tolerance_px=1e-7, max_iterations=100)
-    win = extract_windows(img, truth, 0.3 * spacing)
-    for k in range(len(truth)):
-        v = win.valid[k]
-        x0 = [truth[k, 0], truth[k, 1], PEAK, 50.0, 1 / SIGMA_PX**2, 0.0, 1 / SIGMA_PX**2]
-        ref = least_squares(_deviance_residuals, x0, args=(win.rows[k, v], win.cols[k, v],
-                                                           win.data[k, v]),
-                            xtol=1e-12, ftol=1e-12, gtol=1e-12)
-        assert ref.success
+    refs = _least_squares_reference(img, truth, 0.3 * spacing)
+    for k, ref in enumerate(refs):
         diff = np.abs(cols.positions_px[k] - ref.x[:2])
         assert np.all(diff < 0.01 * cols.sigma_positions_px[k]), (diff, cols.sigma_positions_px[k])
         assert cols.amplitude[k] == pytest.approx(ref.x[2], rel=1e-4)
@@ -226,13 +236,7 @@ def test_column_at_the_frame_edge_agrees_with_scipy():
     assert cols.converged.all(), cols.message
     win = extract_windows(img, truth, 0.3 * 32.0)
     assert not win.valid[:3].all(axis=1).any()          # the first three are cut
-    for k in range(len(truth)):
-        v = win.valid[k]
-        x0 = [truth[k, 0], truth[k, 1], PEAK, 50.0, 1 / SIGMA_PX**2, 0.0, 1 / SIGMA_PX**2]
-        ref = least_squares(_deviance_residuals, x0, args=(win.rows[k, v], win.cols[k, v],
-                                                           win.data[k, v]),
-                            xtol=1e-12, ftol=1e-12, gtol=1e-12)
-        assert ref.success
+    for k, ref in enumerate(_least_squares_reference(img, truth, 0.3 * 32.0)):
         diff = np.abs(cols.positions_px[k] - ref.x[:2])
         assert np.all(diff < 0.01 * cols.sigma_positions_px[k]), (diff, cols.sigma_positions_px[k])
 
