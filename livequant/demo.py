@@ -214,8 +214,7 @@ class _Instrument:
                   realtime_clock=True)
 
 
-def run_demo(options: DemoOptions, *, display_factory: Callable | None = None,
-             on_daemon: Callable | None = None) -> DemoOutcome:
+def run_demo(options: DemoOptions, *, display_factory: Callable | None = None) -> DemoOutcome:
     """Run the simulated instrument and the daemon until the demo's time is up.
 
     Parameters
@@ -223,8 +222,6 @@ def run_demo(options: DemoOptions, *, display_factory: Callable | None = None,
     options : DemoOptions
     display_factory : callable, optional
         ``display_factory(daemon) -> context manager`` for the terminal display.
-    on_daemon : callable, optional
-        Called with the daemon once it is built (tests use it to watch it).
 
     Raises
     ------
@@ -245,8 +242,6 @@ def run_demo(options: DemoOptions, *, display_factory: Callable | None = None,
     acquired.mkdir(exist_ok=True)
     daemon = Daemon(settings, session=session, watch=acquired,
                     log_heartbeat=display_factory is None)
-    if on_daemon is not None:
-        on_daemon(daemon)
     stop = threading.Event()
 
     def events_endpoint() -> str | None:

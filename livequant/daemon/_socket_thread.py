@@ -4,16 +4,32 @@ from __future__ import annotations
 
 import threading
 
-__all__ = ["SocketThread"]
+__all__ = ["SocketThread", "bind"]
+
+
+def bind(sock, endpoint: str) -> str:
+    """Bind `sock`; a port of 0 picks a free port.  Returns the endpoint actually bound."""
+    import zmq
+
+    base, _, port = endpoint.rpartition(":")
+    try:
+        if port == "0":
+            sock.bind(f"{base}:*")
+        else:
+            sock.bind(endpoint)
+    except zmq.ZMQError as exc:
+        raise OSError(f"cannot bind {endpoint}: {exc.strerror}; is another daemon running, or "
+                      "is the port in use? choose another in the [daemon] settings") from None
+    return sock.getsockopt(zmq.LAST_ENDPOINT).decode()
 
 
 class SocketThread:
     """A thread that creates, uses and closes one socket (sockets never cross threads).
 
-    Subclasses set ``thread_name`` and ``label``, and implement ``_run``, which
-    must set ``self.bound_endpoint`` (or ``self._error``) and then
-    ``self._ready`` once the socket is bound, and return when ``self._stop``
-    is set.
+    Subclasses set ``thread_name`` and ``label`` and either implement
+    ``_make_socket(zmq)`` (a configured, unbound socket) and
+    ``_on_readable(sock)`` (one incoming message) for the common receive loop,
+    or override ``_run`` and use :meth:`_open` for the bind-and-report step.
     """
 
     thread_name = "socket"
@@ -45,5 +61,41 @@ class SocketThread:
     def is_alive(self) -> bool:
         return self._thread is not None and self._thread.is_alive()
 
-    def _run(self) -> None:  # pragma: no cover - always overridden
+    def _open(self, make_socket):
+        """Create and bind the socket on this thread; report to :meth:`start`.
+
+        Returns the bound socket, or None after recording the error (which
+        :meth:`start` raises in the caller's thread).
+        """
+        import zmq
+
+        sock = None
+        try:
+            sock = make_socket(zmq)
+            self.bound_endpoint = bind(sock, self.endpoint)
+        except BaseException as exc:  # reported to start(), which raises it
+            if sock is not None:
+                sock.close(linger=0)
+            self._error = exc
+            self._ready.set()
+            return None
+        self._ready.set()
+        return sock
+
+    def _run(self) -> None:
+        """Receive until stopped: poll, hand each readable event to ``_on_readable``."""
+        sock = self._open(self._make_socket)
+        if sock is None:
+            return
+        try:
+            while not self._stop.is_set():
+                if sock.poll(200):
+                    self._on_readable(sock)
+        finally:
+            sock.close(linger=0)
+
+    def _make_socket(self, zmq):  # pragma: no cover - overridden by receivers
+        raise NotImplementedError
+
+    def _on_readable(self, sock) -> None:  # pragma: no cover - overridden by receivers
         raise NotImplementedError

@@ -198,37 +198,26 @@ class CommandServer(SocketThread):
             self.n_errors += 1
         return text.encode("utf-8")
 
-    def _run(self) -> None:
+    def _make_socket(self, zmq):
+        from livequant.daemon.security import apply_curve_server
+
+        sock = self.context.socket(zmq.REP)
+        sock.setsockopt(zmq.LINGER, 0)
+        sock.setsockopt(zmq.MAXMSGSIZE, MAX_REQUEST_BYTES)
+        apply_curve_server(sock, self.curve)
+        sock.setsockopt(zmq.SNDTIMEO, 2000)
+        return sock
+
+    def _on_readable(self, sock) -> None:
         import zmq
 
-        from livequant.daemon.security import apply_curve_server
-        from livequant.daemon.sources import _bind
-
+        parts = sock.recv_multipart()
+        self.n_requests += 1
+        reply = self.reply_bytes(parts[0] if len(parts) == 1 else b"<multipart>")
         try:
-            sock = self.context.socket(zmq.REP)
-            sock.setsockopt(zmq.LINGER, 0)
-            sock.setsockopt(zmq.MAXMSGSIZE, MAX_REQUEST_BYTES)
-            apply_curve_server(sock, self.curve)
-            sock.setsockopt(zmq.SNDTIMEO, 2000)
-            self.bound_endpoint = _bind(sock, self.endpoint)
-        except BaseException as exc:
-            self._error = exc
-            self._ready.set()
-            return
-        self._ready.set()
-        try:
-            while not self._stop.is_set():
-                if not sock.poll(200):
-                    continue
-                parts = sock.recv_multipart()
-                self.n_requests += 1
-                reply = self.reply_bytes(parts[0] if len(parts) == 1 else b"<multipart>")
-                try:
-                    sock.send(reply)
-                except zmq.Again:
-                    log.warning("command reply could not be sent (client gone)")
-        finally:
-            sock.close(linger=0)
+            sock.send(reply)
+        except zmq.Again:
+            log.warning("command reply could not be sent (client gone)")
 
 
 def send_command(endpoint: str, request: dict, *, timeout_s: float = 3.0,

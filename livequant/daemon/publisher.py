@@ -30,6 +30,9 @@ import time
 from collections import deque
 from pathlib import Path
 
+from livequant.daemon._socket_thread import SocketThread
+from livequant.daemon.security import apply_curve_server
+
 __all__ = ["EventPublisher", "TOPICS", "EVENTS_NAME"]
 
 log = logging.getLogger(__name__)
@@ -52,7 +55,7 @@ def _clean(value):
     return value
 
 
-class EventPublisher:
+class EventPublisher(SocketThread):
     """Publish events on a PUB socket and append them to ``events.jsonl``.
 
     Parameters
@@ -64,10 +67,13 @@ class EventPublisher:
     events_file : Path
     """
 
+    thread_name = "publisher"
+    label = "events socket"
+
     def __init__(self, context, endpoint: str, events_file: Path, *, curve=None):
         self.context = context
         self.curve = curve  # CurveServerKeys: subscribers must hold an authorised key
-        self.endpoint = endpoint
+        self._init_thread(endpoint)
         self.events_file = Path(events_file)
         self._queue: queue.Queue = queue.Queue(maxsize=10_000)
         self._lock = threading.Lock()
@@ -79,23 +85,14 @@ class EventPublisher:
         self.n_file_errors = 0   # failed appends (each retried later)
         self.n_file_lost = 0     # events dropped from memory after MAX_UNWRITTEN piled up
         self._seq = 0
-        self._thread: threading.Thread | None = None
-        self._ready = threading.Event()
-        self._error: BaseException | None = None
-        self.bound_endpoint: str | None = None
         self.n_published = 0
         self.n_socket_dropped = 0
 
     def start(self, timeout: float = 10.0) -> str | None:
+        """Bind the events socket on its thread (None: file only, no context)."""
         if self.context is None:
             return None
-        self._thread = threading.Thread(target=self._run, name="publisher", daemon=True)
-        self._thread.start()
-        if not self._ready.wait(timeout):
-            raise RuntimeError(f"events socket {self.endpoint}: not ready after {timeout} s")
-        if self._error is not None:
-            raise self._error
-        return self.bound_endpoint
+        return super().start(timeout)
 
     def publish(self, topic: str, data: dict) -> None:
         """Append one event to the file and queue it for the socket (thread-safe)."""
@@ -190,25 +187,22 @@ class EventPublisher:
     def is_alive(self) -> bool:
         return self._thread is None or self._thread.is_alive()
 
+    def _make_socket(self, zmq):
+        sock = self.context.socket(zmq.PUB)
+        apply_curve_server(sock, self.curve)
+        # Subscribers only send subscriptions: a few bytes each.
+        sock.setsockopt(zmq.MAXMSGSIZE, 4096)
+        sock.setsockopt(zmq.LINGER, 500)  # finite: shutdown never hangs on a slow peer
+        sock.setsockopt(zmq.SNDHWM, 1000)
+        return sock
+
     def _run(self) -> None:
         import zmq
 
-        from livequant.daemon.security import apply_curve_server
-        from livequant.daemon.sources import _bind
-
-        try:
-            sock = self.context.socket(zmq.PUB)
-            apply_curve_server(sock, self.curve)
-            # Subscribers only send subscriptions: a few bytes each.
-            sock.setsockopt(zmq.MAXMSGSIZE, 4096)
-            sock.setsockopt(zmq.LINGER, 500)  # finite: shutdown never hangs on a slow peer
-            sock.setsockopt(zmq.SNDHWM, 1000)
-            self.bound_endpoint = _bind(sock, self.endpoint)
-        except BaseException as exc:  # raised by start()
-            self._error = exc
-            self._ready.set()
+        # Not the receive loop of SocketThread: this thread sends what is queued.
+        sock = self._open(self._make_socket)
+        if sock is None:
             return
-        self._ready.set()
         try:
             while True:
                 item = self._queue.get()

@@ -21,12 +21,11 @@ import queue
 import re
 import stat
 import threading
-
-from livequant.daemon._socket_thread import SocketThread
 import time
 from dataclasses import dataclass
 from pathlib import Path
 
+from livequant.daemon._socket_thread import SocketThread
 from livequant.daemon.security import apply_curve_server
 from livequant.frames import (IMAGE_SUFFIXES, MAX_FRAME_PIXELS, FrameError, resolve_meta,
                               sidecar_path, write_frame)
@@ -330,32 +329,20 @@ class SocketSource(SocketThread):
         self.n_received = 0
         self.n_rejected = 0
 
-    def _run(self) -> None:
-        import zmq
+    def _make_socket(self, zmq):
+        sock = self.context.socket(zmq.PULL)
+        sock.setsockopt(zmq.LINGER, 0)
+        sock.setsockopt(zmq.MAXMSGSIZE, self.max_message_bytes)
+        apply_curve_server(sock, self.curve)
+        # Keep the in-memory backlog to a few frames: past it ZeroMQ holds the
+        # sender back instead of buffering gigabytes here.
+        sock.setsockopt(zmq.RCVHWM, 4)
+        return sock
 
-        try:
-            sock = self.context.socket(zmq.PULL)
-            sock.setsockopt(zmq.LINGER, 0)
-            sock.setsockopt(zmq.MAXMSGSIZE, self.max_message_bytes)
-            apply_curve_server(sock, self.curve)
-            # Keep the in-memory backlog to a few frames: past it ZeroMQ holds the
-            # sender back instead of buffering gigabytes here.
-            sock.setsockopt(zmq.RCVHWM, 4)
-            self.bound_endpoint = _bind(sock, self.endpoint)
-        except BaseException as exc:  # reported to start(), which raises it
-            self._error = exc
-            self._ready.set()
-            return
-        self._ready.set()
-        try:
-            while not self._stop.is_set():
-                if not sock.poll(200):
-                    continue
-                parts = sock.recv_multipart(copy=True)
-                self.n_received += 1
-                self._handle(parts)
-        finally:
-            sock.close(linger=0)
+    def _on_readable(self, sock) -> None:
+        parts = sock.recv_multipart(copy=True)
+        self.n_received += 1
+        self._handle(parts)
 
     def _handle(self, parts: list[bytes]) -> None:
         from livequant.wire import decode_frame_message
@@ -392,19 +379,3 @@ class SocketSource(SocketThread):
                 self.on_reject(exc.reason, str(exc))
             return
         put_until(self.out, Candidate(str(path), "socket", received_at), self._stop)
-
-
-def _bind(sock, endpoint: str) -> str:
-    """Bind `sock`; a port of 0 picks a free port.  Returns the endpoint actually bound."""
-    import zmq
-
-    base, _, port = endpoint.rpartition(":")
-    try:
-        if port == "0":
-            sock.bind(f"{base}:*")
-        else:
-            sock.bind(endpoint)
-    except zmq.ZMQError as exc:
-        raise OSError(f"cannot bind {endpoint}: {exc.strerror}; is another daemon running, or "
-                      "is the port in use? choose another in the [daemon] settings") from None
-    return sock.getsockopt(zmq.LAST_ENDPOINT).decode()
