@@ -28,14 +28,14 @@ def register(subparsers) -> None:
 def decide(args, request: dict, verb: str) -> int:
     """Send one decision; print the outcome; exit code per DESIGN.md."""
     from livequant.cli import EXIT_BAD_INPUT, EXIT_FAILURE
-    from livequant.commands.proposals import NoDaemon, ask_daemon, print_caution
+    from livequant.commands.proposals import NoDaemon, NotRunning, ask_daemon, print_caution
 
     try:
         reply = ask_daemon(Path(args.session), request, timeout_s=args.timeout,
                            client_key=getattr(args, "client_key", None))
     except NoDaemon as exc:
         print(f"livequant {verb}: {exc}", file=sys.stderr)
-        return EXIT_BAD_INPUT if "no daemon" in str(exc) else EXIT_FAILURE
+        return EXIT_BAD_INPUT if isinstance(exc, NotRunning) else EXIT_FAILURE
     if args.json:
         print(json.dumps(reply, default=str))
     if not reply.get("ok"):

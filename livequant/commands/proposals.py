@@ -13,13 +13,18 @@ from pathlib import Path
 
 from livequant.commands.run import DEFAULT_SESSION
 
-__all__ = ["register", "proposals_command", "ask_daemon", "NoDaemon", "print_caution"]
+__all__ = ["register", "proposals_command", "ask_daemon", "NoDaemon", "NotRunning",
+           "print_caution"]
 
 STATES = ("open", "accepted", "rejected", "expired")
 
 
 class NoDaemon(RuntimeError):
     """No daemon runs on the session (or it does not answer)."""
+
+
+class NotRunning(NoDaemon):
+    """No daemon runs on the session at all (no daemon.json, a dead pid)."""
 
 
 def register(subparsers) -> None:
@@ -81,7 +86,7 @@ def ask_daemon(session: Path, request: dict, *, timeout_s: float = 3.0,
     info = read_daemon_file(paths)
     endpoint = (info or {}).get("endpoints", {}).get("commands")
     if not info or not pid_alive(info.get("pid", -1)) or not endpoint:
-        raise NoDaemon(f"no daemon is running on {paths.root} (start one with `livequant run "
+        raise NotRunning(f"no daemon is running on {paths.root} (start one with `livequant run "
                        f"--session {paths.root}`)")
     curve = _client_keys(client_key, info)
     try:

@@ -29,7 +29,7 @@ def query_status(session: Path, *, timeout_s: float = 3.0,
     FileNotFoundError
         When no daemon runs there and there is no ledger either.
     """
-    from livequant.commands.proposals import NoDaemon, ask_daemon
+    from livequant.commands.proposals import NoDaemon, NotRunning, ask_daemon
     from livequant.daemon import Ledger, SessionPaths
     from livequant.daemon.status import snapshot_from_ledger
 
@@ -41,9 +41,10 @@ def query_status(session: Path, *, timeout_s: float = 3.0,
         if reply.get("ok"):
             return {"source": "daemon", "status": reply["status"]}
         note = f"daemon replied with an error: {reply.get('error')}"
+    except NotRunning:
+        pass  # the ledger tells what there is to tell
     except NoDaemon as exc:
-        if "no daemon is running" not in str(exc):
-            note = str(exc)
+        note = str(exc)
     if not paths.ledger.exists():
         raise FileNotFoundError(f"{paths.root}: no daemon running and no ledger; is this a "
                                 "session folder? (give --session DIR)")

@@ -97,6 +97,7 @@ class DecisionLoop:
                                     ambiguity_ratio=d.ambiguity_ratio)
         self.planner = Planner.from_settings(self.cfg)
         self._lock = threading.RLock()
+        self._shown_proposals: tuple | None = None  # display rows; None: read again
         self._next_number = 1
         self._latest_frame_end_s: float | None = None
         self.recent_flags: deque[dict] = deque(maxlen=_KEEP_RECENT)
@@ -250,6 +251,7 @@ class DecisionLoop:
             prop = self.planner.place(self._new_id(), cand, drift_nm=d, sigma_drift_nm=sigma,
                                       placed_for_s=target)
             payload = prop.to_json()
+            self._shown_proposals = None
             self.ledger.add_proposal(prop.id, region=prop.region, frame_id=view.frame_id,
                                      score=prop.score, payload=payload)
             self.planner.commit(prop)
@@ -289,6 +291,7 @@ class DecisionLoop:
             for row in self.ledger.proposals(state="open"):
                 if row["created_at"] < cutoff:
                     note = f"open longer than proposals.expire_after_s = {limit:g} s"
+                    self._shown_proposals = None
                     self.ledger.decide(row["id"], "expire", decided_by="auto", note=note)
                     self.publisher.publish("proposal", {"id": row["id"], "state": "expired",
                                                         "decided_by": "auto", "note": note})
@@ -306,7 +309,7 @@ class DecisionLoop:
     def _open(self, pid) -> dict:
         if not isinstance(pid, str) or not pid:
             raise ValueError("give the proposal `id` (a string such as 'p0001')")
-        row = next((r for r in self.ledger.proposals() if r["id"] == pid), None)
+        row = self.ledger.proposal(pid)
         if row is None:
             raise KeyError(f"no proposal with id {pid!r}; list them with `livequant proposals`")
         if row["state"] != "open":
@@ -324,6 +327,7 @@ class DecisionLoop:
             prop = self.planner.replace_placement(prop, drift_nm=d, sigma_drift_nm=sigma,
                                                   placed_for_s=target)
             request = scan_request_fields(prop)
+            self._shown_proposals = None
             self.ledger.decide(pid, "accept", decided_by=decided_by, note=note)
             self.planner.add_visited(prop.candidate.specimen_region)
             self._context_visited(prop.region)
@@ -337,6 +341,7 @@ class DecisionLoop:
     def reject(self, pid, *, why: str | None = None, decided_by: str = "operator") -> dict:
         with self._lock:
             self._open(pid)
+            self._shown_proposals = None
             self.ledger.decide(pid, "reject", decided_by=decided_by, note=why)
             self.publisher.publish("proposal", {"id": pid, "state": "rejected",
                                                 "decided_by": decided_by, "note": why})
@@ -361,16 +366,22 @@ class DecisionLoop:
                     "proposals": self.planner.status(), "auto_accept": self.cfg.auto_accept}
 
     def snapshot_tables(self) -> tuple[tuple, tuple]:
-        """``(proposals, flags)`` for the display: open first, then the latest decided."""
-        rows = list(self.ledger.proposals())
-        open_rows = [r for r in rows if r["state"] == "open"]
-        decided = [r for r in rows if r["state"] != "open"]
-        decided.sort(key=lambda r: r["updated_at"])
-        shown = sorted(open_rows, key=lambda r: -(r["score"] or 0))[:_KEEP_RECENT] + \
-            decided[-3:]
+        """``(proposals, flags)`` for the display: open first, then the latest decided.
+
+        Called on every tick of the main loop, so the proposals table is read from
+        the ledger only after a proposal was added or decided (all of which
+        happens here), not ten times a second.
+        """
         with self._lock:
-            flags = tuple(self.recent_flags)
-        return tuple(_proposal_brief(r) for r in shown), flags
+            if self._shown_proposals is None:
+                rows = list(self.ledger.proposals())
+                open_rows = [r for r in rows if r["state"] == "open"]
+                decided = [r for r in rows if r["state"] != "open"]
+                decided.sort(key=lambda r: r["updated_at"])
+                shown = sorted(open_rows, key=lambda r: -(r["score"] or 0))[:_KEEP_RECENT] + \
+                    decided[-3:]
+                self._shown_proposals = tuple(_proposal_brief(r) for r in shown)
+            return self._shown_proposals, tuple(self.recent_flags)
 
 
 def _number(pid: str) -> int:

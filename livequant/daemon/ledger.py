@@ -489,15 +489,26 @@ class Ledger:
         return [{"id": i, "proposal_id": p, "decision": d, "decided_by": b, "note": n,
                  "decided_at": t} for i, p, d, b, n, t in rows]
 
+    _PROPOSAL_SQL = ("SELECT id, frame_id, score, region_json, state, payload_json, created_at, "
+                     "updated_at FROM proposals")
+
     def proposals(self, *, state: str | None = None) -> Iterator[dict]:
-        sql = ("SELECT id, frame_id, score, region_json, state, payload_json, created_at, "
-               "updated_at FROM proposals")
-        rows = (self._all(sql + " WHERE state=? ORDER BY created_at", (state,)) if state
-                else self._all(sql + " ORDER BY created_at"))
-        for pid, fid, score, region, st, payload, created, updated in rows:
-            yield {"id": pid, "frame_id": fid, "score": score, "region": json.loads(region),
-                   "state": st, "payload": None if payload is None else json.loads(payload),
-                   "created_at": created, "updated_at": updated}
+        rows = (self._all(self._PROPOSAL_SQL + " WHERE state=? ORDER BY created_at", (state,))
+                if state else self._all(self._PROPOSAL_SQL + " ORDER BY created_at"))
+        for row in rows:
+            yield _proposal_dict(row)
+
+    def proposal(self, proposal_id: str) -> dict | None:
+        """One proposal by its id (the primary key), or None."""
+        row = self._one(self._PROPOSAL_SQL + " WHERE id=?", (proposal_id,))
+        return None if row is None else _proposal_dict(row)
+
+
+def _proposal_dict(row) -> dict:
+    pid, fid, score, region, st, payload, created, updated = row
+    return {"id": pid, "frame_id": fid, "score": score, "region": json.loads(region),
+            "state": st, "payload": None if payload is None else json.loads(payload),
+            "created_at": created, "updated_at": updated}
 
 
 def _json_or_none(value) -> str | None:
