@@ -107,14 +107,12 @@ def demo_settings(options: DemoOptions):
         "daemon.heartbeat_s": 5.0,
         "workers": options.workers,
     }
+    if options.auto_accept:
+        overrides["proposals.auto_accept"] = True
     settings = load_settings(options.config_file, overrides=overrides)
-    extra: dict[str, Any] = {}
-    if settings.analysis.material is None:
-        extra["analysis.material"] = "PbTiO3"   # the demo specimen's film
-    if options.auto_accept and hasattr(settings, "proposals"):
-        extra["proposals.auto_accept"] = True
-    if extra:
-        settings = load_settings(options.config_file, overrides={**overrides, **extra})
+    if settings.analysis.material is None:   # the demo specimen's film, unless you chose one
+        settings = settings.model_copy(update={
+            "analysis": settings.analysis.model_copy(update={"material": "PbTiO3"})})
     return settings
 
 

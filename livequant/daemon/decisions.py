@@ -234,9 +234,7 @@ class DecisionLoop:
         self._context_visited(geometry.footprint())
 
     def _context_visited(self, stage_region: dict) -> None:
-        add = getattr(self.context, "add_visited", None)
-        if add is not None:
-            add(dict(stage_region))
+        self.context.add_visited(dict(stage_region))
 
     def _propose(self, view, geometry, flags, flag_ids, t_mid) -> None:
         d_seen, _ = self.model.position_of(view.frame_id, t_mid)

@@ -375,9 +375,6 @@ class DriftModel:
     def n_pairs(self) -> int:
         return len(self._pairs)
 
-    def anchored(self, frame_id: str) -> bool:
-        return frame_id in self._anchors
-
     # -- the fit
 
     def velocity(self) -> tuple[np.ndarray, float]:
@@ -501,17 +498,17 @@ class DriftTracker:
         """
         if not self._kept and not self.model._anchors:
             self.model.add_anchor(image.frame_id, image.t_s, (0.0, 0.0), 0.0)
-        best, best_frac, best_pred = None, 0.0, None
+        best, best_frac, best_pred, sigma = None, 0.0, None, None
         for ref in self._kept:
             if ref.frame_id == image.frame_id:
                 continue
-            pred, _ = self.model.predict_shift(ref.t_s, image.t_s, frame_id=ref.frame_id)
+            pred, pred_sigma = self.model.predict_shift(ref.t_s, image.t_s,
+                                                        frame_id=ref.frame_id)
             frac = predicted_overlap_fraction(ref, image, pred)
             if frac > best_frac:
-                best, best_frac, best_pred = ref, frac, pred
+                best, best_frac, best_pred, sigma = ref, frac, pred, pred_sigma
         result = None
         if best is not None and best_frac >= self.min_overlap_fraction:
-            _, sigma = self.model.predict_shift(best.t_s, image.t_s, frame_id=best.frame_id)
             radius = float(np.clip(4 * sigma, self.min_search_radius_nm, self.search_radius_nm))
             result = estimate_pair_drift(best, image, predicted_nm=best_pred,
                                          search_radius_nm=radius, prior_sigma_nm=sigma,

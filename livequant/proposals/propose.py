@@ -44,10 +44,6 @@ class Candidate:
     flag_ids: tuple[int, ...]
     rules: tuple[str, ...] = ()
 
-    @property
-    def area_nm2(self) -> float:
-        return self.specimen_region["width_nm"] * self.specimen_region["height_nm"]
-
 
 @dataclass(frozen=True)
 class Proposal:
@@ -189,8 +185,6 @@ class Planner:
     """
 
     min_score: float = 0.3
-    margin_nm: float = 1.0
-    min_size_nm: float = 4.0
     max_size_nm: float = 40.0
     merge_overlap: float = 0.3
     visited_overlap: float = 0.5
@@ -208,7 +202,7 @@ class Planner:
 
     @classmethod
     def from_settings(cls, cfg) -> "Planner":
-        keys = ("min_score", "margin_nm", "min_size_nm", "max_size_nm", "merge_overlap",
+        keys = ("min_score", "max_size_nm", "merge_overlap",
                 "visited_overlap", "max_per_frame", "max_per_session", "pixel_size_pm",
                 "dwell_time_us", "max_side_px")
         return cls(**{k: getattr(cfg, k) for k in keys})

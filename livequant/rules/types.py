@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from functools import cached_property
 from typing import Any, Mapping
 
 import numpy as np
@@ -197,6 +198,17 @@ class FrameView:
     @property
     def ok(self) -> bool:
         return self.status == "ok"
+
+    @cached_property
+    def cell_grid(self):
+        """The cells on their dense ``(i, j)`` grid (a ``CellGrid``), None without cells.
+
+        Built once per frame in the main process and shared by every rule that
+        needs it.
+        """
+        from livequant.rules.builtin._grid import CellGrid
+
+        return None if self.cells is None else CellGrid.from_cells(self.cells)
 
     @classmethod
     def from_result(cls, result, *, image: np.ndarray | None = None,

@@ -107,7 +107,7 @@ def test_after_drift_the_placed_region_contains_the_feature():
                 rule="truth", frame_id=acq.frame_id)
     d_seen, _ = tracker.model.position_of(im.frame_id, im.t_s)
     cand = candidate_from_flag(flag, im.geometry, flag_id=1, t_seen_s=im.t_s, drift_nm=d_seen)
-    planner = Planner(pixel_size_pm=20.0, min_size_nm=5.0, margin_nm=1.0)
+    planner = Planner(pixel_size_pm=20.0)
     assert planner.plan([cand]) == [cand]
     eng.wait(120.0)
     t_scan = eng.time_s + 0.5 * eng.frame_time_s((300, 300), 2.0)

@@ -49,7 +49,7 @@ import numpy as np
 from scipy import ndimage
 
 from livequant.config import AnomalyRuleSettings
-from livequant.rules.builtin._grid import CellGrid, check_descriptor_names
+from livequant.rules.builtin._grid import check_descriptor_names
 from livequant.rules.hookspecs import hookimpl
 from livequant.rules.types import Flag, Region
 
@@ -73,7 +73,7 @@ class AnomalyRule:
         if cells is None or len(cells["i"]) == 0:
             return []
         cfg = self.cfg
-        grid = CellGrid.from_cells(cells)
+        grid = view.cell_grid
         flags = []
         for name in cfg.descriptors:
             st = context.stats.get(name)

@@ -41,7 +41,6 @@ import numpy as np
 
 from livequant.analysis.walls import WIDTH_80_FACTOR, find_wall
 from livequant.config import DomainWallRuleSettings
-from livequant.rules.builtin._grid import CellGrid
 from livequant.rules.hookspecs import hookimpl
 from livequant.rules.types import Flag, Region
 
@@ -79,7 +78,7 @@ class DomainWallRule:
         if chi2 > cfg.max_reduced_chi2:
             return []
         px = view.pixel_size_pm
-        grid = CellGrid.from_cells(cells)
+        grid = view.cell_grid
         if not _finite(grid.cell_px):
             return []
         width_px = float(wall["width"]) / px

@@ -131,7 +131,7 @@ class InterfaceRule:
         cfg = self.cfg
         if cells is None or len(cells["i"]) < 4 * cfg.window_rows:
             return []
-        grid = CellGrid.from_cells(cells)
+        grid = view.cell_grid
         if not math.isfinite(grid.cell_px):
             return []
         W = cfg.window_rows

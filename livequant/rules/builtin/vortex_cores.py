@@ -52,7 +52,6 @@ import numpy as np
 from scipy import ndimage
 
 from livequant.config import VortexRuleSettings
-from livequant.rules.builtin._grid import CellGrid
 from livequant.rules.hookspecs import hookimpl
 from livequant.rules.types import Flag, Region
 
@@ -177,7 +176,7 @@ class VortexCoreRule:
         L = cfg.loop_cells
         if cells is None or len(cells["i"]) < (L + 1) ** 2:
             return []
-        grid = CellGrid.from_cells(cells)
+        grid = view.cell_grid
         dx, dy = grid.dense(cells["dx_pm"]), grid.dense(cells["dy_pm"])
         sd = grid.dense(cells["sigma_d_pm"])
         ok = np.isfinite(dx) & np.isfinite(dy) & np.isfinite(sd) & (sd > 0)
