@@ -36,6 +36,7 @@ __all__ = [
     "MAX_FRAME_PIXELS",
     "write_frame",
     "write_json_atomic",
+    "write_text_atomic",
     "check_pixels",
     "check_not_constant",
     "check_inside",
@@ -453,19 +454,27 @@ def write_frame(directory: str | os.PathLike, stem: str, pixels: np.ndarray,
     return final
 
 
-def write_json_atomic(path: str | os.PathLike, data: Any) -> None:
-    """Write JSON to a temporary file in the same folder, then rename it into place."""
+def write_text_atomic(path: str | os.PathLike, text: str) -> None:
+    """Write text to a temporary file in the same folder, then rename it into place.
+
+    A reader never sees half a file.  On any failure (disk full, killed half-way)
+    no temporary file is left behind; the caller sees the error and the old
+    file (if any) is untouched.
+    """
     path = Path(path)
     tmp = path.with_name(f".{path.name}.part")
     try:
-        with open(tmp, "w", encoding="utf-8") as fh:
-            json.dump(data, fh, indent=1, default=str)
+        with open(tmp, "w", encoding="utf-8", newline="") as fh:
+            fh.write(text)
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, path)
     except BaseException:
-        # Disk full or killed half-way: leave no temporary file behind; the
-        # caller sees the error and the old file (if any) is untouched.
         with contextlib.suppress(OSError):
             os.unlink(tmp)
         raise
+
+
+def write_json_atomic(path: str | os.PathLike, data: Any) -> None:
+    """Write JSON atomically (see :func:`write_text_atomic`)."""
+    write_text_atomic(path, json.dumps(data, indent=1, default=str))

@@ -12,7 +12,7 @@ from pathlib import Path
 
 import numpy as np
 
-from livequant.frames import write_json_atomic
+from livequant.frames import write_json_atomic, write_text_atomic
 
 __all__ = ["COLUMN_FIELDS", "COLUMN_EXTRA_FIELDS", "write_frame_outputs", "columns_rows",
            "write_text_atomic", "read_columns_csv"]
@@ -24,24 +24,6 @@ COLUMN_FIELDS = ("x_px", "y_px", "x_pm", "y_pm", "sigma_x_pm", "sigma_y_pm", "am
 #: under the column (counts per pixel) and the reduced chi-square of its fit window.
 #: Files written before these existed lack them; :func:`read_columns_csv` gives NaN then.
 COLUMN_EXTRA_FIELDS = ("background", "reduced_chi2")
-
-
-def write_text_atomic(path: str | os.PathLike, text: str) -> None:
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.part")
-    try:
-        with open(tmp, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        # Disk full or an unwritable folder: no temporary file left behind.
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
 
 
 def _column_table(result) -> list[list[str]]:

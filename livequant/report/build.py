@@ -129,7 +129,7 @@ def build_report(session_dir: str | Path, *, out_dir: str | Path | None = None,
     frame_sections: list[Section] = []
     for fid in chosen:
         try:
-            fd = load_frame(session, fid)
+            fd = load_frame(session, fid, summary=summaries.get(fid))
         except (OSError, ValueError) as exc:
             msg = f"frame {fid}: its outputs could not be read ({exc}); it is left out"
             log.warning(msg)
@@ -138,13 +138,15 @@ def build_report(session_dir: str | Path, *, out_dir: str | Path | None = None,
         frame_data.append(fd)
         frame_sections += _frame_sections(fd, session, figs)
     intro_frames = Section("frames", "Frames of interest", paragraphs=[
-        "Frames with flags come first, then the most recent ones." if not frames else
+        "Frames with flags come first (one for each kind of finding first), then the most "
+        "recent ones." if not frames else
         "The frames named on the command line.",
         f"{len(frame_data)} frame(s) drawn in full: " + (", ".join(fd.frame_id for fd in
                                                                 frame_data) or "none") + "."])
     sections.append(intro_frames)
     sections += frame_sections
-    sections.append(_histogram_section(session, figs, histogram_frames))
+    sections.append(_histogram_section(session, figs, histogram_frames,
+                                       loaded={fd.frame_id: fd.cells for fd in frame_data}))
     sections.append(_fit_quality_section(frame_data, figs, gain))
     sections.append(_throughput_section(session, figs, t0))
     if notes:
@@ -538,7 +540,8 @@ def _frame_sections(fd: FrameData, session: SessionData, figs: _Figures) -> list
 # ----------------------------------------------------------------- session-wide
 
 
-def _histogram_section(session: SessionData, figs: _Figures, max_frames: int) -> Section:
+def _histogram_section(session: SessionData, figs: _Figures, max_frames: int, *,
+                       loaded: dict | None = None) -> Section:
     done = session.done_ids()
     if len(done) > max_frames:
         idx = np.unique(np.linspace(0, len(done) - 1, max_frames).round().astype(int))
@@ -548,16 +551,19 @@ def _histogram_section(session: SessionData, figs: _Figures, max_frames: int) ->
     values: dict[str, list[np.ndarray]] = {name: [] for name, *_ in _HIST_FIELDS}
     pol: list[np.ndarray] = []
     unread = 0
+    loaded = loaded or {}
     for fid in picked:
-        path = session.frame_dir(fid) / "cells.csv"
-        if not path.exists():
-            continue
-        try:
-            cells = read_cells_csv(path)
-        except (OSError, ValueError) as exc:
-            unread += 1
-            log.warning("%s", exc)
-            continue
+        cells = loaded.get(fid)   # the frames drawn in full are read already
+        if cells is None:
+            path = session.frame_dir(fid) / "cells.csv"
+            if not path.exists():
+                continue
+            try:
+                cells = read_cells_csv(path)
+            except (OSError, ValueError) as exc:
+                unread += 1
+                log.warning("%s", exc)
+                continue
         for name in values:
             if name in cells:
                 values[name].append(cells[name])

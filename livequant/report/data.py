@@ -23,7 +23,7 @@ import numpy as np
 
 from livequant.daemon.ledger import LEDGER_NAME, STATES, Ledger
 from livequant.outputs import read_columns_csv
-from livequant.proposals.geometry import rect_corners
+from livequant.proposals.geometry import FrameGeometry, rect_corners
 
 __all__ = ["SessionData", "FrameData", "FrameRecord", "load_session", "load_frame",
            "frames_of_interest", "read_cells_csv", "thompson_sigma_pm", "column_crlb_pm",
@@ -222,8 +222,10 @@ class FrameData:
         return self.summary.get("cells") or {}
 
 
-def load_frame(session: SessionData, frame_id: str) -> FrameData:
+def load_frame(session: SessionData, frame_id: str, *, summary: dict | None = None) -> FrameData:
     """Read one frame's files; the image from the ledger's path when it still exists.
+
+    `summary` is the frame's ``summary.json`` when the caller has read it already.
 
     Raises
     ------
@@ -233,10 +235,11 @@ def load_frame(session: SessionData, frame_id: str) -> FrameData:
     from livequant.frames import FrameError, read_image
 
     folder = session.frame_dir(frame_id)
-    summary_path = folder / "summary.json"
-    if not summary_path.exists():
-        raise FileNotFoundError(f"{summary_path}: no outputs for frame {frame_id!r}")
-    summary = json.loads(summary_path.read_text(encoding="utf-8"))
+    if summary is None:
+        summary_path = folder / "summary.json"
+        if not summary_path.exists():
+            raise FileNotFoundError(f"{summary_path}: no outputs for frame {frame_id!r}")
+        summary = json.loads(summary_path.read_text(encoding="utf-8"))
     columns = cells = None
     if (folder / "columns.csv").exists():
         columns = read_columns_csv(folder / "columns.csv")
@@ -330,20 +333,22 @@ def frames_of_interest(session: SessionData, *, max_frames: int,
 def frame_to_stage(meta: dict, shape, x_px, y_px) -> tuple[np.ndarray, np.ndarray]:
     """Frame pixel ``(x_px, y_px)`` -> stage ``(x_nm, y_nm)``.
 
-    The frame centre ``((cols - 1) / 2, (rows - 1) / 2)`` sits at
-    ``(stage_x_nm, stage_y_nm)``; the fast-scan axis (+x_px) points along
-    ``(cos r, sin r)`` and the slow axis (+y_px) along ``(-sin r, cos r)`` on the
-    stage, ``r`` the scan rotation (the raster convention of the simulated
-    instrument and of the sidecar's ``scan_rotation_deg``).
+    The scan geometry of :class:`livequant.proposals.geometry.FrameGeometry`,
+    built from a ``summary.json`` meta block; NaN where the meta gives no usable
+    pixel size (a report draws what it can).
     """
-    rows, cols = shape
-    px_nm = float(meta.get("pixel_size_pm") or float("nan")) / 1000.0
-    rot = math.radians(float(meta.get("scan_rotation_deg") or 0.0))
-    u = (np.asarray(x_px, float) - (cols - 1) / 2.0) * px_nm
-    v = (np.asarray(y_px, float) - (rows - 1) / 2.0) * px_nm
-    cx, cy = float(meta.get("stage_x_nm") or 0.0), float(meta.get("stage_y_nm") or 0.0)
-    return (cx + u * math.cos(rot) - v * math.sin(rot),
-            cy + u * math.sin(rot) + v * math.cos(rot))
+    try:
+        geo = FrameGeometry(center_x_nm=float(meta.get("stage_x_nm") or 0.0),
+                            center_y_nm=float(meta.get("stage_y_nm") or 0.0),
+                            pixel_size_nm=float(meta.get("pixel_size_pm") or "nan") / 1000.0,
+                            rotation_deg=float(meta.get("scan_rotation_deg") or 0.0),
+                            shape=tuple(shape))
+    except ValueError:
+        nan = np.full(np.broadcast(np.asarray(x_px, float), np.asarray(y_px, float)).shape,
+                      np.nan)
+        return nan, nan.copy()
+    xy = geo.px_to_stage(x_px, y_px)
+    return xy[..., 0], xy[..., 1]
 
 
 def frame_footprint_nm(meta: dict, shape) -> np.ndarray:

@@ -264,8 +264,8 @@ def _cmap_norm(kind: str, finite_values: np.ndarray):
     return (CMAP_MAGNITUDE if kind == "magnitude" else CMAP_SECONDARY), Normalize(lo, hi)
 
 
-def wall_profile_figure(s_nm, p_pm, sigma_p_pm, fit: dict, *, title: str, accepted: bool,
-                        polarization_per_pm: float | None = None) -> Figure:
+def wall_profile_figure(s_nm, p_pm, sigma_p_pm, fit: dict, *, title: str,
+                        accepted: bool) -> Figure:
     """Cells against their distance from the wall, with the fitted ``P0 tanh(s / w)``."""
     s, p, sp = (np.asarray(a, float) for a in (s_nm, p_pm, sigma_p_pm))
     fig = Figure(figsize=(7.0, 4.4), layout="constrained")
