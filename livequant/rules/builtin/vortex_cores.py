@@ -51,16 +51,12 @@ import math
 import numpy as np
 from scipy import ndimage
 
+from livequant.analysis.topology import _wrap  # the same angle convention as the cells
 from livequant.config import VortexRuleSettings
 from livequant.rules.hookspecs import hookimpl
 from livequant.rules.types import Flag, Region
 
 __all__ = ["VortexCoreRule", "loop_windings"]
-
-
-def _wrap(delta):
-    """Wrap angles to (-pi, pi] (as analysis.topology)."""
-    return np.pi - np.mod(np.pi - delta, 2.0 * np.pi)
 
 
 def _perimeter(L: int) -> np.ndarray:
