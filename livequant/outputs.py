@@ -21,9 +21,11 @@ __all__ = ["COLUMN_FIELDS", "COLUMN_EXTRA_FIELDS", "write_frame_outputs", "colum
 COLUMN_FIELDS = ("x_px", "y_px", "x_pm", "y_pm", "sigma_x_pm", "sigma_y_pm", "amplitude",
                  "width_pm", "sublattice", "i", "j")
 #: Extra columns after them (fit quality, for the report): the fitted local background
-#: under the column (counts per pixel) and the reduced chi-square of its fit window.
-#: Files written before these existed lack them; :func:`read_columns_csv` gives NaN then.
-COLUMN_EXTRA_FIELDS = ("background", "reduced_chi2")
+#: under the column (counts per pixel), the reduced chi-square of its fit window, and the
+#: column's significance |amplitude| / sigma(amplitude) (a weak column at low dose is
+#: kept and fitted where the lattice puts it; this says how weak).  Files written before
+#: these existed lack them; :func:`read_columns_csv` gives NaN then.
+COLUMN_EXTRA_FIELDS = ("background", "reduced_chi2", "significance")
 
 
 def _column_table(result) -> list[list[str]]:
@@ -49,7 +51,14 @@ def _column_table(result) -> list[list[str]]:
             fmt("%.6g", cols.amplitude), fmt("%.3f", width_pm),
             [str(v) for v in cols.sublattice.tolist()],
             [str(v) for v in cols.ij[:, 0].tolist()], [str(v) for v in cols.ij[:, 1].tolist()],
-            fmt("%.6g", cols.background), fmt("%.6g", cols.reduced_chi2)]
+            fmt("%.6g", cols.background), fmt("%.6g", cols.reduced_chi2),
+            fmt("%.4g", _significance(cols))]
+
+
+def _significance(cols) -> np.ndarray:
+    """|amplitude| / sigma(amplitude); NaN where the fit failed."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.abs(cols.amplitude) / cols.sigma_amplitude
 
 
 def columns_rows(result) -> list[dict]:

@@ -312,6 +312,11 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
         joint_neighbours=cfg.refine.joint_neighbours,
         weighting=cfg.refine.weighting,
         gain=cfg.refine.gain_counts_per_electron,
+        profile=cfg.refine.profile,
+        halo_radius_fraction=cfg.refine.halo_radius_fraction,
+        halo_rounds=cfg.refine.halo_rounds,
+        min_significance=cfg.refine.min_significance,
+        fixed_shape_fallback=cfg.refine.fixed_shape_fallback,
     )
     timings["refine"] = time.perf_counter() - t0
 

@@ -30,12 +30,15 @@ def test_columns_csv_design_fields_first_then_fit_quality(result, tmp_path):
     folder = write_frame_outputs(res, tmp_path)
     header = (folder / "columns.csv").read_text().splitlines()[0].split(",")
     assert tuple(header[:len(DESIGN_COLUMNS)]) == DESIGN_COLUMNS == COLUMN_FIELDS
-    assert tuple(header[len(DESIGN_COLUMNS):]) == COLUMN_EXTRA_FIELDS == ("background",
-                                                                          "reduced_chi2")
+    assert tuple(header[len(DESIGN_COLUMNS):]) == COLUMN_EXTRA_FIELDS == (
+        "background", "reduced_chi2", "significance")
     cols = read_columns_csv(folder / "columns.csv")
     # the extras are the fit's own values, to the printed precision
     assert cols["background"] == pytest.approx(np.asarray(res.columns.background), rel=1e-5)
     assert cols["reduced_chi2"] == pytest.approx(np.asarray(res.columns.reduced_chi2), rel=1e-5)
+    ok_sig = np.isfinite(np.asarray(res.columns.sigma_amplitude))
+    assert cols["significance"][ok_sig] == pytest.approx(
+        np.abs(res.columns.amplitude[ok_sig]) / res.columns.sigma_amplitude[ok_sig], rel=1e-3)
     # truth: the synthetic frame's constant background is 20 counts per pixel
     ok = np.asarray(res.columns.converged)
     assert np.median(cols["background"][ok]) == pytest.approx(syn.background, abs=3.0)

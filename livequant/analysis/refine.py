@@ -116,7 +116,9 @@ def gaussian_model(theta, rows, cols, *, elliptical=True, jacobian=False):
 
 def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px, window_fraction=0.3,
                    max_iterations=30, tolerance_px=1e-4, elliptical=True, joint_neighbours=True,
-                   weighting="poisson", gain=1.0, neighbour_passes=2) -> Columns:
+                   weighting="poisson", gain=1.0, neighbour_passes=2, profile="gaussian",
+                   halo_radius_fraction=1.5, halo_rounds=2, min_significance=3.0,
+                   fixed_shape_fallback=False) -> Columns:
     """Fit every column with a 2D Gaussian plus a constant local background.
 
     Parameters
@@ -143,6 +145,24 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
         Refit each column against the data minus its neighbours' fitted
         Gaussians (`neighbour_passes` times).
     weighting : {"poisson", "uniform"}
+    profile : {"gaussian", "halo"}
+        What is subtracted of the neighbours before a column is refitted:
+        their fitted Gaussians (``"gaussian"``), or their Gaussians plus the
+        radial halo measured on the frame (``"halo"``,
+        :mod:`livequant.analysis.profile`), which holds the probe tails and
+        channelling a Gaussian misses.
+    halo_radius_fraction : float
+        Radius of the halo profile, in units of `spacing_px`.
+    halo_rounds : int
+        Estimate-and-refit rounds of the halo profile.
+    min_significance : float
+        A fit whose amplitude is below this many standard deviations is noise
+        fitted as a column and counts as failed.
+    fixed_shape_fallback : bool
+        Refit the columns whose free fit failed with their sublattice's median
+        shape held fixed (centre, amplitude and background free): a weak
+        column at low dose cannot support a free width, but its position is
+        still measurable.
     gain : float
         Detector counts per electron, used for the Poisson variance.  The
         reported uncertainties are further scaled by the frame's median
@@ -169,13 +189,23 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
     off_r, off_c = _disk(radius)
     centres = np.rint(pos0).astype(np.int64)
     theta = _initial_theta(image, centres, pos0, off_r, off_c, radius, sublattice, elliptical)
+    theta_init = theta.copy()
     fit = _Fitter(image, centres, off_r, off_c, pos0, radius, elliptical=elliptical,
                   max_iterations=max_iterations, tolerance_px=tolerance_px,
                   weighting=weighting, gain=gain)
     everyone = np.arange(n)
     theta, state = fit(theta, everyone, None)
 
-    passes = 1 + (neighbour_passes if joint_neighbours and n > 1 else 0)
+    if profile not in ("gaussian", "halo"):
+        raise ValueError(f"`profile` must be 'gaussian' or 'halo', got {profile!r}")
+    halo, neighbour_model = None, None
+    if profile == "halo" and n > 1:
+        theta, state, halo, neighbour_model = _halo_rounds(fit, image, theta, theta_init, state, centres,
+                                                  off_r, off_c, radius, spacing_px, sublattice,
+                                                  elliptical, halo_radius_fraction, halo_rounds)
+        passes = 1
+    else:
+        passes = 1 + (neighbour_passes if joint_neighbours and n > 1 else 0)
     render_off = None
     for _ in range(passes - 1):
         if not _neighbours_reach(theta, radius, gain, elliptical).any():
@@ -201,7 +231,23 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
         theta[sub] = th_sub
         for key in state:
             state[key][sub] = st_sub[key]
-    return _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius)
+    n_fallback = 0
+    if fixed_shape_fallback:
+        theta, state, n_fallback = _fixed_shape_refit(fit, theta, theta_init, state, neighbour_model,
+                                                      sublattice, ij, elliptical, min_significance)
+    columns = _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius,
+                          min_significance)
+    extra = dict(columns.extra)
+    extra["profile"] = profile
+    if halo is not None:
+        extra["halo"] = halo.summary()
+    if n_fallback:
+        extra["fixed_shape_refits"] = n_fallback
+    msg = columns.message
+    if n_fallback:
+        msg += f" ({n_fallback} weak columns refitted with their sublattice's shape held fixed)"
+    from dataclasses import replace
+    return replace(columns, extra=extra, message=msg)
 
 
 def starting_parameters(image, positions_px, *, spacing_px, window_fraction=0.3, sublattice=None,
@@ -305,6 +351,270 @@ class _Fitter:
                              state["iterations"], state["chi2"], state["n_valid"])
         return out, state
 
+    def fixed_shape(self, theta, idx, others, max_iterations=40, anchor=None):
+        """(The windows are centred on `anchor` when given.)"""
+        """Levenberg-Marquardt over centre, amplitude and background only, the
+        shape ``theta[:, 4:]`` held fixed; vectorised over the (few) columns
+        `idx`.  Same weights and acceptance tests as the free fit."""
+        theta = np.array(theta, dtype=np.float64)
+        m_cols = len(idx)
+        centres = self.centres[idx] if anchor is None else np.rint(anchor).astype(np.int64)
+        rows, cols, inside, rr, cc = _window_coordinates(self.image.shape, centres,
+                                                         self.off_r, self.off_c)
+        rows, cols = rows.astype(float), cols.astype(float)
+        data = self.image[rr, cc]
+        if others is not None:
+            data = data - others
+        valid = inside.astype(float)
+        n_par = theta.shape[1]
+        p = theta[:, 4:5]
+        q = theta[:, 5:6] if self.elliptical else 0.0
+        s = theta[:, 6:7] if self.elliptical else p
+        sign0 = np.where(theta[:, 2] >= 0, 1.0, -1.0)
+        start = self.start[idx] if anchor is None else anchor
+
+        def evaluate(t, w_fixed=None):
+            dr, dc = rows - t[:, 0:1], cols - t[:, 1:2]
+            G = np.exp(-0.5 * (p * dr * dr + 2 * q * dr * dc + s * dc * dc))
+            AG = t[:, 2:3] * G
+            m = t[:, 3:4] + AG
+            if self.uniform:
+                w = valid
+            else:
+                w = valid / np.maximum(self.gain * np.abs(m), self.floor)
+            r = data - m
+            J = np.stack([AG * (p * dr + q * dc), AG * (q * dr + s * dc), G,
+                          np.ones_like(G)], axis=1)
+            # iteratively reweighted: a step is judged with the weights it was
+            # computed with (as the compiled fit does); its own weights follow
+            cost_fixed = None if w_fixed is None else np.einsum("kp,kp,kp->k", w_fixed, r, r)
+            return np.einsum("kp,kp,kp->k", w, r, r), J, w, r, cost_fixed
+
+        t = theta[:, :4].copy()
+        cost, J, w, r, _ = evaluate(t)
+        lam = np.full(m_cols, 1e-3)
+        done = np.zeros(m_cols, bool)
+        its = np.zeros(m_cols, np.int64)
+        eye = np.eye(4)
+        for _ in range(max_iterations):
+            H = np.einsum("kap,kp,kbp->kab", J, w, J)
+            g = np.einsum("kap,kp,kp->ka", J, w, r)
+            M = H + lam[:, None, None] * H * eye
+            try:
+                step = np.linalg.solve(M, g[..., None])[..., 0]
+            except np.linalg.LinAlgError:
+                step = np.zeros_like(g)
+                for k in range(m_cols):  # rare: a singular window, one by one
+                    try:
+                        step[k] = np.linalg.solve(M[k], g[k])
+                    except np.linalg.LinAlgError:
+                        done[k] = False
+            step[done] = 0.0
+            trial = t + step
+            ok = (np.isfinite(trial).all(axis=1) & (np.sign(trial[:, 2]) == sign0)
+                  & (np.hypot(trial[:, 0] - start[:, 0], trial[:, 1] - start[:, 1])
+                     < 0.5 * self.radius))
+            c_next, J_t, w_t, r_t, c_trial = evaluate(trial, w)
+            cost_now = np.einsum("kp,kp,kp->k", w, r, r)
+            better = ok & np.isfinite(c_trial) & (c_trial <= cost_now) & ~done
+            t[better] = trial[better]
+            cost[better] = c_next[better]
+            J[better], w[better], r[better] = J_t[better], w_t[better], r_t[better]
+            lam = np.where(done, lam, np.where(better, np.maximum(lam / 3, 1e-7), lam * 5))
+            moved = np.hypot(step[:, 0], step[:, 1])
+            its += ~done
+            done |= (better & (moved < 1e-3)) | (~better & (moved * (1 + lam) < 1e-3))
+            done |= lam > 1e8  # stuck: counts as failed below
+            if done.all():
+                break
+        H = np.einsum("kap,kp,kbp->kab", J, w, J)
+        cov = np.full((m_cols, n_par, n_par), np.nan)
+        good = (done & (lam <= 1e8) & np.isfinite(t).all(axis=1) & (np.sign(t[:, 2]) == sign0)
+                & (np.hypot(t[:, 0] - start[:, 0], t[:, 1] - start[:, 1]) < 0.5 * self.radius))
+        det = np.linalg.det(H)
+        good &= np.isfinite(det) & (det > 0)
+        if good.any():
+            cov4 = np.linalg.inv(H[good])
+            c = np.zeros((int(good.sum()), n_par, n_par))
+            c[:, :4, :4] = cov4
+            cov[good] = c
+        out = theta.copy()
+        out[:, :4] = t
+        state = {"converged": good, "iterations": its, "cov": cov, "chi2": cost,
+                 "n_valid": inside.sum(axis=1).astype(np.int64)}
+        return out, state
+
+
+def _window_coordinates(shape, centres, off_r, off_c):
+    """Pixel (row, col) of every window pixel, (K, P) each, whether it lies inside
+    the frame, and the clipped integer indices to read the frame with."""
+    h, w = shape
+    rows = centres[:, 0:1] + off_r[None, :].astype(np.int64)
+    cols = centres[:, 1:2] + off_c[None, :].astype(np.int64)
+    inside = (rows >= 0) & (rows < h) & (cols >= 0) & (cols < w)
+    return rows, cols, inside, np.clip(rows, 0, h - 1), np.clip(cols, 0, w - 1)
+
+
+def _halo_rounds(fit, image, theta, theta_init, state, centres, off_r, off_c, radius, spacing_px,
+                 sublattice, elliptical, radius_fraction, rounds):
+    """Measure the neighbours' halos on the frame and refit every column against
+    the data minus its neighbours' Gaussians and halos (`rounds` times).
+
+    Returns the new ``theta``, ``state``, the last :class:`Halo` (or None) and the
+    neighbours' model in every window (or None)."""
+    from livequant.analysis.profile import estimate_tail, halo_in_windows, render_halos
+
+    # One halo shape for every column, scaled by the column's integrated
+    # intensity: the tails are the probe's, the same under every column.  (One
+    # profile per sublattice is not identifiable on a lattice: an A profile's
+    # ring through the B sites and a B profile fit the image equally well.)
+    labels = np.array(["all"])
+    lab_idx = np.zeros(len(theta), np.int64)
+    everyone = np.arange(len(theta))
+    rows, cols, inside, rr, cc = _window_coordinates(image.shape, centres, off_r, off_c)
+    rows_f, cols_f = rows.astype(float), cols.astype(float)
+    halo, others = None, None
+    for _ in range(max(int(rounds), 0)):
+        good = state["converged"] & np.isfinite(theta).all(axis=1)
+        if good.sum() < 8:
+            break
+        # a failed fit contributes nothing (its parameters may be anywhere)
+        th = np.where(good[:, None], theta, theta_init)
+        th[~good, 2] = 0.0
+        # each Gaussian only where it was fitted (its window); beyond, the
+        # measured tail takes over
+        total = np.zeros(image.shape)
+        _kernels.render_gaussians(th, centres, off_r, off_c, elliptical, total)
+        volume = th[:, 2] * _gaussian_area(th, elliptical)
+        new = estimate_tail(image - total, th[:, :2], volume, window_px=radius,
+                            rho_max_px=radius_fraction * spacing_px, max_gap_px=0.8 * spacing_px,
+                            edge_margin_px=spacing_px)
+        if new is None:
+            break
+        halo = new
+        render_halos(halo, th[:, :2], volume, lab_idx, total)
+        _, own_g, _ = gaussian_model(th, rows_f, cols_f, elliptical=elliptical)
+        own_g = np.where(inside, own_g, 0.0)
+        own_h = halo_in_windows(halo, th[:, :2], volume, lab_idx, rows_f, cols_f)
+        others = np.where(inside, total[rr, cc] - own_g - own_h, 0.0)
+        del total
+        theta, state = fit(th, everyone, others)
+    return theta, state, halo, others
+
+
+def _gaussian_area(theta, elliptical):
+    """Integral of the unit-height Gaussian, ``2 pi / sqrt(det Q)`` (pixels^2)."""
+    if elliptical:
+        det = theta[:, 4] * theta[:, 6] - theta[:, 5] ** 2
+    else:
+        det = theta[:, 4] ** 2
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(det > 0, 2 * np.pi / np.sqrt(np.abs(det)), 0.0)
+
+
+def _predicted_sites(pos, labels, ij, good):
+    """Where the lattice puts every column: the mean of the A corners around its
+    site (the perovskite site convention of :mod:`livequant.analysis.types`) plus
+    its sublattice's median offset from them; NaN with fewer than two corners."""
+    out = np.full(pos.shape, np.nan)
+    ij = np.asarray(ij, dtype=np.int64)
+    a_ok = good & (labels == "A")
+    if a_ok.sum() < 4:
+        return out
+    i0, j0 = ij[a_ok].min(axis=0) - 1
+    n_i, n_j = ij[a_ok].max(axis=0) - (i0, j0) + 2
+    grid = np.full((n_i + 1, n_j + 1, 2), np.nan)
+    gi, gj = ij[a_ok, 0] - i0, ij[a_ok, 1] - j0
+    grid[gi, gj] = pos[a_ok]
+    # corners per site kind, as (di, dj) from the column's own (i, j)
+    corners = {"A": ((-1, 0), (1, 0), (0, -1), (0, 1)), "B": ((0, 0), (1, 0), (0, 1), (1, 1)),
+               "Oa": ((0, 0), (1, 0)), "Ob": ((0, 0), (0, 1))}
+    for lab, offs in corners.items():
+        sel = np.nonzero(labels == lab)[0]
+        if len(sel) == 0:
+            continue
+        ci = ij[sel, 0] - i0
+        cj = ij[sel, 1] - j0
+        stack = []
+        for di, dj in offs:
+            ii, jj = ci + di, cj + dj
+            inside = (ii >= 0) & (ii <= n_i) & (jj >= 0) & (jj <= n_j)
+            v = np.full((len(sel), 2), np.nan)
+            v[inside] = grid[ii[inside], jj[inside]]
+            stack.append(v)
+        stack = np.stack(stack)
+        n_ok = np.isfinite(stack[..., 0]).sum(axis=0)
+        with np.errstate(invalid="ignore"):
+            centre = np.nanmean(stack, axis=0) if len(offs) else stack[0]
+        centre[n_ok < 2] = np.nan
+        ref = good[sel] & np.isfinite(centre).all(axis=1)
+        offset = np.median(pos[sel[ref]] - centre[ref], axis=0) if ref.sum() >= 5 else 0.0
+        out[sel] = centre + offset
+    return out
+
+
+def _fixed_shape_refit(fit, theta, theta_init, state, others, sublattice, ij, elliptical,
+                       min_significance):
+    """Refit with the sublattice's median shape held fixed the columns whose free
+    fit failed, collapsed or came out insignificant.  Returns theta, state and
+    how many columns were refitted."""
+    conv = state["converged"] & np.isfinite(theta).all(axis=1)
+    labels = np.asarray(sublattice).astype(str)
+    if elliptical:
+        p, q, s = theta[:, 4], theta[:, 5], theta[:, 6]
+    else:
+        p, q, s = theta[:, 4], np.zeros(len(theta)), theta[:, 4]
+    with np.errstate(invalid="ignore"):
+        lam_max = (p + s) / 2 + np.sqrt(np.maximum(((p - s) / 2) ** 2 + q * q, 0))
+        minor = 1.0 / np.sqrt(lam_max)
+        sig_amp = np.sqrt(np.abs(state["cov"][:, 2, 2]))
+        weak = np.abs(theta[:, 2]) < min_significance * sig_amp
+    shape = np.full((len(theta), 3), np.nan)
+    sign = np.ones(len(theta))
+    redo = np.zeros(len(theta), bool)
+    names, inv = np.unique(labels, return_inverse=True)
+    for k in range(len(names)):  # a handful of sublattices
+        sel = inv == k
+        ref = sel & conv & ~weak
+        if ref.sum() < 5:
+            continue
+        med_minor = np.median(minor[ref])
+        with np.errstate(invalid="ignore"):
+            collapsed = conv & (minor < _COLLAPSE_FRACTION * med_minor)
+        shape[sel] = np.median(np.stack([p[ref], q[ref], s[ref]], 1), axis=0)
+        sign[sel] = np.sign(np.median(theta[ref, 2])) or 1.0
+        redo |= sel & (~conv | collapsed | weak)
+    idx = np.nonzero(redo)[0]
+    if len(idx) == 0:
+        return theta, state, 0
+    start = theta_init[idx].copy()
+    # start (and stay near) where the lattice puts the site: a weak column's
+    # detected candidate may be a noise peak beside it
+    anchor = _predicted_sites(theta[:, :2], labels, ij, conv & ~weak)[idx]
+    use = np.isfinite(anchor).all(axis=1)
+    anchor[~use] = fit.start[idx[~use]]
+    start[:, :2] = anchor
+    # the sublattice's sign of amplitude (a weak column's starting peak may sit
+    # below its starting background)
+    start[:, 2] = sign[idx] * np.maximum(np.abs(start[:, 2]), 1e-6)
+    start[:, 4] = shape[idx, 0]
+    if elliptical:
+        start[:, 5], start[:, 6] = shape[idx, 1], shape[idx, 2]
+    # the neighbours' model was made for the old windows; keep it where the
+    # window centre did not move
+    sub_others = None
+    if others is not None:
+        sub_others = others[idx].copy()
+        moved = (np.rint(anchor).astype(np.int64) != fit.centres[idx]).any(axis=1)
+        sub_others[moved] = 0.0
+    th, st = fit.fixed_shape(start, idx, sub_others, anchor=anchor)
+    better = st["converged"]
+    theta = theta.copy()
+    theta[idx[better]] = th[better]
+    for key in state:
+        state[key][idx[better]] = st[key][better]
+    return theta, state, int(better.sum())
+
 
 def _neighbours_reach(theta, radius, gain, elliptical):
     """Cheap bound: which columns have a neighbour whose Gaussian exceeds a tenth of
@@ -385,7 +695,8 @@ def _collapsed(minor_width, labels, converged) -> np.ndarray:
     return out
 
 
-def _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius):
+def _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius,
+                min_significance=3.0):
     n = len(theta)
     n_par = theta.shape[1]
     converged = state["converged"].copy()
@@ -408,7 +719,7 @@ def _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radiu
     sig_amp = np.sqrt(np.clip(diag[:, 2], 0, None))
     # an amplitude indistinguishable from zero is noise fitted as a column
     with np.errstate(invalid="ignore", divide="ignore"):
-        significant = np.abs(theta[:, 2]) > 3.0 * sig_amp
+        significant = np.abs(theta[:, 2]) > min_significance * sig_amp
     converged &= significant
     # widths: eigen-decomposition of the covariance Q^-1 of the Gaussian
     if elliptical:

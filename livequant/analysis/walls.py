@@ -246,7 +246,12 @@ def _sandwich_sigmas(jac, sp, axis, noise: DisplacementNoise, keep):
     the covariance of the profile values implied by the column sigmas.
     """
     g = jac / sp[:, None] ** 2
-    a = np.linalg.inv(jac.T @ g)
+    try:
+        a = np.linalg.inv(jac.T @ g)
+    except np.linalg.LinAlgError:
+        # a degenerate fit (e.g. a wall sharper than one cell: the width no
+        # longer changes the profile) has no finite uncertainty
+        return np.full(jac.shape[1], np.nan)
     var_b = (np.asarray(noise.sigma_b_xy)[keep] ** 2) @ axis**2
     meat = (g * var_b[:, None]).T @ g
     ids = np.asarray(noise.corner_ids)[keep]
