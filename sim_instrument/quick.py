@@ -22,7 +22,8 @@ def perovskite_frame(material: str = "SrTiO3", shape=(256, 256), *, pixel_size_p
                      rotation_deg: float = 0.0, b_displacement_pm=(0.0, 0.0),
                      o_displacement_pm: float = 0.0, tilt_deg: float = 0.0,
                      dwell_time_us: float = 2.0, beam_current_pa: float = 20.0,
-                     probe_sigma_pm: float = 40.0, detector: str = "HAADF",
+                     probe_sigma_pm: float = 40.0, probe_tail_fraction: float = 0.0,
+                     probe_tail_sigma_pm: float = 150.0, detector: str = "HAADF",
                      drift_nm_per_s=(0.0, 0.0), center_nm=(0.0, 0.0), noise: bool = True,
                      seed: int = 0, frame_id: str = "quick_00001",
                      materials=None) -> Acquisition:
@@ -46,6 +47,10 @@ def perovskite_frame(material: str = "SrTiO3", shape=(256, 256), *, pixel_size_p
     dwell_time_us, beam_current_pa : float
         Dose per pixel is ``I t / e`` (20 pA, 2 us -> 250 electrons).
     probe_sigma_pm : float
+    probe_tail_fraction, probe_tail_sigma_pm : float
+        A broad weak tail of the probe (fraction of its intensity, and its
+        RMS width): heavy columns then reach into their neighbours, as real
+        probe tails and channelling make them do.
     detector : {"HAADF", "ABF"}
     drift_nm_per_s : (vx, vy)
         Linear drift during the scan (no random walk).
@@ -85,7 +90,8 @@ def perovskite_frame(material: str = "SrTiO3", shape=(256, 256), *, pixel_size_p
         "instrument": {
             "beam_current_pa": beam_current_pa,
             "dwell_time_us": dwell_time_us,
-            "probe": {"sigma_pm": probe_sigma_pm, "tail_fraction": 0.0},
+            "probe": {"sigma_pm": probe_sigma_pm, "tail_fraction": probe_tail_fraction,
+                      "tail_sigma_pm": probe_tail_sigma_pm},
             "drift": {"velocity_nm_per_s": [0.0, 0.0], "random_walk_nm_per_sqrt_s": 0.0},
             "detector": {"mode": detector.upper()},
         },

@@ -30,8 +30,11 @@ def test_bench_reports_ratio_against_the_same_fits(quick_result):
 
 
 def test_bench_reports_stage_split_and_acquisition_fraction(quick_result):
-    (p,) = quick_result["pipeline"]
+    p, physics = quick_result["pipeline"]
     assert p["shape"] == [1024, 1024] and p["n_columns"] > 2000
+    # the physics-like frame: PbTiO3 at 16 pm pixels holds ~1600 cells in 1024 x 1024
+    assert physics["shape"] == [1024, 1024] and physics["n_columns"] > 3000
+    assert "physics-like" in physics["frame"] and "Gaussian" in p["frame"]
     assert p["acquisition_s"] == pytest.approx(1024 * 1024 * 2e-6)   # T = Ny Nx t_px
     assert p["fraction_of_acquisition"] == pytest.approx(p["seconds"] / p["acquisition_s"])
     stages = p["stage_seconds"]

@@ -348,6 +348,19 @@ def _damped_step_lu(H, g, lam, M, step):
 
 
 @njit(cache=True)
+def _hold(H, g, n_free):
+    """Hold parameters `n_free`.. fixed: their gradient is zero and their rows and
+    columns of ``J^T W J`` are those of the identity, so a step never moves them."""
+    n_par = g.shape[0]
+    for a in range(n_free, n_par):
+        g[a] = 0.0
+        for b in range(n_par):
+            H[a, b] = 0.0
+            H[b, a] = 0.0
+        H[a, a] = 1.0
+
+
+@njit(cache=True)
 def physical(t, start_r, start_c, radius, sign0, elliptical):
     """Is `t` a column?  Finite, amplitude of the starting sign, a positive
     definite shape narrower than the window but wider than a tenth of a pixel,
@@ -454,7 +467,7 @@ def _invert_gauss_jordan(H, out):
 @njit(cache=True, parallel=True, error_model="numpy")
 def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_others, radius,
                 gain, floor, uniform, elliptical, max_iterations, tolerance_px,
-                theta_out, cov_out, converged, iterations, cost_out, n_valid):
+                theta_out, cov_out, converged, iterations, cost_out, n_valid, n_free):
     """Levenberg-Marquardt (Fisher scoring with Poisson weights) for columns `idx`.
 
     Column ``k = idx[j]`` starts at ``theta[k]`` in the window at integer
@@ -473,6 +486,10 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
     the uncertainty; the matrix is the one of the point before it), or a
     rejected step whose full size would already be that small.  A column
     whose damping runs away stops, unconverged.
+
+    Only the first `n_free` parameters move (4: centre, amplitude and
+    background, the shape held at ``theta[k]``); the covariance rows and
+    columns of the held ones are zero.
     """
     n_par = theta.shape[1]
     n_pix = off_r.shape[0]
@@ -488,13 +505,13 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
             _fit_one(image, centres, off_r, off_c, idx[j], j, theta, start, others, has_others,
                      radius, gain, floor, uniform, elliptical, max_iterations, tolerance_px,
                      pix, mats, vecs, theta_out, cov_out, converged, iterations, cost_out,
-                     n_valid)
+                     n_valid, n_free)
 
 
 @njit(cache=True, error_model="numpy")
 def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_others, radius,
              gain, floor, uniform, elliptical, max_iterations, tolerance_px, pix, mats, vecs,
-             theta_out, cov_out, converged, iterations, cost_out, n_valid):
+             theta_out, cov_out, converged, iterations, cost_out, n_valid, n_free):
     """`fit_columns` for column ``k = idx[j]``, with scratch arrays `pix`, `mats`, `vecs`."""
     n_par = theta.shape[1]
     n_pix = off_r.shape[0]
@@ -536,6 +553,7 @@ def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_other
     trial = vecs[3]
     _, cost = _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain,
                            floor, w_try, w_cur, Gs, H, g)
+    _hold(H, g, n_free)
     lam = 1e-3
     done = False
     it = 0
@@ -555,6 +573,7 @@ def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_other
             c_trial, c_next = _window_pass(d, o, vm, off_r, off_c, trial, cr, cc, elliptical,
                                            uniform, gain, floor, w_cur, w_try, Gs, H_try,
                                            g_try)
+            _hold(H_try, g_try, n_free)
             better = math.isfinite(c_trial) and c_trial <= cost
         if better:
             t[:] = trial
@@ -574,6 +593,10 @@ def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_other
     done = done and physical(t, start[k, 0], start[k, 1], radius, sign0, elliptical)
     if done:
         done = _invert(H, cov_out[j])
+        for a in range(n_free, n_par):
+            for b in range(n_par):
+                cov_out[j, a, b] = 0.0
+                cov_out[j, b, a] = 0.0
     else:
         cov_out[j] = np.nan
     converged[j] = done

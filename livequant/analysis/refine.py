@@ -348,100 +348,36 @@ class _Fitter:
                              np.ascontiguousarray(others), has_others, self.radius, self.gain,
                              self.floor, self.uniform, self.elliptical, self.max_iterations,
                              self.tolerance_px, out, state["cov"], state["converged"],
-                             state["iterations"], state["chi2"], state["n_valid"])
+                             state["iterations"], state["chi2"], state["n_valid"], n_par)
         return out, state
 
-    def fixed_shape(self, theta, idx, others, max_iterations=40, anchor=None):
-        """(The windows are centred on `anchor` when given.)"""
-        """Levenberg-Marquardt over centre, amplitude and background only, the
-        shape ``theta[:, 4:]`` held fixed; vectorised over the (few) columns
-        `idx`.  Same weights and acceptance tests as the free fit."""
-        theta = np.array(theta, dtype=np.float64)
-        m_cols = len(idx)
-        centres = self.centres[idx] if anchor is None else np.rint(anchor).astype(np.int64)
-        rows, cols, inside, rr, cc = _window_coordinates(self.image.shape, centres,
-                                                         self.off_r, self.off_c)
-        rows, cols = rows.astype(float), cols.astype(float)
-        data = self.image[rr, cc]
-        if others is not None:
-            data = data - others
-        valid = inside.astype(float)
-        n_par = theta.shape[1]
-        p = theta[:, 4:5]
-        q = theta[:, 5:6] if self.elliptical else 0.0
-        s = theta[:, 6:7] if self.elliptical else p
-        sign0 = np.where(theta[:, 2] >= 0, 1.0, -1.0)
-        start = self.start[idx] if anchor is None else anchor
-
-        def evaluate(t, w_fixed=None):
-            dr, dc = rows - t[:, 0:1], cols - t[:, 1:2]
-            G = np.exp(-0.5 * (p * dr * dr + 2 * q * dr * dc + s * dc * dc))
-            AG = t[:, 2:3] * G
-            m = t[:, 3:4] + AG
-            if self.uniform:
-                w = valid
-            else:
-                w = valid / np.maximum(self.gain * np.abs(m), self.floor)
-            r = data - m
-            J = np.stack([AG * (p * dr + q * dc), AG * (q * dr + s * dc), G,
-                          np.ones_like(G)], axis=1)
-            # iteratively reweighted: a step is judged with the weights it was
-            # computed with (as the compiled fit does); its own weights follow
-            cost_fixed = None if w_fixed is None else np.einsum("kp,kp,kp->k", w_fixed, r, r)
-            return np.einsum("kp,kp,kp->k", w, r, r), J, w, r, cost_fixed
-
-        t = theta[:, :4].copy()
-        cost, J, w, r, _ = evaluate(t)
-        lam = np.full(m_cols, 1e-3)
-        done = np.zeros(m_cols, bool)
-        its = np.zeros(m_cols, np.int64)
-        eye = np.eye(4)
-        for _ in range(max_iterations):
-            H = np.einsum("kap,kp,kbp->kab", J, w, J)
-            g = np.einsum("kap,kp,kp->ka", J, w, r)
-            M = H + lam[:, None, None] * H * eye
-            try:
-                step = np.linalg.solve(M, g[..., None])[..., 0]
-            except np.linalg.LinAlgError:
-                step = np.zeros_like(g)
-                for k in range(m_cols):  # rare: a singular window, one by one
-                    try:
-                        step[k] = np.linalg.solve(M[k], g[k])
-                    except np.linalg.LinAlgError:
-                        done[k] = False
-            step[done] = 0.0
-            trial = t + step
-            ok = (np.isfinite(trial).all(axis=1) & (np.sign(trial[:, 2]) == sign0)
-                  & (np.hypot(trial[:, 0] - start[:, 0], trial[:, 1] - start[:, 1])
-                     < 0.5 * self.radius))
-            c_next, J_t, w_t, r_t, c_trial = evaluate(trial, w)
-            cost_now = np.einsum("kp,kp,kp->k", w, r, r)
-            better = ok & np.isfinite(c_trial) & (c_trial <= cost_now) & ~done
-            t[better] = trial[better]
-            cost[better] = c_next[better]
-            J[better], w[better], r[better] = J_t[better], w_t[better], r_t[better]
-            lam = np.where(done, lam, np.where(better, np.maximum(lam / 3, 1e-7), lam * 5))
-            moved = np.hypot(step[:, 0], step[:, 1])
-            its += ~done
-            done |= (better & (moved < 1e-3)) | (~better & (moved * (1 + lam) < 1e-3))
-            done |= lam > 1e8  # stuck: counts as failed below
-            if done.all():
-                break
-        H = np.einsum("kap,kp,kbp->kab", J, w, J)
-        cov = np.full((m_cols, n_par, n_par), np.nan)
-        good = (done & (lam <= 1e8) & np.isfinite(t).all(axis=1) & (np.sign(t[:, 2]) == sign0)
-                & (np.hypot(t[:, 0] - start[:, 0], t[:, 1] - start[:, 1]) < 0.5 * self.radius))
-        det = np.linalg.det(H)
-        good &= np.isfinite(det) & (det > 0)
-        if good.any():
-            cov4 = np.linalg.inv(H[good])
-            c = np.zeros((int(good.sum()), n_par, n_par))
-            c[:, :4, :4] = cov4
-            cov[good] = c
-        out = theta.copy()
-        out[:, :4] = t
-        state = {"converged": good, "iterations": its, "cov": cov, "chi2": cost,
-                 "n_valid": inside.sum(axis=1).astype(np.int64)}
+    def fixed_shape(self, theta, idx, others, anchor):
+        """The compiled fit of columns `idx` over centre, amplitude and background
+        only, the shape ``theta[idx, 4:]`` held fixed, each window centred on
+        (and the fit kept near) its `anchor` (row, col)."""
+        m, n_par = len(idx), theta.shape[1]
+        has_others = others is not None
+        if not has_others:
+            others = np.zeros((1, len(self.off_r)))
+        centres = self.centres.copy()
+        start = self.start.copy()
+        centres[idx] = np.rint(anchor).astype(np.int64)
+        start[idx] = anchor
+        full = np.zeros((len(self.centres), n_par))
+        full[idx] = theta
+        out = np.empty((m, n_par))
+        state = {"converged": np.zeros(m, bool), "iterations": np.zeros(m, np.int64),
+                 "cov": np.zeros((m, n_par, n_par)), "chi2": np.zeros(m),
+                 "n_valid": np.zeros(m, np.int64)}
+        # a weak column is settled long before 1e-4 px: 1e-3 px is still a
+        # hundredth of its uncertainty
+        _kernels.fit_columns(self.image, centres, self.off_r, self.off_c,
+                             np.ascontiguousarray(idx, dtype=np.int64), full, start,
+                             np.ascontiguousarray(others), has_others, self.radius, self.gain,
+                             self.floor, self.uniform, self.elliptical, self.max_iterations,
+                             max(self.tolerance_px, 1e-3), out, state["cov"],
+                             state["converged"], state["iterations"], state["chi2"],
+                             state["n_valid"], 4)
         return out, state
 
 
@@ -607,7 +543,7 @@ def _fixed_shape_refit(fit, theta, theta_init, state, others, sublattice, ij, el
         sub_others = others[idx].copy()
         moved = (np.rint(anchor).astype(np.int64) != fit.centres[idx]).any(axis=1)
         sub_others[moved] = 0.0
-    th, st = fit.fixed_shape(start, idx, sub_others, anchor=anchor)
+    th, st = fit.fixed_shape(start, idx, sub_others, anchor)
     better = st["converged"]
     theta = theta.copy()
     theta[idx[better]] = th[better]
