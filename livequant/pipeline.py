@@ -33,11 +33,9 @@ STATUS_NO_LATTICE = "no-lattice"
 #: Detectors whose columns are dark on a bright background.
 INVERTED_DETECTORS = ("ABF", "BF", "IBF")
 
-#: Exponent n of the column-strength rule of thumb ``Z^n`` per detector: 1.7 for
-#: HAADF (CHECK-VALUES section 9: n = 1.6-1.9 in practice); about 1/3 for the
-#: bright-field family (a rule of thumb of the trade for ABF, from memory).
-_CONTRAST_EXPONENT = {"HAADF": 1.7, "ADF": 1.7, "ABF": 1.0 / 3.0, "BF": 1.0 / 3.0,
-                      "IBF": 1.0 / 3.0}
+#: Exponent n of the column-strength rule of thumb ``Z^n`` on HAADF (CHECK-VALUES
+#: section 9: n = 1.6-1.9 in practice).
+_HAADF_EXPONENT = 1.7
 _Z_OXYGEN = 8
 
 
@@ -45,14 +43,21 @@ def a_column_stronger(material, detector: str) -> bool:
     """Whether the A column scatters more than the B-O column on this detector.
 
     Along [001] an A column holds one A atom per cell length and the B column
-    one B and one O atom, so with ``Z^n`` per atom the A column is the stronger
-    on HAADF (Sr 38^1.7 > Ti 22^1.7 + O 8^1.7) but usually the weaker on ABF,
-    where n is small (38^(1/3) < 22^(1/3) + 8^(1/3)).  Without a material the A
-    column is assumed the stronger (true of every perovskite on HAADF).
+    one B and one O atom.  On HAADF the atoms add as ``Z^n`` (Sr 38^1.7 >
+    Ti 22^1.7 + O 8^1.7).  On the bright-field family (ABF, BF) they do not:
+    on multislice ABF frames of SrTiO3 (abTEM; tests/data/multislice) the
+    column depths are Sr : Ti-O : O = 2.0 : 1.6 : 1.0, set by each column's
+    heaviest atom (about Z^0.45) with the B column's oxygen adding little, so
+    the A column is the stronger whenever its cation is the heavier.  (An
+    additive ``Z^(1/3)`` rule, used here before, made Ti-O the stronger and
+    swapped A and B on such frames: the tilt then read zero.)  Without a
+    material the A column is assumed the stronger.
     """
     if material is None:
         return True
-    n = _CONTRAST_EXPONENT.get((detector or "HAADF").upper(), 1.7)
+    if (detector or "HAADF").upper() in INVERTED_DETECTORS:
+        return material.z_a >= material.z_b
+    n = _HAADF_EXPONENT
     return material.z_a ** n >= material.z_b ** n + _Z_OXYGEN ** n
 
 
@@ -256,6 +261,11 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
     timings: dict[str, float] = {}
     base = dict(frame_id=frame.frame_id, meta=frame.meta, shape=frame.shape)
 
+    material = get_material(cfg.material) if cfg.material else None
+    expected = None
+    if material is not None and cfg.sublattice.projection == "perovskite_001":
+        px = frame.meta.pixel_size_pm
+        expected = (material.a_pm / px, material.c_pm / px)
     t0 = time.perf_counter()
     try:
         fft_lattice = find_lattice(
@@ -263,6 +273,7 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
             min_spacing_px=cfg.lattice.min_spacing_px,
             max_spacing_fraction=cfg.lattice.max_spacing_fraction,
             min_quality=cfg.lattice.min_quality,
+            expected_spacings_px=expected,
         )
     except NoLatticeError as exc:
         timings["lattice"] = time.perf_counter() - t0
@@ -270,7 +281,6 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
     timings["lattice"] = time.perf_counter() - t0
 
     inverted = (frame.meta.detector or "").upper() in INVERTED_DETECTORS
-    material = get_material(cfg.material) if cfg.material else None
     t0 = time.perf_counter()
     candidates = detect_columns(
         image,

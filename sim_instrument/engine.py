@@ -523,7 +523,8 @@ class ScanEngine:
             q_nm2 = det.haadf_cross_section_pm2 * 1e-6 * columns.scattering(det.haadf_exponent)
             base, sign = det.haadf_background_fraction, 1.0
         else:
-            q_nm2 = det.abf_cross_section_pm2 * 1e-6 * columns.scattering(det.abf_exponent)
+            q_nm2 = det.abf_cross_section_pm2 * 1e-6 * columns.scattering(
+                det.abf_exponent, partner_weight=det.abf_partner_weight)
             base, sign = det.abf_bright_fraction, -1.0
         if probe.tail_fraction > 0:
             # The broad tail is the core image blurred further: a unit Gaussian

@@ -87,10 +87,11 @@ class SpecimenColumns:
         return SpecimenColumns(**{k: getattr(self, k)[mask] for k in (
             "xy_nm", "sublattice", "ij", "z", "z_partner", "occupancy", "layer")})
 
-    def scattering(self, exponent: float) -> np.ndarray:
-        """``occupancy * z**n + z_partner**n`` per column (Z-contrast rule of thumb)."""
+    def scattering(self, exponent: float, *, partner_weight: float = 1.0) -> np.ndarray:
+        """``occupancy * z**n + w * z_partner**n`` per column (Z-contrast rule of thumb;
+        ``w = partner_weight``: 1 adds the B column's oxygen, 0 leaves it out)."""
         partner = np.where(self.z_partner > 0, self.z_partner.astype(float) ** exponent, 0.0)
-        return self.occupancy * self.z.astype(float) ** exponent + partner
+        return self.occupancy * self.z.astype(float) ** exponent + partner_weight * partner
 
 
 @dataclass(frozen=True)

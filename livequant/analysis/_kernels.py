@@ -564,7 +564,11 @@ def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_other
         it += 1
         moved = math.hypot(step[0], step[1])
         ok = physical(trial, start[k, 0], start[k, 1], radius, sign0, elliptical)
-        if ok and moved < tolerance_px:
+        # settled: a step below the tolerance, or below a hundredth of the
+        # centre's own uncertainty (1 / sqrt of the larger diagonal of J^T W J,
+        # a lower bound on it): a weak column's last steps wander in the noise
+        settle = max(tolerance_px, 0.01 / math.sqrt(max(H[0, 0], H[1, 1], 1e-300)))
+        if ok and moved < settle:
             t[:] = trial
             done = True
             break
@@ -584,7 +588,7 @@ def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_other
             lam = max(lam / 3.0, 1e-7)
         else:
             lam = lam * 5.0
-            if moved * (1.0 + lam) < tolerance_px:
+            if moved * (1.0 + lam) < settle:
                 done = True
                 break
             if lam > 1e8:

@@ -35,7 +35,8 @@ class NoLatticeError(ValueError):
     """The frame holds no periodic lattice (blank, noise, amorphous, ...)."""
 
 
-def find_lattice(image, *, min_spacing_px=4.0, max_spacing_fraction=0.25, min_quality=15.0):
+def find_lattice(image, *, min_spacing_px=4.0, max_spacing_fraction=0.25, min_quality=15.0,
+                 expected_spacings_px=None):
     """Find the two shortest lattice vectors of a 2D periodic image.
 
     Parameters
@@ -48,6 +49,14 @@ def find_lattice(image, *, min_spacing_px=4.0, max_spacing_fraction=0.25, min_qu
     min_quality : float
         A Fourier peak counts when its locally averaged power is at least this
         many times the median power at the same spatial frequency.
+    expected_spacings_px : (float, float), optional
+        The material's two in-plane lattice parameters in pixels (from its
+        handbook values and the pixel size).  When the Fourier basis is the
+        centred cell (a / sqrt 2 along the diagonals: A and B columns alike,
+        as on ABF frames or where their (1, 0) reflection nearly cancels) or a
+        doubled one (an octahedral-rotation superstructure), the basis among
+        those related to it by centring or halving that matches these lengths
+        within 12 % is taken instead.
 
     Returns
     -------
@@ -82,13 +91,15 @@ def find_lattice(image, *, min_spacing_px=4.0, max_spacing_fraction=0.25, min_qu
         best = float(ratio.max()) if ratio.size else 0.0
         raise NoLatticeError(f"no lattice: fewer than two periodic peaks reach {min_quality:g}x "
                              f"the background (strongest {best:.1f}x)")
-    g1, g2, qual, sigma_g = _reciprocal_basis(peaks)
+    g1, g2, qual, sigma_g = _reciprocal_basis(peaks, min_quality)
     if g1 is None:
         raise NoLatticeError("no lattice: the periodic peaks are all collinear (fringes, not "
                              "columns)")
     basis = np.linalg.inv(np.stack([g1, g2])).T  # rows a, b: a_i . g_j = delta_ij
     sigma_basis = _propagate(np.stack([g1, g2]), sigma_g)
     basis, sigma_basis = _divide_superperiods(crop, basis, sigma_basis, min_spacing_px)
+    if expected_spacings_px is not None:
+        basis, sigma_basis = _match_expected(basis, sigma_basis, expected_spacings_px)
     basis, sigma_basis = _order_basis(basis, sigma_basis)
     return Lattice(basis_px=readonly(basis), sigma_basis_px=readonly(sigma_basis),
                    origin_px=readonly(np.array([image.shape[0] / 2.0, image.shape[1] / 2.0])),
@@ -145,6 +156,34 @@ def _divide_superperiods(crop, basis, sigma_basis, min_spacing_px):
                 basis[k] = v / n
                 sigma_basis[k] = sigma_basis[k] / n
                 break
+    return basis, sigma_basis
+
+
+def _match_expected(basis, sigma_basis, expected, tolerance=0.12):
+    """The basis related to `basis` by centring, de-centring or halving whose
+    lengths match the `expected` pair best (unchanged when `basis` already
+    matches, or when none of them does)."""
+    expected = np.sort(np.asarray(expected, dtype=float))
+
+    def mismatch(b):
+        lengths = np.sort(np.hypot(b[:, 0], b[:, 1]))
+        return float(np.max(np.abs(lengths / expected - 1.0)))
+
+    if mismatch(basis) <= tolerance:
+        return basis, sigma_basis
+    v1, v2 = basis
+    s1, s2 = sigma_basis
+    s_sum = np.sqrt(s1**2 + s2**2)
+    candidates = [
+        (np.stack([v1 + v2, v1 - v2]), np.stack([s_sum, s_sum])),        # centred -> primitive
+        (np.stack([(v1 + v2) / 2, (v1 - v2) / 2]), np.stack([s_sum, s_sum]) / 2),  # doubled
+        (np.stack([v1 / 2, v2 / 2]), sigma_basis / 2),
+        (np.stack([v1, v2 / 2]), np.stack([s1, s2 / 2])),
+        (np.stack([v1 / 2, v2]), np.stack([s1 / 2, s2])),
+    ]
+    best = min(candidates, key=lambda c: mismatch(c[0]))
+    if mismatch(best[0]) <= tolerance:
+        return best
     return basis, sigma_basis
 
 
@@ -222,7 +261,8 @@ def _ring_quantile(values, order, lo, hi, *, q):
 
 
 def _peaks(ratio, power, kr, kc, min_quality):
-    """Local maxima of `ratio` above `min_quality` in the upper half plane.
+    """Local maxima of `ratio` above `min_quality` in the upper half plane:
+    rows of (k_row, k_col, ratio, raw power).
 
     Each peak is then located on the raw power (the ring normalisation can
     shift the maximum by a bin) and refined to sub-bin precision by a
@@ -235,7 +275,7 @@ def _peaks(ratio, power, kr, kc, min_quality):
     cand &= (kr > 0) | ((kr == 0) & (kc > 0))
     rr, cc = np.nonzero(cand)
     if len(rr) == 0:
-        return np.zeros((0, 3))
+        return np.zeros((0, 4))
     h, w = ratio.shape
     # move to the raw-power maximum within +/-2 bins
     offs = np.arange(-2, 3)
@@ -257,21 +297,27 @@ def _peaks(ratio, power, kr, kc, min_quality):
     d_c = _vertex(logp[rr, (cc - 1) % w], logp[rr, cc], logp[rr, (cc + 1) % w])
     dkr = kr[1, 0] - kr[0, 0]
     dkc = kc[0, 1] - kc[0, 0]
-    out = np.stack([kr[rr, cc] + dkr * d_r, kc[rr, cc] + dkc * d_c, ratio[rr, cc]], axis=1)
+    out = np.stack([kr[rr, cc] + dkr * d_r, kc[rr, cc] + dkc * d_c, ratio[rr, cc],
+                    power[rr, cc]], axis=1)
     out = out[np.argsort(-out[:, 2])]
     # the move to the raw maximum can merge two candidates: keep the first of each bin
     _, first = np.unique(np.rint(out[:, :2] / [dkr, dkc]), axis=0, return_index=True)
     return out[np.sort(first)][:64]
 
 
-def _reciprocal_basis(peaks):
+def _reciprocal_basis(peaks, min_quality=15.0):
     """Choose g1, g2 among the peaks and refine them on all indexed harmonics."""
     k = peaks[:, :2]
     strength = peaks[:, 2]
     # Consider the strong peaks only (at least 0.1 % of the strongest in ratio; the
     # (1,0) reflection of A and B columns of similar brightness is weak), then the
     # two shortest non-collinear ones generate the lattice (2D successive minima).
-    strong = strength >= max(strength.max() * 1e-3, strength.min())
+    # A peak far above the noise (three times the detection threshold: the 3x3-
+    # averaged noise power never gets there) counts however much stronger the
+    # others are: in a clean, thick-enough frame the A and B columns' integrated
+    # intensities can nearly cancel in (1,0) -- multislice SrTiO3 HAADF puts it at
+    # 2e-4 of (1,1) -- and without it the centred a/sqrt(2) cell would win.
+    strong = strength >= max(min(strength.max() * 1e-3, 3.0 * min_quality), strength.min())
     ks = k[strong]
     order = np.argsort(np.hypot(ks[:, 0], ks[:, 1]))
     ks = ks[order]
@@ -280,7 +326,10 @@ def _reciprocal_basis(peaks):
     # adds weak low-frequency peaks that would otherwise pass for a fundamental and
     # make the "lattice" a superperiod of several cells: skip a shortest candidate
     # under which the strongest peaks come out as high harmonics.
-    top = k[np.argsort(-strength)[:3]]
+    # (by raw power: the whitened ratio of a high order can be the largest of all
+    # where the background at its frequency is nearly nothing, e.g. a noiseless
+    # frame; the columns' form factor makes raw power fall with order)
+    top = k[np.argsort(-peaks[:, 3])[:3]] if peaks.shape[1] > 3 else k[np.argsort(-strength)[:3]]
     g1 = g2 = None
     for first in range(len(ks) - 1):
         c1 = ks[first]

@@ -505,6 +505,9 @@ def _fixed_shape_refit(fit, theta, theta_init, state, others, sublattice, ij, el
         minor = 1.0 / np.sqrt(lam_max)
         sig_amp = np.sqrt(np.abs(state["cov"][:, 2, 2]))
         weak = np.abs(theta[:, 2]) < min_significance * sig_amp
+    # the test of a collapsed fit that _to_columns applies, a little wider (the
+    # medians it compares with are taken over slightly different columns there)
+    collapsed = _collapsed(minor, labels, conv, fraction=1.25 * _COLLAPSE_FRACTION)
     shape = np.full((len(theta), 3), np.nan)
     sign = np.ones(len(theta))
     redo = np.zeros(len(theta), bool)
@@ -514,9 +517,6 @@ def _fixed_shape_refit(fit, theta, theta_init, state, others, sublattice, ij, el
         ref = sel & conv & ~weak
         if ref.sum() < 5:
             continue
-        med_minor = np.median(minor[ref])
-        with np.errstate(invalid="ignore"):
-            collapsed = conv & (minor < _COLLAPSE_FRACTION * med_minor)
         shape[sel] = np.median(np.stack([p[ref], q[ref], s[ref]], 1), axis=0)
         sign[sel] = np.sign(np.median(theta[ref, 2])) or 1.0
         redo |= sel & (~conv | collapsed | weak)
@@ -614,7 +614,7 @@ def _render_radius(theta, fit_radius, spacing_px, elliptical):
 _COLLAPSE_FRACTION = 0.4
 
 
-def _collapsed(minor_width, labels, converged) -> np.ndarray:
+def _collapsed(minor_width, labels, converged, fraction=_COLLAPSE_FRACTION) -> np.ndarray:
     """Fits much narrower than the median of their sublattice (vectorised over labels)."""
     out = np.zeros(len(minor_width), bool)
     if not converged.any():
@@ -627,7 +627,7 @@ def _collapsed(minor_width, labels, converged) -> np.ndarray:
             med[k] = np.median(minor_width[sel])
     ref = med[inv]
     with np.errstate(invalid="ignore"):
-        out = converged & np.isfinite(ref) & (minor_width < _COLLAPSE_FRACTION * ref)
+        out = converged & np.isfinite(ref) & (minor_width < fraction * ref)
     return out
 
 

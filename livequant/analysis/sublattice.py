@@ -164,6 +164,15 @@ def assign_sites(candidates: Candidates, lattice: Lattice, *, projection="perovs
 
     notes = []
     if projection == "perovskite_001":
+        # The reference group may be an oxygen coset (on ABF frames the O
+        # columns are as many and as visible as the cations): the cation pair of
+        # cosets, (0,0) and (1/2,1/2), is the stronger one, whatever was found first.
+        h_cat = height[keep & ((code == 0) | (code == 3))]
+        h_oxy = height[keep & ((code == 1) | (code == 2))]
+        if len(h_cat) and len(h_oxy) and np.median(h_oxy) > np.median(h_cat):
+            half = half + np.array([1, 0])
+            cls = np.mod(half, 2)
+            code = cls[:, 0] * 2 + cls[:, 1]
         h00 = height[keep & (code == 0)]
         h11 = height[keep & (code == 3)]
         if len(h11) == 0:

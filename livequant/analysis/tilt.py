@@ -8,12 +8,26 @@ its four B neighbours.  A rotation of the BO6 octahedron by ``phi`` about
 
 (projected-tilt geometry of the project's check values, section 8: SrTiO3,
 ``phi = 2.1 deg`` gives ``delta = 7.2 pm``).  The tilt of one cell is the mean
-of its four bond angles, each measured from that cell's B column, signed
-positive for a rotation from +x towards +y in the (x, y) = (col, row) frame
-(the sense of :attr:`Lattice.orientation_deg`).  Neighbouring octahedra share
-their O corners, so an a0a0c- pattern (Glazer, Acta Cryst. B28, 3384 (1972))
-shows as a checkerboard of +phi / -phi; ``staggered`` multiplies by
-``(-1)^(i + j)`` so that it reads as one uniform value.
+of its four bond angles, each measured from that cell's B column.
+
+Sign convention: positive for a rotation of the O square from +x towards +y in
+the (x, y) = (col, row) frame of the image (the sense of
+:attr:`Lattice.orientation_deg`).  With y pointing down the rows, as an image is
+displayed, that is *clockwise on the screen*; in a right-handed frame with y up
+it is a rotation about the beam pointing into the screen.
+
+Neighbouring octahedra share their O corners, so within one layer a rotation
+about the beam alternates from cell to cell: a checkerboard of +phi / -phi;
+``staggered`` multiplies by ``(-1)^(i + j)`` so that it reads as one uniform
+value (its sign depends on which cell the indexing starts from).  What the
+projection shows depends on how the layers along the beam stack (Glazer,
+Acta Cryst. B28, 3384 (1972)): an in-phase rotation (a0a0c+) keeps the same
+sign in every layer of a column and shows the full +phi / -phi checkerboard; an
+antiphase rotation about the viewing axis (a0a0c-) alternates layer by layer,
+so each projected O column holds +delta and -delta atoms and reads as no net
+rotation -- only elongated O columns.  (Checked against multislice frames of
+both stackings, ``tests/analysis/test_multislice_accuracy.py``; the project's
+check values, section 12.)
 
 Only meaningful where the O columns are imaged (ABF, inverted BF) and
 resolved.  Uncertainties: linear propagation from all nine columns involved
