@@ -540,12 +540,13 @@ def main(argv=None):
     os.makedirs(args.out, exist_ok=True)
     names = [n for n in (args.only.split(",") if args.only else PLANS) if n]
     t_all = time.perf_counter()
-    for k, pname in enumerate(names):
+    for pname in names:
         factory, thick_nm, gpts, interp, dets, frames = PLANS[pname]
         spec = factory()
         n_periods = max(1, int(math.ceil(args.thickness_scale * thick_nm * 10 / spec.z_period_A - 1e-6)))
         print(f"{pname}: {n_periods} z periods, {args.configs} phonon configs", flush=True)
-        arrays, info = simulate(spec, n_periods, args.configs, args.seed + 17 * k, gpts, interp, dets)
+        seed = args.seed + 17 * list(PLANS).index(pname)  # per specimen, independent of --only
+        arrays, info = simulate(spec, n_periods, args.configs, seed, gpts, interp, dets)
         print(f"  simulated in {info['simulation_wall_s']:.1f} s", flush=True)
         for fname, (di, pixel_pm, det_label) in frames.items():
             lx_pm, ly_pm = spec.scan_period_A[0] * 100, spec.scan_period_A[1] * 100
