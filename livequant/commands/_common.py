@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
-from livequant.config import ConfigError, Settings, load_settings, parse_scalar
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:  # pydantic is imported when settings are read, not to build --help
+    from livequant.config import Settings
 
 __all__ = ["add_settings_arguments", "settings_from_args", "positive_float"]
 
@@ -44,6 +47,8 @@ def add_settings_arguments(parser) -> None:
 
 
 def settings_from_args(args) -> Settings:
+    from livequant.config import ConfigError, load_settings, parse_scalar
+
     overrides = {key: getattr(args, flag, None) for flag, key in _FLAGS.items()}
     for item in getattr(args, "set", []) or []:
         if "=" not in item:

@@ -11,10 +11,6 @@ from pathlib import Path
 
 from livequant.cli import EXIT_BAD_INPUT, EXIT_FAILURE, EXIT_OK
 from livequant.commands._common import add_settings_arguments, settings_from_args
-from livequant.config import ConfigError
-from livequant.frames import FrameError, read_frame, write_frame
-from livequant.outputs import write_frame_outputs
-from livequant.pipeline import analyze_frame
 
 log = logging.getLogger("livequant.analyze")
 
@@ -43,6 +39,7 @@ def register(sub) -> None:
 
 
 def _example_frame(folder: Path) -> Path:
+    from livequant.frames import write_frame
     from livequant.synthetic import perovskite_frame
 
     ex = perovskite_frame(**EXAMPLE)
@@ -53,6 +50,11 @@ def _example_frame(folder: Path) -> Path:
 
 
 def run(args) -> int:
+    from livequant.config import ConfigError
+    from livequant.frames import FrameError, read_frame
+    from livequant.outputs import write_frame_outputs
+    from livequant.pipeline import analyze_frame
+
     try:
         settings = settings_from_args(args)
     except ConfigError as exc:

@@ -26,8 +26,6 @@ import time
 import tracemalloc
 import warnings
 
-import numpy as np
-
 from livequant.cli import EXIT_BAD_INPUT, EXIT_OK
 
 __all__ = ["register", "run_benchmarks"]
@@ -67,6 +65,7 @@ def _curve_fit_reference(image, positions, spacing_px, n_columns, *, analytic_ja
     batched fit has them; without, it differentiates numerically (7 extra model
     evaluations per iteration), which is how it is most often called.
     """
+    import numpy as np
     from scipy.optimize import OptimizeWarning, curve_fit
 
     from livequant.analysis.refine import extract_windows, starting_parameters
@@ -121,6 +120,8 @@ def _load() -> list:
 
 
 def _pipeline(size, seed, dwell_us, repeats):
+    import numpy as np
+
     from livequant.frames import FrameMeta, frame_from_array
     from livequant.pipeline import analyze_frame
 
@@ -166,6 +167,8 @@ def run_benchmarks(*, dwell_us=2.0, reference_columns=300, quick=False, rounds=5
     """Refinement against curve_fit in `rounds` back-to-back rounds (the ratio of
     each round is measured under the same load; the median is reported), then
     the pipeline on 1024 and 2048 frames (median of `rounds` runs)."""
+    import numpy as np  # here, not at the top: `livequant --help` must start fast
+
     size = 1024 if quick else 2048
     f = _frame(size, seed=1)
     spacing = 390.53 / _PIXEL_PM

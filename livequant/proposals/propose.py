@@ -16,15 +16,13 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
+from livequant.proposals.caution import CAUTION  # shown wherever a proposal is shown
 from livequant.proposals.geometry import (FrameGeometry, bounding_region, overlap_area,
                                           overlap_fraction, shift_region, stage_region)
 
 __all__ = ["CAUTION", "Candidate", "Proposal", "Planner", "candidate_from_flag",
            "merge_candidates", "scan_request_fields", "scan_shape", "proposal_from_json"]
 
-#: Shown wherever a proposal is shown or accepted.
-CAUTION = ("Proposals are suggestions. Check the dose budget of a beam-sensitive specimen "
-           "before accepting; facility procedures and the instrument's interlocks come first.")
 
 
 @dataclass(frozen=True)

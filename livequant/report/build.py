@@ -21,6 +21,7 @@ import numpy as np
 from livequant.frames import write_json_atomic
 from livequant.outputs import write_text_atomic
 from livequant.report import figures as F
+from livequant.report.defaults import DEFAULT_HISTOGRAM_FRAMES, DEFAULT_MAX_FRAMES
 from livequant.report.data import (FrameData, SessionData, column_crlb_pm, fmt_time,
                                    frame_footprint_nm, frames_of_interest, load_frame,
                                    load_session, payload_get, read_cells_csv, region_corners_nm,
@@ -32,10 +33,6 @@ __all__ = ["build_report", "DEFAULT_MAX_FRAMES", "DEFAULT_HISTOGRAM_FRAMES"]
 
 log = logging.getLogger("livequant.report")
 
-#: Frames of interest drawn in full by default.
-DEFAULT_MAX_FRAMES = 6
-#: At most this many done frames (evenly spread over the session) feed the histograms.
-DEFAULT_HISTOGRAM_FRAMES = 100
 
 _HIST_FIELDS = (("d_pm", "B-site displacement |d|", "pm", 1.0),
                 ("a_pm", "local a", "pm", 1.0),
