@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import argparse
 import json
 import logging
 import sys
@@ -20,12 +21,25 @@ EXAMPLE = dict(shape=(512, 512), a_pm=390.53, pixel_size_pm=9.37, rotation_deg=1
                sigma_pm=42.0, peak_a=300.0, peak_b=120.0, background=30.0, seed=2026)
 
 
+#: Exit codes of ``livequant analyze`` (also in its --help and the README).
+EXIT_CODES_HELP = """\
+exit codes:
+  0  every frame was handled: analysed (status ok) or found to hold no lattice
+     (status no-lattice: blank, noise, amorphous; its summary.json says so)
+  2  bad input or usage: a file missing or unreadable, a bad sidecar, no pixel size,
+     a bad option (the other frames are still analysed)
+  1  internal failure: an error inside livequant (with a traceback; please report it)
+"""
+
+
 def register(sub) -> None:
     p = sub.add_parser(
         "analyze",
         help="analyse frame files once and write columns and summaries",
         description="Fit every atomic column of each frame (TIFF or NPY, optional JSON "
                     "sidecar) and write DIR/FRAME_ID/columns.csv, cells.csv and summary.json.",
+        epilog=EXIT_CODES_HELP,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("frames", nargs="*", metavar="FRAME", help="image files (.tif, .tiff, .npy)")
     p.add_argument("--out", metavar="DIR", help="folder for the per-frame outputs "
@@ -74,20 +88,27 @@ def run(args) -> int:
         return EXIT_BAD_INPUT
 
     reports, worst = [], EXIT_OK
+    written: dict[str, str] = {}  # frame id -> input file, in this run
     for path in paths:
         report = {"path": str(path)}
         try:
+            if not path.exists() and not path.is_symlink():
+                raise FrameError(f"{path}: no such file", reason="not-found", path=path)
             frame = read_frame(path, defaults=settings.frame_defaults.as_dict())
+            frame = _unique_id(frame, path, written)
             result = analyze_frame(frame, settings)
             report.update(_report(result))
-            if out_dir is not None and result.ok:
+            if frame.meta.extra.get("frame_id_in_sidecar"):
+                report["frame_id_in_sidecar"] = frame.meta.extra["frame_id_in_sidecar"]
+            if out_dir is not None:
                 report["output_dir"] = str(write_frame_outputs(result, out_dir))
-            if not result.ok:
-                worst = max(worst, EXIT_BAD_INPUT)
-                print(f"livequant analyze: {path}: {result.status}: {result.message}",
-                      file=sys.stderr)
-            else:
+            written[result.frame_id] = str(path)
+            if result.ok:
                 _print_human(report)
+            else:  # handled: the frame holds no lattice; its summary.json says so
+                where = f" (wrote {report['output_dir']})" if "output_dir" in report else ""
+                print(f"{result.frame_id} ({path.name}): {result.status}: {result.message}"
+                      f"{where}", file=sys.stderr)
         except FrameError as exc:
             report.update(status="bad-input", reason=exc.reason, error=str(exc))
             worst = max(worst, EXIT_BAD_INPUT)
@@ -100,12 +121,40 @@ def run(args) -> int:
     if tmp is not None:
         tmp.cleanup()
     if args.json:
+        handled = ("ok", "no-lattice")
         json.dump({"frames": reports,
                    "n_ok": sum(r.get("status") == "ok" for r in reports),
-                   "n_failed": sum(r.get("status") != "ok" for r in reports)},
+                   "n_no_lattice": sum(r.get("status") == "no-lattice" for r in reports),
+                   "n_failed": sum(r.get("status") not in handled for r in reports),
+                   "exit_code": worst},
                   sys.stdout, indent=1, default=str)
         sys.stdout.write("\n")
     return worst
+
+
+def _unique_id(frame, path: Path, written: dict[str, str]):
+    """`frame`, or a copy with a frame id not yet used in this run (and say so).
+
+    Two files whose sidecars give one ``frame_id`` would otherwise write the same
+    folder, the second silently replacing the first.  The second gets the first
+    free ``ID~N`` (N = 2, 3, ...); the sidecar's id is kept in its metadata
+    (``extra.frame_id_in_sidecar``).
+    """
+    import dataclasses
+
+    fid = frame.frame_id
+    if fid not in written:
+        return frame
+    n = 2
+    while f"{fid}~{n}" in written:
+        n += 1
+    new = f"{fid}~{n}"
+    print(f"livequant analyze: {path}: frame id {fid!r} is already used by {written[fid]} in "
+          f"this run; writing this frame as {new!r} (give each frame its own \"frame_id\" in "
+          "its sidecar)", file=sys.stderr)
+    meta = dataclasses.replace(frame.meta, frame_id=new,
+                               extra={**frame.meta.extra, "frame_id_in_sidecar": fid})
+    return dataclasses.replace(frame, meta=meta)
 
 
 def _report(result) -> dict:
@@ -120,7 +169,8 @@ def _print_human(report) -> None:
     lat = report["lattice"]
     per = ", ".join(f"{k} {v}" for k, v in report["columns_per_sublattice"].items())
     lines = [
-        f"{report['frame_id']}: {report['n_columns']} columns ({per}), "
+        f"{report['frame_id']} ({Path(report['path']).name}): {report['n_columns']} columns "
+        f"({per}), "
         f"{report['n_converged']} converged, median position sigma "
         f"{report['median_sigma_position_pm']:.2f} pm",
         f"  a = {lat['a_pm']:.2f} +- {lat['sigma_a_pm']:.2f} pm, b = {lat['b_pm']:.2f} +- "
