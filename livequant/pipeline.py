@@ -270,7 +270,8 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
     timings["lattice"] = time.perf_counter() - t0
 
     inverted = (frame.meta.detector or "").upper() in INVERTED_DETECTORS
-    material = get_material(cfg.material) if cfg.material else None
+    material = (get_material(cfg.material, user_file=cfg.materials_file) if cfg.material
+                else None)
     t0 = time.perf_counter()
     candidates = detect_columns(
         image,
@@ -322,7 +323,7 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
     lattice = lattice_from_columns(columns, fallback=fft_lattice)
     calibration = None
     if cfg.calibration.reference_material:
-        ref = get_material(cfg.calibration.reference_material)
+        ref = get_material(cfg.calibration.reference_material, user_file=cfg.materials_file)
         calibration = check_calibration(
             lattice,
             pixel_size_pm=frame.meta.pixel_size_pm,

@@ -64,7 +64,7 @@ def _example_frame(folder: Path) -> Path:
 
 
 def run(args) -> int:
-    from livequant.config import ConfigError
+    from livequant.config import NO_MATERIAL_NOTE, ConfigError
     from livequant.frames import FrameError, read_frame
     from livequant.outputs import write_frame_outputs
     from livequant.pipeline import analyze_frame
@@ -87,6 +87,8 @@ def run(args) -> int:
               file=sys.stderr)
         return EXIT_BAD_INPUT
 
+    if not settings.analysis.material:
+        print(f"livequant analyze: note: {NO_MATERIAL_NOTE}", file=sys.stderr)
     reports, worst = [], EXIT_OK
     written: dict[str, str] = {}  # frame id -> input file, in this run
     for path in paths:
