@@ -120,6 +120,7 @@ class Daemon:
         # Frames in flight when a worker died, not yet run alone: re-run one at a
         # time, before anything else, so the one that kills its worker is found.
         self._suspects: set[int] = set()
+        self._solo: int | None = None  # the suspect running alone now
         self._hold_until = 0.0       # dispatch paused after an output write failure
         self._done_times: deque[float] = deque(maxlen=1000)
         self._warnings: deque[str] = deque(maxlen=8)
@@ -372,7 +373,8 @@ class Daemon:
             return
         if time.monotonic() < self._hold_until:
             return
-        limit = 1 if (self._one_at_a_time or self._suspects) else self.max_in_flight
+        alone = self._one_at_a_time or self._suspects or self._solo in self._in_flight
+        limit = 1 if alone else self.max_in_flight
         while len(self._in_flight) < limit:
             claimed = self._claim_next()
             if claimed is None:
@@ -395,6 +397,7 @@ class Daemon:
             self._suspects.discard(seq)
             claimed = self.ledger.claim_seq(seq)
             if claimed is not None:
+                self._solo = seq  # nothing else is dispatched until it is finished
                 return claimed
         return self.ledger.claim(newest_first=self.cfg.newest_first,
                                  newer_than_seq=self._newest_claimed)
