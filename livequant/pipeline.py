@@ -7,6 +7,7 @@ It is picklable and keeps no state between calls.
 
 from __future__ import annotations
 
+import math
 import time
 from dataclasses import dataclass, field
 from typing import Any
@@ -148,6 +149,17 @@ class FrameResult:
             out["cells"] = self.cells.summary()
         out.update(self.extra)
         return out
+
+
+def _calibration_setting(calibration: dict, meta) -> str:
+    """How to apply the pixel size the calibration check implies, where it is set."""
+    px = calibration["implied_pixel_size_pm"]
+    digits = max(1, 1 - math.floor(math.log10(max(calibration["sigma_implied_pixel_size_pm"],
+                                                   1e-9))))
+    value = f"{px:.{min(digits, 6)}f}"
+    if "pixel_size_source" not in meta.extra:  # it came from the frame's sidecar
+        return f'"pixel_size_pm": {value} in the frame\'s sidecar (the sidecar sets it)'
+    return f"--pixel-size-pm {value} (or frame_defaults.pixel_size_pm = {value})"
 
 
 def _undo_scan_drift(columns, frame, shape, cfg, velocity):
@@ -332,6 +344,7 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
             axis=cfg.calibration.axis,
             material=ref.name,
         )
+        calibration["apply"] = _calibration_setting(calibration, frame.meta)
     timings["lattice_refine"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()

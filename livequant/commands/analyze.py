@@ -163,11 +163,13 @@ def _report(result) -> dict:
     s = result.summary()
     return {k: s[k] for k in ("frame_id", "status", "message", "n_columns", "n_converged",
                               "columns_per_sublattice", "median_sigma_position_pm", "lattice",
-                              "calibration", "timings_s", "pixel_size_pm")} | (
+                              "calibration", "timings_s", "pixel_size_pm", "meta")} | (
         {"cells": s["cells"]} if "cells" in s else {})
 
 
 def _print_human(report) -> None:
+    from livequant.textfmt import plus_minus
+
     lat = report["lattice"]
     per = ", ".join(f"{k} {v}" for k, v in report["columns_per_sublattice"].items())
     lines = [
@@ -175,18 +177,25 @@ def _print_human(report) -> None:
         f"({per}), "
         f"{report['n_converged']} converged, median position sigma "
         f"{report['median_sigma_position_pm']:.2f} pm",
-        f"  a = {lat['a_pm']:.2f} +- {lat['sigma_a_pm']:.2f} pm, b = {lat['b_pm']:.2f} +- "
-        f"{lat['sigma_b_pm']:.2f} pm, angle = {lat['angle_deg']:.3f} +- "
-        f"{lat['sigma_angle_deg']:.3f} deg",
+        f"  a = {plus_minus(lat['a_pm'], lat['sigma_a_pm'], 'pm')}, "
+        f"b = {plus_minus(lat['b_pm'], lat['sigma_b_pm'], 'pm')}, "
+        f"angle = {plus_minus(lat['angle_deg'], lat['sigma_angle_deg'], 'deg')}",
         f"  {report['timings_s'].get('total', 0.0):.2f} s "
         + " ".join(f"{k}={v:.3f}" for k, v in report["timings_s"].items() if k != "total"),
     ]
     cal = report.get("calibration")
     if cal:
-        lines.append(f"  calibration vs {cal['material']}: measured {cal['measured_pm']:.2f} pm, "
+        lines.append(f"  calibration vs {cal['material']}: measured "
+                     f"{plus_minus(cal['measured_pm'], cal.get('sigma_measured_pm'), 'pm')}, "
                      f"reference {cal['reference_pm']:.2f} pm, error "
                      f"{100 * cal['relative_error']:+.3f} %, implied pixel size "
-                     f"{cal['implied_pixel_size_pm']:.4f} pm")
+                     + plus_minus(cal["implied_pixel_size_pm"],
+                                  cal.get("sigma_implied_pixel_size_pm"), "pm"))
+        if cal.get("apply"):
+            lines.append(f"  to apply the corrected pixel size: {cal['apply']}")
     if "output_dir" in report:
         lines.append(f"  wrote {report['output_dir']}")
+    source = (report.get("meta") or {}).get("extra", {}).get("pixel_size_source")
+    if source:
+        lines.insert(1, f"  pixel size {report['pixel_size_pm']:.6g} pm from {source}")
     print("\n".join(lines), file=sys.stderr)

@@ -36,7 +36,7 @@ _PIXEL_PM = 13.5
 
 def register(sub) -> None:
     p = sub.add_parser("bench", help="measure whether this machine keeps up with a scan",
-                       description=__doc__.split("\n\n")[0])
+                       description=_plain(__doc__.split("\n\n")[0]))
     p.add_argument("--dwell-us", type=float, default=2.0,
                    help="per-pixel dwell time of your scan, microseconds (default 2)")
     p.add_argument("--reference-columns", type=int, default=300,
@@ -47,6 +47,11 @@ def register(sub) -> None:
                         "(default 5)")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
     p.set_defaults(func=run)
+
+
+def _plain(text: str) -> str:
+    """Docstring text for --help: without the reST markup (``code``)."""
+    return text.replace("``", "")
 
 
 def _frame(size, seed):

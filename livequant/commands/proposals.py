@@ -128,7 +128,8 @@ def proposals_command(args) -> int:
         reply = ask_daemon(Path(args.session), {"cmd": "proposals", "state": args.state},
                            timeout_s=args.timeout, client_key=getattr(args, "client_key", None))
         if not reply.get("ok"):
-            print(f"livequant proposals: {reply.get('error')}", file=sys.stderr)
+            error = str(reply.get("error")).removeprefix("proposals: ")
+            print(f"livequant proposals: {error}", file=sys.stderr)
             return EXIT_BAD_INPUT
         rows = reply["proposals"]
     except NoDaemon:

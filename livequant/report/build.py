@@ -28,6 +28,7 @@ from livequant.report.data import (FrameData, SessionData, column_crlb_pm, fmt_t
                                    region_corners_px, stage_region_corners_nm)
 from livequant.report.maps import cell_grid, wall_profile, winding_map
 from livequant.report.page import SAFETY_CAUTION, FigureRef, Section, Table, render_page
+from livequant.textfmt import plus_minus
 
 __all__ = ["build_report", "DEFAULT_MAX_FRAMES", "DEFAULT_HISTOGRAM_FRAMES"]
 
@@ -398,8 +399,8 @@ def _frame_sections(fd: FrameData, session: SessionData, figs: _Figures) -> list
              f"{info.get('n_cells', 0)} cells", f"pixel size {px:g} pm",
              f"{rows} x {cols} px"]
     if lat.get("a_pm") is not None:
-        facts.append(f"a = {lat['a_pm']:.2f} ± {lat.get('sigma_a_pm') or 0:.2f} pm, "
-                     f"b = {lat.get('b_pm', float('nan')):.2f} pm")
+        facts.append(f"a = {plus_minus(lat['a_pm'], lat.get('sigma_a_pm'), 'pm')}, "
+                     f"b = {plus_minus(lat.get('b_pm'), lat.get('sigma_b_pm'), 'pm')}")
     if fd.summary.get("median_sigma_position_pm") is not None:
         facts.append(f"median column σ {fd.summary['median_sigma_position_pm']:.2f} pm")
     paras.append("; ".join(facts) + ".")
