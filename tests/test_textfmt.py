@@ -20,3 +20,10 @@ def test_missing_or_zero_uncertainty_is_said():
     assert plus_minus(math.nan, 1.0, "pm") == "n/a pm"
     assert plus_minus(None, 1.0) == "n/a"
     assert plus_minus(1.0, 0.5, ascii_only=True) == "1.00 +- 0.50"
+
+
+def test_the_display_keeps_one_significant_digit_but_never_prints_zero():
+    from livequant.display.status import _pm
+
+    assert _pm(390.5, 0.2) == "390.5 ± 0.2 pm"
+    assert _pm(390.531, 0.02) == "390.53 ± 0.02 pm"  # was "390.5 ± 0.0 pm"

@@ -49,7 +49,7 @@ def _pm(value: float | None, sigma: float | None = None) -> str:
         return "-"
     if sigma is None:
         return f"{value:.1f} pm"
-    return plus_minus(value, sigma, "pm")  # "390.539 ± 0.0069 pm", never "± 0.0 pm"
+    return plus_minus(value, sigma, "pm", digits=1)  # "390.53 ± 0.02 pm", never "± 0.0 pm"
 
 
 def _seconds(value: float | None) -> str:
