@@ -1,8 +1,29 @@
-"""livequant: real-time quantitative analysis beside an atomic-resolution STEM session."""
+"""livequant: real-time analysis beside an atomic-resolution STEM session.
 
-from livequant.frames import Frame, FrameError, FrameMeta, read_frame
-from livequant.rules.hookspecs import hookimpl
+The names below are imported on first use (PEP 562), so that ``livequant
+--help`` and the operator's commands (``status``, ``proposals``, ``accept``,
+``reject``) start without loading numpy, numba, scipy or matplotlib.
+"""
 
 __version__ = "0.1.0"
 
 __all__ = ["Frame", "FrameError", "FrameMeta", "read_frame", "hookimpl", "__version__"]
+
+_LAZY = {"Frame": "livequant.frames", "FrameError": "livequant.frames",
+         "FrameMeta": "livequant.frames", "read_frame": "livequant.frames",
+         "hookimpl": "livequant.rules.hookspecs"}
+
+
+def __getattr__(name):
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module 'livequant' has no attribute {name!r}")
+    import importlib
+
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(__all__))

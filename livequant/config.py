@@ -28,6 +28,7 @@ __all__ = [
     "MATERIALS_TOML",
     "Material",
     "load_materials",
+    "check_materials",
 ]
 
 CONFIG_DIR = Path(__file__).resolve().parent.parent / "config"
@@ -134,6 +135,7 @@ class AnalysisSettings(_Model):
     cells: CellsSettings = CellsSettings()
     scan_drift: ScanDriftSettings = ScanDriftSettings()
     material: str | None = None
+    materials_file: str | None = None
 
 
 class DaemonSettings(_Model):
@@ -398,7 +400,7 @@ class Material(_Model):
     born_o_par: float | None = None
     born_o_perp: float | None = None
     p_sign_b_vs_a: Literal[-1, 1] | None = None
-    source: str
+    source: str = Field(min_length=1)
     status: str
 
     @property
@@ -406,24 +408,90 @@ class Material(_Model):
         return self.a_pm * self.a_pm * self.c_pm
 
 
-def load_materials(path: str | os.PathLike | None = None) -> dict[str, Material]:
-    """Read the material table; keys are the material names."""
-    path = Path(path) if path else MATERIALS_TOML
-    raw = _read_toml(path)
-    out = {}
-    for name, entry in raw.items():
-        try:
-            out[name] = Material.model_validate({"name": name, **entry})
-        except ValidationError as exc:
-            err = exc.errors()[0]
-            key = ".".join(str(p) for p in err["loc"])
-            raise ConfigError(f"{path}: material `{name}`, key `{key}`: {err['msg']}") from None
+#: Said once per command when no material is set.
+NO_MATERIAL_NOTE = ("no material given (--material NAME or analysis.material): polarization "
+                    "(pol_* columns) is not computed and strain is against each frame's median "
+                    "cell")
+
+#: How to add a material, for error messages.
+ADD_MATERIAL_HINT = (
+    "to add one, write a TOML file with a table per material, e.g.\n"
+    "    [MyFilm]\n"
+    "    a_pm = 400.0\n    c_pm = 410.0\n    z_a = 82\n    z_b = 22\n"
+    "    source = \"where the numbers come from (paper, table, your own measurement)\"\n"
+    "  and give it with --materials FILE or the setting analysis.materials_file "
+    "(keys: see config/materials.toml)")
+
+
+def load_materials(path: str | os.PathLike | None = None, *,
+                   user_file: str | os.PathLike | None = None) -> dict[str, Material]:
+    """Read the material table; keys are the material names.
+
+    Parameters
+    ----------
+    path : path, optional
+        The table (default: the one shipped in ``config/materials.toml``).
+    user_file : path, optional
+        A user's own TOML table (``--materials FILE``, ``analysis.materials_file``),
+        validated the same way; ``source`` is required for every entry and
+        ``status`` defaults to ``"user file"``.  Its entries are added to the
+        table and replace shipped entries of the same name.
+
+    Raises
+    ------
+    ConfigError
+        Naming the file, the material and the key that is wrong.
+    """
+    out = _read_material_table(Path(path) if path else MATERIALS_TOML, user=False)
+    if user_file:
+        out.update(_read_material_table(Path(user_file).expanduser(), user=True))
     return out
 
 
-def get_material(name: str, *, path: str | os.PathLike | None = None) -> Material:
-    table = load_materials(path)
+def _read_material_table(path: Path, *, user: bool) -> dict[str, Material]:
+    try:
+        raw = _read_toml(path)
+    except ConfigError as exc:
+        raise ConfigError(str(exc).replace("config file", "materials file")) from None
+    out = {}
+    for name, entry in raw.items():
+        if not isinstance(entry, dict):
+            raise ConfigError(f"{path}: `{name}` must be a table ([{name}]) of a material's "
+                              f"numbers, got {entry!r}; {ADD_MATERIAL_HINT}")
+        data = {"name": name, **entry}
+        if user:
+            data.setdefault("status", "user file")
+        try:
+            out[name] = Material.model_validate(data)
+        except ValidationError as exc:
+            problems = []
+            for err in exc.errors():
+                key = ".".join(str(p) for p in err["loc"])
+                problems.append(f"`{key}` is required" if err["type"] == "missing" else
+                                f"`{key}` = {err.get('input')!r}: {err['msg']}")
+            raise ConfigError(f"{path}: material `{name}`: {'; '.join(problems)}") from None
+    return out
+
+
+def get_material(name: str, *, path: str | os.PathLike | None = None,
+                 user_file: str | os.PathLike | None = None) -> Material:
+    """One material of the table (shipped plus `user_file`), or a ConfigError saying how
+    to add it."""
+    table = load_materials(path, user_file=user_file)
     if name not in table:
-        raise ConfigError(f"unknown material `{name}`; known: {', '.join(sorted(table))} "
-                          f"(add it to {path or MATERIALS_TOML})")
+        raise ConfigError(f"unknown material `{name}`; known: {', '.join(sorted(table))}; "
+                          f"{ADD_MATERIAL_HINT}")
     return table[name]
+
+
+def check_materials(settings: "Settings") -> None:
+    """Fail early, with the known names, on a material setting that names no material."""
+    a = settings.analysis
+    for key, name in (("analysis.material", a.material),
+                      ("analysis.calibration.reference_material",
+                       a.calibration.reference_material)):
+        if name:
+            try:
+                get_material(name, user_file=a.materials_file)
+            except ConfigError as exc:
+                raise ConfigError(f"`{key}`: {exc}") from None

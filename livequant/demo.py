@@ -29,9 +29,10 @@ import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable
+from typing import TYPE_CHECKING, Any, Callable
 
-import numpy as np
+if TYPE_CHECKING:  # numpy is imported where it is used: `livequant --help` reads DemoOptions
+    import numpy as np
 
 __all__ = ["DemoOptions", "DemoOutcome", "run_demo", "tour_positions", "demo_settings"]
 
@@ -85,6 +86,8 @@ def tour_positions(n_frames: int, *, fov_nm: float, overlap_nm: float) -> np.nda
     interfaces (y = -56 and -60 nm).  Consecutive frames overlap by
     `overlap_nm`, so the drift can be measured between them.
     """
+    import numpy as np
+
     step = fov_nm - overlap_nm
     if step <= 0:
         raise ValueError(f"`overlap_nm` ({overlap_nm}) must be smaller than `fov_nm` ({fov_nm})")

@@ -14,7 +14,7 @@ import math
 import os
 import stat
 import struct
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime
 from pathlib import Path
 from typing import Any
@@ -371,8 +371,10 @@ def resolve_meta(sidecar: Sidecar | None, *, default_id: str, defaults: dict | N
             values[key] = defaults[key]
     if values.get("pixel_size_pm") is None:
         raise FrameError(
-            f"{where}: no pixel size: put \"pixel_size_pm\" in the frame's sidecar or set "
-            "`frame_defaults.pixel_size_pm` in the configuration", reason="no-pixel-size")
+            f"{where}: no pixel size: put \"pixel_size_pm\" in the frame's sidecar, give "
+            "--pixel-size-pm PM, or set `frame_defaults.pixel_size_pm` in the configuration "
+            "(a TIFF's resolution tags are used when they give a plausible size)",
+            reason="no-pixel-size")
     if isinstance(values.get("acquired_at"), datetime):
         values["acquired_at"] = values["acquired_at"].isoformat()
     values.setdefault("frame_id", default_id)
@@ -410,13 +412,80 @@ def read_frame(path: str | os.PathLike, *, defaults: dict | None = None,
     except FrameError as exc:
         exc.path = exc.path or str(path)
         raise
+    source = None
+    if sidecar is None or sidecar.pixel_size_pm is None:
+        # No pixel size in a sidecar: a configured one (--pixel-size-pm, which the user
+        # set on purpose) comes first, then the TIFF's own resolution tags; say which.
+        if (defaults or {}).get("pixel_size_pm") is not None:
+            source = "configuration (--pixel-size-pm or frame_defaults.pixel_size_pm)"
+        elif path.suffix.lower() in (".tif", ".tiff"):
+            from_tags = tiff_pixel_size_pm(path)
+            if from_tags is not None:
+                defaults = {**(defaults or {}), "pixel_size_pm": from_tags[0]}
+                source = from_tags[1]
     try:
         meta = resolve_meta(sidecar, default_id=path.stem, defaults=defaults, where=str(path))
         check_not_constant(pixels, where=str(path))
     except FrameError as exc:
         exc.path = str(path)
         raise
+    if source is not None:
+        meta = replace(meta, extra={**meta.extra, "pixel_size_source": source})
     return frame_from_array(pixels, meta, path=str(path))
+
+
+#: Picometres per unit of the TIFF ResolutionUnit tag (2 inch, 3 centimetre) and of
+#: the ``unit`` of ImageJ's description (ResolutionUnit 1, none).
+_TIFF_UNIT_PM = {2: 2.54e10, 3: 1e10}
+_IMAGEJ_UNIT_PM = {"pm": 1.0, "a": 100.0, "å": 100.0, "angstrom": 100.0, "nm": 1000.0,
+                   "um": 1e6, "µm": 1e6, "micron": 1e6, "microns": 1e6}
+#: Pixel sizes outside this range (pm) are not taken from tags: a bare 72 or 300 dpi
+#: written by general image software would give metres per pixel.
+PLAUSIBLE_PIXEL_PM = (0.5, 1e5)
+
+
+def tiff_pixel_size_pm(path: str | os.PathLike) -> tuple[float, str] | None:
+    """The pixel size (pm) in a TIFF's resolution tags, and where it came from; or None.
+
+    Uses XResolution / YResolution (pixels per unit) with ResolutionUnit
+    centimetre or inch, or with no unit and ImageJ's ``unit=`` (nm, um, A, pm).
+    Returns None when the tags are absent, x and y differ by more than 0.1 %, the
+    unit is unknown, or the size is outside :data:`PLAUSIBLE_PIXEL_PM`.
+    """
+    import tifffile
+
+    try:
+        with tifffile.TiffFile(path) as tif:
+            page = tif.pages[0]
+            tags = page.tags
+            if "XResolution" not in tags:
+                return None
+            xr, yr = tags["XResolution"].value, tags.get("YResolution")
+            unit = int(tags["ResolutionUnit"].value) if "ResolutionUnit" in tags else 2
+            ij_unit = (tif.imagej_metadata or {}).get("unit") if tif.is_imagej else None
+    except Exception:  # noqa: BLE001 - unreadable tags: no pixel size from them
+        return None
+
+    def per_unit(v):
+        num, den = (v if isinstance(v, tuple) else (v, 1))
+        return float(num) / float(den) if den else math.nan
+
+    px_per_unit = per_unit(xr)
+    py_per_unit = per_unit(yr.value) if yr is not None else px_per_unit
+    if not (px_per_unit > 0 and math.isclose(px_per_unit, py_per_unit, rel_tol=1e-3)):
+        return None
+    if ij_unit and unit == 1:
+        unit_pm = _IMAGEJ_UNIT_PM.get(str(ij_unit).strip().lower())
+        unit_name = f"ImageJ unit {ij_unit!r}"
+    else:
+        unit_pm = _TIFF_UNIT_PM.get(unit)
+        unit_name = {2: "inch", 3: "centimetre"}.get(unit, f"ResolutionUnit {unit}")
+    if unit_pm is None:
+        return None
+    pixel_pm = unit_pm / px_per_unit
+    if not PLAUSIBLE_PIXEL_PM[0] <= pixel_pm <= PLAUSIBLE_PIXEL_PM[1]:
+        return None
+    return pixel_pm, (f"TIFF resolution tags ({px_per_unit:.6g} pixels per {unit_name})")
 
 
 def frame_from_array(pixels, meta: FrameMeta, *, path: str | None = None) -> Frame:

@@ -13,6 +13,7 @@ from pathlib import Path
 import numpy as np
 
 from livequant.frames import write_json_atomic, write_text_atomic
+from livequant.schema import schema_json
 
 __all__ = ["COLUMN_FIELDS", "COLUMN_EXTRA_FIELDS", "write_frame_outputs", "columns_rows",
            "write_text_atomic", "read_columns_csv"]
@@ -78,6 +79,9 @@ def _csv_text(fieldnames, table_columns) -> str:
 def write_frame_outputs(result, frames_dir: str | os.PathLike) -> Path:
     """Write one frame's files under ``frames_dir/FRAME_ID/`` and return that folder.
 
+    ``columns.csv``, ``cells.csv`` (when there are cells), ``schema.json`` (the unit and
+    definition of every field, :mod:`livequant.schema`) and ``summary.json``.
+
     ``summary.json`` is written last: its presence means the other files are complete.
     """
     folder = Path(frames_dir) / result.frame_id
@@ -90,6 +94,7 @@ def write_frame_outputs(result, frames_dir: str | os.PathLike) -> Path:
         rows = cells.csv_rows()
         table = [[str(r[f]) for r in rows] for f in fields]
         write_text_atomic(folder / "cells.csv", _csv_text(fields, table))
+    write_text_atomic(folder / "schema.json", schema_json())  # every field: unit, definition
     write_json_atomic(folder / "summary.json", result.summary())
     return folder
 

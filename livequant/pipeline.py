@@ -7,6 +7,7 @@ It is picklable and keeps no state between calls.
 
 from __future__ import annotations
 
+import math
 import time
 from dataclasses import dataclass, field
 from typing import Any
@@ -155,6 +156,17 @@ class FrameResult:
         return out
 
 
+def _calibration_setting(calibration: dict, meta) -> str:
+    """How to apply the pixel size the calibration check implies, where it is set."""
+    px = calibration["implied_pixel_size_pm"]
+    digits = max(1, 1 - math.floor(math.log10(max(calibration["sigma_implied_pixel_size_pm"],
+                                                   1e-9))))
+    value = f"{px:.{min(digits, 6)}f}"
+    if "pixel_size_source" not in meta.extra:  # it came from the frame's sidecar
+        return f'"pixel_size_pm": {value} in the frame\'s sidecar (the sidecar sets it)'
+    return f"--pixel-size-pm {value} (or frame_defaults.pixel_size_pm = {value})"
+
+
 def _undo_scan_drift(columns, frame, shape, cfg, velocity):
     """Columns moved back to the frame's middle time (or unchanged), and what was done."""
     if velocity is None:
@@ -261,7 +273,8 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
     timings: dict[str, float] = {}
     base = dict(frame_id=frame.frame_id, meta=frame.meta, shape=frame.shape)
 
-    material = get_material(cfg.material) if cfg.material else None
+    material = (get_material(cfg.material, user_file=cfg.materials_file) if cfg.material
+                else None)
     expected = None
     if material is not None and cfg.sublattice.projection == "perovskite_001":
         px = frame.meta.pixel_size_pm
@@ -337,7 +350,7 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
     lattice = lattice_from_columns(columns, fallback=fft_lattice)
     calibration = None
     if cfg.calibration.reference_material:
-        ref = get_material(cfg.calibration.reference_material)
+        ref = get_material(cfg.calibration.reference_material, user_file=cfg.materials_file)
         calibration = check_calibration(
             lattice,
             pixel_size_pm=frame.meta.pixel_size_pm,
@@ -346,6 +359,7 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
             axis=cfg.calibration.axis,
             material=ref.name,
         )
+        calibration["apply"] = _calibration_setting(calibration, frame.meta)
     timings["lattice_refine"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()

@@ -273,12 +273,20 @@ def list_scenarios() -> list[str]:
 
 
 def _resolve(path_or_name: str | os.PathLike) -> Path:
-    p = Path(path_or_name)
+    # A bare name (no folder, no suffix) is a shipped scenario first: a folder
+    # or file of that name in the working directory (say, a session folder
+    # called `demo`) must never be taken for it.  A folder is never a scenario.
+    text = os.fspath(path_or_name)
+    p = Path(text)
+    bare = p.suffix == "" and p.name == text and os.sep not in text and "/" not in text
+    candidate = SCENARIO_DIR / f"{p.name}.toml"
+    if bare and candidate.is_file():
+        return candidate
+    if p.is_dir():
+        raise ScenarioError(f"{text!r} is a folder, not a scenario file: give a .toml file or "
+                            f"one of the shipped scenarios ({', '.join(list_scenarios())})")
     if p.suffix == ".toml" or p.exists():
         return p
-    candidate = SCENARIO_DIR / f"{p.name}.toml"
-    if candidate.exists():
-        return candidate
     raise ScenarioError(f"no scenario named {str(path_or_name)!r}: not a file, and not one of "
                         f"the shipped scenarios ({', '.join(list_scenarios())})")
 

@@ -65,10 +65,14 @@ DESCRIPTORS: tuple[tuple[str, bool, str], ...] = (
     ("tilt_staggered_deg", False, "tilt times (-1)^(i+j): uniform for an anti-phase pattern (deg)"),
     ("ratio_b_a", True, "B column amplitude over the mean of its four A corners"),
 )
+#: New names of two descriptors (``livequant.schema.RENAMED_CELL_FIELDS``): this release
+#: writes both, the new ones after the others, with the same values; the old ones go next.
+RENAMED: dict[str, str] = {"ratio_b_a": "amplitude_ratio_b_a", "c_over_a": "tetragonality"}
 #: The value columns of ``cells.csv`` after ``i, j, x_pm, y_pm``.
 VALUE_FIELDS: tuple[str, ...] = tuple(
     f for name, has_sigma, _ in DESCRIPTORS for f in ((name, "sigma_" + name) if has_sigma
-                                                      else (name,)))
+                                                      else (name,))) + tuple(
+    f for new in RENAMED.values() for f in (new, "sigma_" + new))
 
 
 def _nan(n):
@@ -126,7 +130,8 @@ class Cells:
     def summary(self) -> dict[str, Any]:
         """JSON-ready digest: counts, statistics per descriptor, frame-level findings."""
         stats = {}
-        for name, has_sigma, _ in DESCRIPTORS:
+        for name, has_sigma in [(n, h) for n, h, _ in DESCRIPTORS] + [
+                (new, True) for new in RENAMED.values()]:
             v = self.values[name]
             ok = np.isfinite(v)
             if not ok.any():
@@ -141,7 +146,8 @@ class Cells:
                 # typical per-cell sigma is reported, not a (too small) error of the mean.
                 entry["median_sigma"] = _f(np.median(s)) if s.size else None
             stats[name] = entry
-        lattice = {k: stats[k] for k in ("a_pm", "b_pm", "c_over_a", "b_over_a")}
+        lattice = {k: stats[k] for k in ("a_pm", "b_pm", "tetragonality", "b_over_a",
+                                         "c_over_a")}
         return {"n_cells": len(self), "descriptors": stats, "local_lattice": lattice,
                 **self.info}
 
@@ -389,8 +395,10 @@ def compute_cells(columns: Columns, lattice: Lattice, *, pixel_size_pm: float, m
         wall = find_wall(np.column_stack([x_pm, y_pm]), d_xy, sd_xy, noise=noise)
     wall_info = wall_candidate = None
     if wall is not None:
-        wall_info = {**wall.to_json(), "units": "pm (x0, width, position); p0 in pm of B-site "
-                                                "displacement", "convention": WIDTH_CONVENTION}
+        wall_info = {**wall.to_json(),
+                     "units": "pm (x0, width, correlation_length, width_80, position; each "
+                              "also as a key ending _pm); p0 in pm of B-site displacement",
+                     "convention": WIDTH_CONVENTION}
         if pol_info["computed"]:
             k = abs(polarization_per_pm(mat))
             wall_info["p0_C_per_m2"] = wall.p0 * k
@@ -403,6 +411,9 @@ def compute_cells(columns: Columns, lattice: Lattice, *, pixel_size_pm: float, m
     topo_info = _topology(ii, jj, x_pm, y_pm, values, frame_basis_px if n else np.eye(2)[::-1],
                           box, plaquette, min_snr_topology)
 
+    for old_name, new_name in RENAMED.items():
+        values[new_name], values["sigma_" + new_name] = (values[old_name],
+                                                         values["sigma_" + old_name])
     frozen = {k: readonly(values[k], float) for k in VALUE_FIELDS}
     info = {"pixel_size_pm": px, "material": None if mat is None else mat.name,
             "detector": str(detector), "reference": ref_info, "polarization": pol_info,

@@ -39,6 +39,11 @@ WIDTH_CONVENTION = ("P(x) = P0 tanh((x - x0) / w); w = sqrt(2) xi with xi = sqrt
 WIDTH_80_FACTOR = 2.0 * np.arctanh(0.8)
 
 
+#: Keys of :meth:`WallFit.to_json` in pm that are also written as ``KEY_pm``.
+UNIT_KEYS = ("x0", "sigma_x0", "width", "sigma_width", "p0", "sigma_p0", "correlation_length",
+             "width_80")
+
+
 def tanh_profile(x, p0, x0, w):
     """``p0 * tanh((x - x0) / w)``."""
     return p0 * np.tanh((np.asarray(x, float) - x0) / w)
@@ -116,6 +121,10 @@ class WallFit:
         out["n_points"] = int(self.n_points)
         out["correlation_length"] = float(self.correlation_length)
         out["width_80"] = float(self.width_80)
+        # The same lengths under names that carry their unit; the bare names above go in
+        # the next release (livequant.schema.RENAMED_WALL_KEYS, TODO.md).
+        for key in UNIT_KEYS:
+            out[f"{key}_pm"] = out[key]
         return out
 
 

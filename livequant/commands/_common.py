@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
-from livequant.config import ConfigError, Settings, load_settings, parse_scalar
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:  # pydantic is imported when settings are read, not to build --help
+    from livequant.config import Settings
 
 __all__ = ["add_settings_arguments", "settings_from_args", "positive_float"]
 
@@ -24,6 +27,7 @@ _FLAGS = {
     "pixel_size_pm": "frame_defaults.pixel_size_pm",
     "detector": "frame_defaults.detector",
     "material": "analysis.material",
+    "materials": "analysis.materials_file",
     "reference_material": "analysis.calibration.reference_material",
 }
 
@@ -31,12 +35,18 @@ _FLAGS = {
 def add_settings_arguments(parser) -> None:
     g = parser.add_argument_group("settings (override config files and LIVEQUANT_* variables)")
     g.add_argument("--config", metavar="FILE", help="a TOML file of settings (see config/default.toml)")
-    g.add_argument("--pixel-size-pm", type=float, metavar="PM",
-                   help="pixel size for frames whose sidecar gives none, picometres")
+    g.add_argument("--pixel-size-pm", "--pixel-size", type=float, metavar="PM",
+                   dest="pixel_size_pm",
+                   help="pixel size for frames whose sidecar gives none, picometres "
+                        "(--pixel-size: the same, the old spelling of `run`)")
     g.add_argument("--detector", metavar="NAME", help="detector for frames whose sidecar gives "
                    "none (HAADF, ABF, BF)")
     g.add_argument("--material", metavar="NAME",
-                   help="material of the specimen (an entry of config/materials.toml)")
+                   help="material of the specimen (an entry of config/materials.toml or of "
+                        "--materials FILE); without it there is no polarization (pol_*)")
+    g.add_argument("--materials", metavar="FILE",
+                   help="your own material table (TOML, like config/materials.toml; every "
+                        "entry needs a `source`), added to the shipped one")
     g.add_argument("--reference-material", metavar="NAME",
                    help="check the pixel size against this material's lattice parameter")
     g.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
@@ -44,6 +54,8 @@ def add_settings_arguments(parser) -> None:
 
 
 def settings_from_args(args) -> Settings:
+    from livequant.config import ConfigError, check_materials, load_settings, parse_scalar
+
     overrides = {key: getattr(args, flag, None) for flag, key in _FLAGS.items()}
     for item in getattr(args, "set", []) or []:
         if "=" not in item:
@@ -51,4 +63,6 @@ def settings_from_args(args) -> Settings:
                               "analysis.refine.max_iterations=50")
         key, _, text = item.partition("=")
         overrides[key.strip()] = parse_scalar(text.strip())
-    return load_settings(getattr(args, "config", None), overrides=overrides)
+    settings = load_settings(getattr(args, "config", None), overrides=overrides)
+    check_materials(settings)
+    return settings

@@ -40,7 +40,9 @@ def decide(args, request: dict, verb: str) -> int:
         print(json.dumps(reply, default=str))
     if not reply.get("ok"):
         if not args.json:
-            print(f"livequant {verb}: {reply.get('error')}", file=sys.stderr)
+            # the daemon names the command ("accept: no proposal ..."); say it once
+            error = str(reply.get("error")).removeprefix(f"{verb}: ")
+            print(f"livequant {verb}: {error}", file=sys.stderr)
         return EXIT_FAILURE if "internal error" in str(reply.get("error")) else EXIT_BAD_INPUT
     if not args.json:
         print(f"proposal {reply['id']}: {reply['state']}", file=sys.stderr)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import argparse
 import json
 import logging
 import sys
@@ -11,10 +12,6 @@ from pathlib import Path
 
 from livequant.cli import EXIT_BAD_INPUT, EXIT_FAILURE, EXIT_OK
 from livequant.commands._common import add_settings_arguments, settings_from_args
-from livequant.config import ConfigError
-from livequant.frames import FrameError, read_frame, write_frame
-from livequant.outputs import write_frame_outputs
-from livequant.pipeline import analyze_frame
 
 log = logging.getLogger("livequant.analyze")
 
@@ -24,12 +21,25 @@ EXAMPLE = dict(shape=(512, 512), a_pm=390.53, pixel_size_pm=9.37, rotation_deg=1
                sigma_pm=42.0, peak_a=300.0, peak_b=120.0, background=30.0, seed=2026)
 
 
+#: Exit codes of ``livequant analyze`` (also in its --help and the README).
+EXIT_CODES_HELP = """\
+exit codes:
+  0  every frame was handled: analysed (status ok) or found to hold no lattice
+     (status no-lattice: blank, noise, amorphous; its summary.json says so)
+  2  bad input or usage: a file missing or unreadable, a bad sidecar, no pixel size,
+     a bad option (the other frames are still analysed)
+  1  internal failure: an error inside livequant (with a traceback; please report it)
+"""
+
+
 def register(sub) -> None:
     p = sub.add_parser(
         "analyze",
         help="analyse frame files once and write columns and summaries",
         description="Fit every atomic column of each frame (TIFF or NPY, optional JSON "
                     "sidecar) and write DIR/FRAME_ID/columns.csv, cells.csv and summary.json.",
+        epilog=EXIT_CODES_HELP,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("frames", nargs="*", metavar="FRAME", help="image files (.tif, .tiff, .npy)")
     p.add_argument("--out", metavar="DIR", help="folder for the per-frame outputs "
@@ -43,6 +53,7 @@ def register(sub) -> None:
 
 
 def _example_frame(folder: Path) -> Path:
+    from livequant.frames import write_frame
     from livequant.synthetic import perovskite_frame
 
     ex = perovskite_frame(**EXAMPLE)
@@ -53,6 +64,11 @@ def _example_frame(folder: Path) -> Path:
 
 
 def run(args) -> int:
+    from livequant.config import NO_MATERIAL_NOTE, ConfigError
+    from livequant.frames import FrameError, read_frame
+    from livequant.outputs import write_frame_outputs
+    from livequant.pipeline import analyze_frame
+
     try:
         settings = settings_from_args(args)
     except ConfigError as exc:
@@ -71,21 +87,30 @@ def run(args) -> int:
               file=sys.stderr)
         return EXIT_BAD_INPUT
 
+    if not settings.analysis.material:
+        print(f"livequant analyze: note: {NO_MATERIAL_NOTE}", file=sys.stderr)
     reports, worst = [], EXIT_OK
+    written: dict[str, str] = {}  # frame id -> input file, in this run
     for path in paths:
         report = {"path": str(path)}
         try:
+            if not path.exists() and not path.is_symlink():
+                raise FrameError(f"{path}: no such file", reason="not-found", path=path)
             frame = read_frame(path, defaults=settings.frame_defaults.as_dict())
+            frame = _unique_id(frame, path, written)
             result = analyze_frame(frame, settings)
             report.update(_report(result))
-            if out_dir is not None and result.ok:
+            if frame.meta.extra.get("frame_id_in_sidecar"):
+                report["frame_id_in_sidecar"] = frame.meta.extra["frame_id_in_sidecar"]
+            if out_dir is not None:
                 report["output_dir"] = str(write_frame_outputs(result, out_dir))
-            if not result.ok:
-                worst = max(worst, EXIT_BAD_INPUT)
-                print(f"livequant analyze: {path}: {result.status}: {result.message}",
-                      file=sys.stderr)
-            else:
+            written[result.frame_id] = str(path)
+            if result.ok:
                 _print_human(report)
+            else:  # handled: the frame holds no lattice; its summary.json says so
+                where = f" (wrote {report['output_dir']})" if "output_dir" in report else ""
+                print(f"{result.frame_id} ({path.name}): {result.status}: {result.message}"
+                      f"{where}", file=sys.stderr)
         except FrameError as exc:
             report.update(status="bad-input", reason=exc.reason, error=str(exc))
             worst = max(worst, EXIT_BAD_INPUT)
@@ -98,41 +123,79 @@ def run(args) -> int:
     if tmp is not None:
         tmp.cleanup()
     if args.json:
+        handled = ("ok", "no-lattice")
         json.dump({"frames": reports,
                    "n_ok": sum(r.get("status") == "ok" for r in reports),
-                   "n_failed": sum(r.get("status") != "ok" for r in reports)},
+                   "n_no_lattice": sum(r.get("status") == "no-lattice" for r in reports),
+                   "n_failed": sum(r.get("status") not in handled for r in reports),
+                   "exit_code": worst},
                   sys.stdout, indent=1, default=str)
         sys.stdout.write("\n")
     return worst
+
+
+def _unique_id(frame, path: Path, written: dict[str, str]):
+    """`frame`, or a copy with a frame id not yet used in this run (and say so).
+
+    Two files whose sidecars give one ``frame_id`` would otherwise write the same
+    folder, the second silently replacing the first.  The second gets the first
+    free ``ID~N`` (N = 2, 3, ...); the sidecar's id is kept in its metadata
+    (``extra.frame_id_in_sidecar``).
+    """
+    import dataclasses
+
+    fid = frame.frame_id
+    if fid not in written:
+        return frame
+    n = 2
+    while f"{fid}~{n}" in written:
+        n += 1
+    new = f"{fid}~{n}"
+    print(f"livequant analyze: {path}: frame id {fid!r} is already used by {written[fid]} in "
+          f"this run; writing this frame as {new!r} (give each frame its own \"frame_id\" in "
+          "its sidecar)", file=sys.stderr)
+    meta = dataclasses.replace(frame.meta, frame_id=new,
+                               extra={**frame.meta.extra, "frame_id_in_sidecar": fid})
+    return dataclasses.replace(frame, meta=meta)
 
 
 def _report(result) -> dict:
     s = result.summary()
     return {k: s[k] for k in ("frame_id", "status", "message", "n_columns", "n_converged",
                               "columns_per_sublattice", "median_sigma_position_pm", "lattice",
-                              "calibration", "timings_s", "pixel_size_pm")} | (
+                              "calibration", "timings_s", "pixel_size_pm", "meta")} | (
         {"cells": s["cells"]} if "cells" in s else {})
 
 
 def _print_human(report) -> None:
+    from livequant.textfmt import plus_minus
+
     lat = report["lattice"]
     per = ", ".join(f"{k} {v}" for k, v in report["columns_per_sublattice"].items())
     lines = [
-        f"{report['frame_id']}: {report['n_columns']} columns ({per}), "
+        f"{report['frame_id']} ({Path(report['path']).name}): {report['n_columns']} columns "
+        f"({per}), "
         f"{report['n_converged']} converged, median position sigma "
         f"{report['median_sigma_position_pm']:.2f} pm",
-        f"  a = {lat['a_pm']:.2f} +- {lat['sigma_a_pm']:.2f} pm, b = {lat['b_pm']:.2f} +- "
-        f"{lat['sigma_b_pm']:.2f} pm, angle = {lat['angle_deg']:.3f} +- "
-        f"{lat['sigma_angle_deg']:.3f} deg",
+        f"  a = {plus_minus(lat['a_pm'], lat['sigma_a_pm'], 'pm')}, "
+        f"b = {plus_minus(lat['b_pm'], lat['sigma_b_pm'], 'pm')}, "
+        f"angle = {plus_minus(lat['angle_deg'], lat['sigma_angle_deg'], 'deg')}",
         f"  {report['timings_s'].get('total', 0.0):.2f} s "
         + " ".join(f"{k}={v:.3f}" for k, v in report["timings_s"].items() if k != "total"),
     ]
     cal = report.get("calibration")
     if cal:
-        lines.append(f"  calibration vs {cal['material']}: measured {cal['measured_pm']:.2f} pm, "
+        lines.append(f"  calibration vs {cal['material']}: measured "
+                     f"{plus_minus(cal['measured_pm'], cal.get('sigma_measured_pm'), 'pm')}, "
                      f"reference {cal['reference_pm']:.2f} pm, error "
                      f"{100 * cal['relative_error']:+.3f} %, implied pixel size "
-                     f"{cal['implied_pixel_size_pm']:.4f} pm")
+                     + plus_minus(cal["implied_pixel_size_pm"],
+                                  cal.get("sigma_implied_pixel_size_pm"), "pm"))
+        if cal.get("apply"):
+            lines.append(f"  to apply the corrected pixel size: {cal['apply']}")
     if "output_dir" in report:
         lines.append(f"  wrote {report['output_dir']}")
+    source = (report.get("meta") or {}).get("extra", {}).get("pixel_size_source")
+    if source:
+        lines.insert(1, f"  pixel size {report['pixel_size_pm']:.6g} pm from {source}")
     print("\n".join(lines), file=sys.stderr)

@@ -30,8 +30,6 @@ import time
 import tracemalloc
 import warnings
 
-import numpy as np
-
 from livequant.cli import EXIT_BAD_INPUT, EXIT_OK
 
 __all__ = ["register", "run_benchmarks"]
@@ -42,7 +40,7 @@ _PIXEL_PM = 13.5
 
 def register(sub) -> None:
     p = sub.add_parser("bench", help="measure whether this machine keeps up with a scan",
-                       description=__doc__.split("\n\n")[0])
+                       description=_plain(__doc__.split("\n\n")[0]))
     p.add_argument("--dwell-us", type=float, default=2.0,
                    help="per-pixel dwell time of your scan, microseconds (default 2)")
     p.add_argument("--reference-columns", type=int, default=300,
@@ -70,6 +68,11 @@ def _physics_frame(size, seed, dwell_us):
     return acq.pixels
 
 
+def _plain(text: str) -> str:
+    """Docstring text for --help: without the reST markup (``code``)."""
+    return text.replace("``", "")
+
+
 def _frame(size, seed):
     from livequant.synthetic import perovskite_frame
 
@@ -86,6 +89,7 @@ def _curve_fit_reference(image, positions, spacing_px, n_columns, *, analytic_ja
     batched fit has them; without, it differentiates numerically (7 extra model
     evaluations per iteration), which is how it is most often called.
     """
+    import numpy as np
     from scipy.optimize import OptimizeWarning, curve_fit
 
     from livequant.analysis.refine import extract_windows, starting_parameters
@@ -140,6 +144,8 @@ def _load() -> list:
 
 
 def _pipeline(size, seed, dwell_us, repeats, *, physics=False):
+    import numpy as np
+
     from livequant.config import load_settings
     from livequant.frames import FrameMeta, frame_from_array
     from livequant.pipeline import analyze_frame
@@ -193,6 +199,8 @@ def run_benchmarks(*, dwell_us=2.0, reference_columns=300, quick=False, rounds=5
     """Refinement against curve_fit in `rounds` back-to-back rounds (the ratio of
     each round is measured under the same load; the median is reported), then
     the pipeline on 1024 and 2048 frames (median of `rounds` runs)."""
+    import numpy as np  # here, not at the top: `livequant --help` must start fast
+
     size = 1024 if quick else 2048
     f = _frame(size, seed=1)
     spacing = 390.53 / _PIXEL_PM

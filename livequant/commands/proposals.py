@@ -100,18 +100,18 @@ def ask_daemon(session: Path, request: dict, *, timeout_s: float = 3.0,
 
 def _from_ledger(session: Path, state: str | None) -> list[dict]:
     from livequant.daemon import Ledger, SessionPaths
-    from livequant.daemon.decisions import _proposal_brief
+    from livequant.daemon.briefs import proposal_brief
 
     paths = SessionPaths(Path(session).expanduser().resolve())
     if not paths.ledger.exists():
         raise FileNotFoundError(f"{paths.root}: no daemon running and no ledger; is this a "
                                 "session folder? (give --session DIR)")
     with Ledger(paths.ledger, readonly=True) as ledger:
-        return [_proposal_brief(r) for r in ledger.proposals(state=state)]
+        return [proposal_brief(r) for r in ledger.proposals(state=state)]
 
 
 def print_caution(console=None) -> None:
-    from livequant.proposals.propose import CAUTION
+    from livequant.proposals.caution import CAUTION
 
     if console is None:
         print(f"caution: {CAUTION}", file=sys.stderr)
@@ -121,14 +121,15 @@ def print_caution(console=None) -> None:
 
 def proposals_command(args) -> int:
     from livequant.cli import EXIT_BAD_INPUT, EXIT_FAILURE
-    from livequant.proposals.propose import CAUTION
+    from livequant.proposals.caution import CAUTION
 
     source = "daemon"
     try:
         reply = ask_daemon(Path(args.session), {"cmd": "proposals", "state": args.state},
                            timeout_s=args.timeout, client_key=getattr(args, "client_key", None))
         if not reply.get("ok"):
-            print(f"livequant proposals: {reply.get('error')}", file=sys.stderr)
+            error = str(reply.get("error")).removeprefix("proposals: ")
+            print(f"livequant proposals: {error}", file=sys.stderr)
             return EXIT_BAD_INPUT
         rows = reply["proposals"]
     except NoDaemon:

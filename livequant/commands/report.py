@@ -10,7 +10,7 @@ __all__ = ["register", "report_command"]
 
 
 def register(subparsers) -> None:
-    from livequant.report.build import DEFAULT_HISTOGRAM_FRAMES, DEFAULT_MAX_FRAMES
+    from livequant.report.defaults import DEFAULT_HISTOGRAM_FRAMES, DEFAULT_MAX_FRAMES
 
     p = subparsers.add_parser(
         "report", help="write an HTML report (maps, plots, tables) of a session",

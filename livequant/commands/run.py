@@ -27,8 +27,15 @@ def register(subparsers) -> None:
     p.add_argument("--config", metavar="FILE", help="user TOML configuration")
     p.add_argument("--workers", type=int, metavar="N",
                    help="analysis processes (default: one per core)")
-    p.add_argument("--pixel-size", type=float, metavar="PM", dest="pixel_size_pm",
-                   help="pixel size for frames whose sidecar gives none, picometres")
+    p.add_argument("--pixel-size-pm", "--pixel-size", type=float, metavar="PM",
+                   dest="pixel_size_pm",
+                   help="pixel size for frames whose sidecar gives none, picometres "
+                        "(--pixel-size: the old spelling, kept for one release)")
+    p.add_argument("--material", metavar="NAME",
+                   help="material of the specimen (config/materials.toml or --materials "
+                        "FILE); without it there is no polarization (pol_*)")
+    p.add_argument("--materials", metavar="FILE",
+                   help="your own material table (TOML; every entry needs a `source`)")
     p.add_argument("--settle-time", type=float, metavar="S", dest="settle_time_s",
                    help="a frame without sidecar is complete once unchanged this long, seconds")
     p.add_argument("--ingest-port", type=int, metavar="PORT",
@@ -48,13 +55,15 @@ def register(subparsers) -> None:
 
 def run_command(args) -> int:
     from livequant.cli import EXIT_BAD_INPUT
-    from livequant.config import ConfigError, load_settings
+    from livequant.config import NO_MATERIAL_NOTE, ConfigError, check_materials, load_settings
     from livequant.daemon import Daemon, SetupError
     from livequant.daemon.worker import DEFAULT_ANALYZE, resolve_callable
 
     overrides = {
         "workers": args.workers,
         "frame_defaults.pixel_size_pm": args.pixel_size_pm,
+        "analysis.material": args.material,
+        "analysis.materials_file": args.materials,
         "daemon.settle_time_s": args.settle_time_s,
         "daemon.ingest_port": args.ingest_port,
         "daemon.events_port": args.events_port,
@@ -63,9 +72,12 @@ def run_command(args) -> int:
     }
     try:
         settings = load_settings(args.config, overrides=overrides)
+        check_materials(settings)
     except ConfigError as exc:
         print(f"livequant run: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    if not settings.analysis.material:
+        print(f"livequant run: note: {NO_MATERIAL_NOTE}", file=sys.stderr)
     if args.watch is None and not settings.daemon.ingest_socket:
         print("livequant run: nothing to listen to: give --watch DIR or enable the ingest "
               "socket", file=sys.stderr)

@@ -1,13 +1,29 @@
 """The live daemon: sources, ledger, worker pool, publisher and command socket.
 
-See :mod:`livequant.daemon.core` for how the parts fit.
+See :mod:`livequant.daemon.core` for how the parts fit.  The names below are
+imported on first use (PEP 562): the operator's commands need the ledger and
+the command client, not the analysis behind the worker pool.
 """
-
-from livequant.daemon.commands import CommandError, send_command
-from livequant.daemon.core import Daemon, status_line
-from livequant.daemon.ledger import Ledger
-from livequant.daemon.session import SessionPaths, SetupError
-from livequant.daemon.status import Snapshot
 
 __all__ = ["Daemon", "Ledger", "SessionPaths", "SetupError", "Snapshot", "CommandError",
            "send_command", "status_line"]
+
+_LAZY = {"CommandError": "livequant.daemon.client", "send_command": "livequant.daemon.client",
+         "Daemon": "livequant.daemon.core", "status_line": "livequant.daemon.core",
+         "Ledger": "livequant.daemon.ledger", "SessionPaths": "livequant.daemon.session",
+         "SetupError": "livequant.daemon.session", "Snapshot": "livequant.daemon.status"}
+
+
+def __getattr__(name):
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module 'livequant.daemon' has no attribute {name!r}")
+    import importlib
+
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(__all__))

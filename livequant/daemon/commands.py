@@ -26,6 +26,7 @@ from typing import Callable, Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from livequant.daemon._socket_thread import SocketThread
+from livequant.daemon.client import CommandError, send_command  # re-exported: the client side
 
 __all__ = ["CommandServer", "send_command", "CommandError", "NoArguments", "BUILTIN_SCHEMAS",
            "DECISION_SCHEMAS",
@@ -94,10 +95,6 @@ def _depth(value, limit: int) -> int:
     if isinstance(value, list):
         return 1 + max((_depth(v, limit - 1) for v in value), default=0)
     return 0
-
-
-class CommandError(RuntimeError):
-    """No reply from the daemon (not running, or not answering in time)."""
 
 
 class CommandServer(SocketThread):
@@ -218,33 +215,3 @@ class CommandServer(SocketThread):
             sock.send(reply)
         except zmq.Again:
             log.warning("command reply could not be sent (client gone)")
-
-
-def send_command(endpoint: str, request: dict, *, timeout_s: float = 3.0,
-                 context=None, curve=None) -> dict:
-    """Send one command and return the decoded reply.
-
-    `curve` (a ``CurveClientKeys``) is needed when the daemon serves over CURVE;
-    without an authorised key no reply ever comes (a :class:`CommandError`).
-
-    Raises
-    ------
-    CommandError
-        When no reply arrives within `timeout_s` (no daemon there, or it hangs).
-    """
-    import zmq
-
-    ctx = context or zmq.Context.instance()
-    from livequant.daemon.security import apply_curve_client
-
-    sock = ctx.socket(zmq.REQ)
-    sock.setsockopt(zmq.LINGER, 0)
-    try:
-        apply_curve_client(sock, curve)
-        sock.connect(endpoint)
-        sock.send(json.dumps(request).encode("utf-8"))
-        if not sock.poll(int(timeout_s * 1000)):
-            raise CommandError(f"no reply from {endpoint} within {timeout_s:g} s")
-        return json.loads(sock.recv().decode("utf-8"))
-    finally:
-        sock.close(linger=0)

@@ -117,6 +117,10 @@ class Daemon:
         self._in_flight: dict[int, cf.Future] = {}
         self._newest_claimed = 0
         self._one_at_a_time = False  # after a worker crash, until a frame succeeds
+        # Frames in flight when a worker died, not yet run alone: re-run one at a
+        # time, before anything else, so the one that kills its worker is found.
+        self._suspects: set[int] = set()
+        self._solo: int | None = None  # the suspect running alone now
         self._hold_until = 0.0       # dispatch paused after an output write failure
         self._done_times: deque[float] = deque(maxlen=1000)
         self._warnings: deque[str] = deque(maxlen=8)
@@ -369,10 +373,10 @@ class Daemon:
             return
         if time.monotonic() < self._hold_until:
             return
-        limit = 1 if self._one_at_a_time else self.max_in_flight
+        alone = self._one_at_a_time or self._suspects or self._solo in self._in_flight
+        limit = 1 if alone else self.max_in_flight
         while len(self._in_flight) < limit:
-            claimed = self.ledger.claim(newest_first=self.cfg.newest_first,
-                                        newer_than_seq=self._newest_claimed)
+            claimed = self._claim_next()
             if claimed is None:
                 return
             seq, path, _origin = claimed
@@ -380,11 +384,23 @@ class Daemon:
             try:
                 fut = self.pool.submit(process_path, path, self._scan_drift_velocity())
             except (BrokenProcessPool, RuntimeError) as exc:
-                self.ledger.requeue(seq)
+                self.ledger.requeue(seq, uncharge=True)  # it never ran
                 self._pool_broke(f"submit failed: {exc}")
                 return
             self._in_flight[seq] = fut
             fut.add_done_callback(lambda f, s=seq: self._on_future_done(s, f))
+
+    def _claim_next(self) -> tuple[int, str, str] | None:
+        """The next frame to run: a suspect of a worker crash first (alone), else the queue's."""
+        while self._suspects:
+            seq = min(self._suspects)
+            self._suspects.discard(seq)
+            claimed = self.ledger.claim_seq(seq)
+            if claimed is not None:
+                self._solo = seq  # nothing else is dispatched until it is finished
+                return claimed
+        return self.ledger.claim(newest_first=self.cfg.newest_first,
+                                 newer_than_seq=self._newest_claimed)
 
     def _scan_drift_velocity(self) -> tuple[float, float] | None:
         """The drift velocity the workers undo inside each frame, once it is measured."""
@@ -399,7 +415,7 @@ class Daemon:
         self._wake.set()
 
     def _handle_completed(self) -> None:
-        crashed = False
+        crashed: list[int] = []
         while True:
             try:
                 seq, fut = self._completed.get_nowait()
@@ -415,8 +431,7 @@ class Daemon:
             if exc is None:
                 self._handle_outcome(seq, fut.result())
             elif isinstance(exc, BrokenProcessPool):
-                crashed = True
-                self._worker_crashed(seq)
+                crashed.append(seq)
             else:
                 # Not the frame's fault (e.g. the outputs could not be written):
                 # keep it queued, hold dispatch a moment, and say so.
@@ -426,7 +441,7 @@ class Daemon:
                 log.error("frame %s failed outside the analysis: %s: %s; kept queued, "
                           "retrying in 5 s", seq, type(exc).__name__, exc)
         if crashed:
-            self._pool_broke("a worker process died")
+            self._pool_broke("a worker process died", crashed=crashed)
 
     def _handle_outcome(self, seq: int, out: Outcome) -> None:
         if out.state == "done":
@@ -480,33 +495,60 @@ class Daemon:
             log.exception("decision loop failed on %s", out.frame_id)
             self._warn(f"decisions: {out.frame_id}: {type(exc).__name__}: {exc}")
 
-    def _worker_crashed(self, seq: int) -> None:
+    def _worker_crashed(self, seq: int, *, alone: bool) -> None:
+        """A frame in flight when its worker died: charge it only if it was `alone`.
+
+        With other frames in flight any of them may have killed the worker, so
+        none is charged an attempt; each is re-run alone (a suspect) and the one
+        that kills its worker when alone is charged, and quarantined after
+        ``daemon.max_attempts`` such deaths.
+        """
+        if not alone:
+            self.ledger.requeue(seq, uncharge=True)
+            self._suspects.add(seq)
+            return
         row = self.ledger.row(seq)
         if row is not None and row.attempts >= self.cfg.max_attempts:
-            msg = (f"{row.path}: the worker process died {row.attempts} times on this frame "
-                   "(out of memory, or a crash in native code)")
+            msg = (f"{row.path}: the worker process died {row.attempts} times on this frame, "
+                   "each time with no other frame in flight (out of memory, or a crash in "
+                   "native code)")
             self.ledger.quarantine(seq, reason="worker-crash", message=msg)
             self._warn(f"quarantined {Path(row.path).name}: worker-crash")
             self.publisher.publish("status", {"event": "quarantined", "path": row.path,
                                               "reason": "worker-crash", "message": msg})
         else:
             self.ledger.requeue(seq)
+            self._suspects.add(seq)  # retried alone next
 
-    def _pool_broke(self, why: str) -> None:
-        """Replace a broken pool; run one frame at a time until one succeeds again."""
+    def _pool_broke(self, why: str, *, crashed: list[int] = ()) -> None:
+        """Replace a broken pool; the frames in flight go back to the queue.
+
+        `crashed` are frames whose futures already reported the broken pool; the
+        rest of :attr:`_in_flight` died with them.  Only a frame that was alone in
+        flight is charged an attempt (see :meth:`_worker_crashed`).
+        """
         self.n_worker_crashes += 1
-        self._warn(f"worker pool restarted: {why}")
-        log.error("worker pool broken (%s); frames in flight are queued again", why)
-        for seq in list(self._in_flight):
-            self._in_flight.pop(seq)
-            self._worker_crashed(seq)
+        victims = list(crashed)
+        for seq, fut in list(self._in_flight.items()):
+            del self._in_flight[seq]
+            if fut.done() and not fut.cancelled() and fut.exception() is None:
+                self._handle_outcome(seq, fut.result())  # it finished before the crash
+            else:
+                victims.append(seq)
+        alone = len(victims) == 1
+        self._warn(f"worker pool restarted: {why}" + ("" if len(victims) < 2 else
+                   f" ({len(victims)} frames in flight, each re-run alone)"))
+        log.error("worker pool broken (%s) with %d frame(s) in flight; %s", why, len(victims),
+                  "that frame is charged an attempt" if alone else
+                  "none is charged; each is re-run alone to find the one that kills its worker")
+        for seq in victims:
+            self._worker_crashed(seq, alone=alone)
         old, self.pool = self.pool, None
         if old is not None:
             old.shutdown(wait=False, cancel_futures=True)
         if not self.should_exit.is_set():
             self.pool = self._new_pool()
-            # One at a time until a frame succeeds, so a frame that kills its
-            # worker is found alone and innocent frames do not use up attempts.
+            # One at a time until a frame succeeds (and while suspects remain).
             self._one_at_a_time = True
 
     # ================================================================ status

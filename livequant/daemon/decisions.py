@@ -24,6 +24,7 @@ import time
 from collections import deque
 from typing import Callable
 
+from livequant.daemon.briefs import proposal_brief as _proposal_brief
 from livequant.proposals.drift import DriftImage, DriftModel, DriftTracker, frame_times_s
 from livequant.proposals.geometry import FrameGeometry, shift_region
 from livequant.proposals.propose import (CAUTION, Planner, candidate_from_flag,
@@ -387,19 +388,6 @@ def _number(pid: str) -> int:
         return int(str(pid).lstrip("p"))
     except ValueError:
         return 0
-
-
-def _proposal_brief(row: dict) -> dict:
-    p = row.get("payload") or {}
-    r = row["region"]
-    return {"id": row["id"], "state": row["state"], "score": row["score"],
-            "frame_id": row["frame_id"],
-            "center_nm": [r["center_x_nm"], r["center_y_nm"]],
-            "size_nm": [r["width_nm"], r["height_nm"]], "rotation_deg": r["rotation_deg"],
-            "reason": p.get("reason", ""), "kinds": p.get("kinds", []),
-            "flag_ids": p.get("flag_ids", []), "pixel_size_pm": p.get("pixel_size_pm"),
-            "dwell_time_us": p.get("dwell_time_us"), "shape_px": p.get("shape_px"),
-            "created_at": row["created_at"]}
 
 
 def _flag_brief(f: dict) -> dict:

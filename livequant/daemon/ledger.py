@@ -335,10 +335,25 @@ class Ledger:
                            "started_at=? WHERE seq=?", (time.time(), row[0]))
         return row
 
-    def requeue(self, seq: int) -> None:
-        """Give a ``processing`` frame back to the queue (shutdown, crashed worker)."""
-        self._tx([("UPDATE frames SET state='queued', started_at=NULL WHERE seq=? AND "
+    def requeue(self, seq: int, *, uncharge: bool = False) -> None:
+        """Give a ``processing`` frame back to the queue (shutdown, crashed worker).
+
+        With `uncharge` the attempt counted when it was claimed is taken back: the
+        frame was not to blame (a worker died while it shared the pool with others).
+        """
+        dec = ", attempts=MAX(attempts-1, 0)" if uncharge else ""
+        self._tx([(f"UPDATE frames SET state='queued', started_at=NULL{dec} WHERE seq=? AND "
                    "state='processing'", (seq,))])
+
+    def claim_seq(self, seq: int) -> tuple[int, str, str] | None:
+        """Claim frame `seq` if it is queued (as :meth:`claim`); None otherwise."""
+        with self._transaction() as db:
+            row = db.execute("SELECT seq, path, origin FROM frames WHERE state='queued' "
+                             "AND seq=?", (seq,)).fetchone()
+            if row is not None:
+                db.execute("UPDATE frames SET state='processing', attempts=attempts+1, "
+                           "started_at=? WHERE seq=?", (time.time(), row[0]))
+        return row
 
     def finish(self, seq: int, *, frame_id: str, read_s: float | None = None,
                analyze_s: float | None = None, write_s: float | None = None) -> bool:

@@ -20,7 +20,6 @@ import time
 from dataclasses import dataclass
 from pathlib import Path
 
-from livequant.frames import write_json_atomic
 
 __all__ = ["SessionPaths", "SetupError", "check_watch_folder", "check_session_folder",
            "SessionLock", "read_daemon_file", "pid_alive"]
@@ -126,6 +125,8 @@ class SessionLock:
 
 
 def write_daemon_file(paths: SessionPaths, info: dict) -> None:
+    from livequant.frames import write_json_atomic  # numpy: not for the operator's commands
+
     write_json_atomic(paths.daemon_file, {"pid": os.getpid(), "written_at": time.time(), **info})
 
 

@@ -17,6 +17,7 @@ from rich.table import Table
 from rich.text import Text
 
 from livequant.daemon.status import Snapshot
+from livequant.textfmt import plus_minus
 
 __all__ = ["render_status", "format_duration", "shorten_path", "proposals_table", "flags_table"]
 
@@ -48,7 +49,7 @@ def _pm(value: float | None, sigma: float | None = None) -> str:
         return "-"
     if sigma is None:
         return f"{value:.1f} pm"
-    return f"{value:.1f} ± {sigma:.1f} pm"
+    return plus_minus(value, sigma, "pm", digits=1)  # "390.53 ± 0.02 pm", never "± 0.0 pm"
 
 
 def _seconds(value: float | None) -> str:

@@ -1,13 +1,36 @@
-"""Flags -> scan regions in stage coordinates, corrected for specimen drift (pure numerics)."""
+"""Flags -> scan regions in stage coordinates, corrected for specimen drift (pure numerics).
 
-from livequant.proposals.drift import (DriftImage, DriftModel, DriftTracker, PairDrift,
-                                       estimate_pair_drift, frame_times_s)
-from livequant.proposals.geometry import FrameGeometry, overlap_fraction, stage_region
-from livequant.proposals.propose import (CAUTION, Candidate, Planner, Proposal,
-                                         candidate_from_flag, merge_candidates,
-                                         proposal_from_json, scan_request_fields)
+The names below are imported on first use (PEP 562), so that reading
+:data:`CAUTION` costs no numerics.
+"""
 
 __all__ = ["DriftImage", "DriftModel", "DriftTracker", "PairDrift", "estimate_pair_drift",
            "frame_times_s", "FrameGeometry", "overlap_fraction", "stage_region", "CAUTION",
            "Candidate", "Planner", "Proposal", "candidate_from_flag", "merge_candidates",
            "proposal_from_json", "scan_request_fields"]
+
+_MODULES = {
+    "livequant.proposals.drift": ("DriftImage", "DriftModel", "DriftTracker", "PairDrift",
+                                  "estimate_pair_drift", "frame_times_s"),
+    "livequant.proposals.geometry": ("FrameGeometry", "overlap_fraction", "stage_region"),
+    "livequant.proposals.caution": ("CAUTION",),
+    "livequant.proposals.propose": ("Candidate", "Planner", "Proposal", "candidate_from_flag",
+                                    "merge_candidates", "proposal_from_json",
+                                    "scan_request_fields"),
+}
+_LAZY = {name: module for module, names in _MODULES.items() for name in names}
+
+
+def __getattr__(name):
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module 'livequant.proposals' has no attribute {name!r}")
+    import importlib
+
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(__all__))

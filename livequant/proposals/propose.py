@@ -16,15 +16,13 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
+from livequant.proposals.caution import CAUTION  # shown wherever a proposal is shown
 from livequant.proposals.geometry import (FrameGeometry, bounding_region, overlap_area,
                                           overlap_fraction, shift_region, stage_region)
 
 __all__ = ["CAUTION", "Candidate", "Proposal", "Planner", "candidate_from_flag",
            "merge_candidates", "scan_request_fields", "scan_shape", "proposal_from_json"]
 
-#: Shown wherever a proposal is shown or accepted.
-CAUTION = ("Proposals are suggestions. Check the dose budget of a beam-sensitive specimen "
-           "before accepting; facility procedures and the instrument's interlocks come first.")
 
 
 @dataclass(frozen=True)
@@ -100,9 +98,11 @@ def candidate_from_flag(flag, geometry: FrameGeometry, *, flag_id: int, t_seen_s
     spec = stage_region(r["center_x_nm"] - d[0], r["center_y_nm"] - d[1], w, h,
                         r["rotation_deg"])
     msg = flag.message or flag.kind
+    # "domain wall: ..." from the rule already names its kind: no "domain-wall: domain wall:"
+    said = msg.lower().replace("-", " ").startswith(flag.kind.lower().replace("-", " "))
     return Candidate(specimen_region=spec, frame_id=flag.frame_id or "", t_seen_s=float(t_seen_s),
                      score=float(flag.score), kinds=(flag.kind,),
-                     reasons=(f"{flag.kind}: {msg}" if msg != flag.kind else flag.kind,),
+                     reasons=(msg if said else f"{flag.kind}: {msg}",),
                      flag_ids=(int(flag_id),), rules=(flag.rule,) if flag.rule else ())
 
 

@@ -21,21 +21,19 @@ import numpy as np
 from livequant.frames import write_json_atomic
 from livequant.outputs import write_text_atomic
 from livequant.report import figures as F
+from livequant.report.defaults import DEFAULT_HISTOGRAM_FRAMES, DEFAULT_MAX_FRAMES
 from livequant.report.data import (FrameData, SessionData, column_crlb_pm, fmt_time,
                                    frame_footprint_nm, frames_of_interest, load_frame,
                                    load_session, payload_get, read_cells_csv, region_corners_nm,
                                    region_corners_px, stage_region_corners_nm)
 from livequant.report.maps import cell_grid, wall_profile, winding_map
 from livequant.report.page import SAFETY_CAUTION, FigureRef, Section, Table, render_page
+from livequant.textfmt import plus_minus
 
 __all__ = ["build_report", "DEFAULT_MAX_FRAMES", "DEFAULT_HISTOGRAM_FRAMES"]
 
 log = logging.getLogger("livequant.report")
 
-#: Frames of interest drawn in full by default.
-DEFAULT_MAX_FRAMES = 6
-#: At most this many done frames (evenly spread over the session) feed the histograms.
-DEFAULT_HISTOGRAM_FRAMES = 100
 
 _HIST_FIELDS = (("d_pm", "B-site displacement |d|", "pm", 1.0),
                 ("a_pm", "local a", "pm", 1.0),
@@ -401,8 +399,8 @@ def _frame_sections(fd: FrameData, session: SessionData, figs: _Figures) -> list
              f"{info.get('n_cells', 0)} cells", f"pixel size {px:g} pm",
              f"{rows} x {cols} px"]
     if lat.get("a_pm") is not None:
-        facts.append(f"a = {lat['a_pm']:.2f} ± {lat.get('sigma_a_pm') or 0:.2f} pm, "
-                     f"b = {lat.get('b_pm', float('nan')):.2f} pm")
+        facts.append(f"a = {plus_minus(lat['a_pm'], lat.get('sigma_a_pm'), 'pm')}, "
+                     f"b = {plus_minus(lat.get('b_pm'), lat.get('sigma_b_pm'), 'pm')}")
     if fd.summary.get("median_sigma_position_pm") is not None:
         facts.append(f"median column σ {fd.summary['median_sigma_position_pm']:.2f} pm")
     paras.append("; ".join(facts) + ".")

@@ -242,14 +242,18 @@ def test_commands_pause_resume_shutdown(tmp_path):
 
 def test_a_frame_that_kills_its_worker_is_quarantined_others_survive(tmp_path):
     """Plumbing test (stand-in analysis): a frame whose analysis kills the worker process
-    is retried alone and quarantined after max_attempts; the frames beside it are done."""
+    is retried alone and quarantined after max_attempts; the frames beside it are done.
+
+    Deterministic whatever order the frames are claimed in: a frame is charged an
+    attempt only when it was alone in flight as its worker died (it used to fail now
+    and then when a frame beside the poison one was charged for its crashes too)."""
     d = _daemon(tmp_path, analyze="tests.daemon._helpers:plain_analyze", max_attempts=2)
     watch = tmp_path / "watch"
+    write_frame(watch, "ok1", lattice_image(seed=1), sidecar("ok1"))
+    write_frame(watch, "poison", lattice_image(seed=2), sidecar("poison", die=True))
+    write_frame(watch, "ok2", lattice_image(seed=3), sidecar("ok2"))
+    write_frame(watch, "buggy", lattice_image(seed=4), sidecar("buggy", **{"raise": True}))
     with running_daemon(d):
-        write_frame(watch, "ok1", lattice_image(seed=1), sidecar("ok1"))
-        write_frame(watch, "poison", lattice_image(seed=2), sidecar("poison", die=True))
-        write_frame(watch, "ok2", lattice_image(seed=3), sidecar("ok2"))
-        write_frame(watch, "buggy", lattice_image(seed=4), sidecar("buggy", **{"raise": True}))
         wait_for(lambda: _done(d) == 2 and d.snapshot.counts["quarantined"] == 2,
                  what="2 done, 2 quarantined")
     with Ledger(tmp_path / "session" / "ledger.sqlite", readonly=True) as led:
@@ -258,6 +262,36 @@ def test_a_frame_that_kills_its_worker_is_quarantined_others_survive(tmp_path):
     assert done == ["ok1", "ok2"]
     assert reasons["poison"] == ("worker-crash", 2)
     assert reasons["buggy"][0] == "analysis-error"
+
+
+def test_frames_sharing_the_pool_with_a_crash_are_not_charged(tmp_path):
+    """Two workers, three frames in flight: the newest (claimed first) kills its worker
+    while two slow innocent frames are in flight.  None is charged; each is re-run alone
+    (bisection down to single frames), and only the frame that kills its worker alone is
+    charged.  With max_attempts = 1 the old rule (every frame in flight charged)
+    quarantined the innocent frames as worker-crash."""
+    settings = fast_settings(max_attempts=1, newest_first=True, max_in_flight=3)
+    settings = type(settings).model_validate({**settings.model_dump(), "workers": 2})
+    watch = tmp_path / "watch"
+    watch.mkdir()
+    d = Daemon(settings, session=tmp_path / "session", watch=watch,
+               analyze="tests.daemon._helpers:plain_analyze")
+    for k in (1, 2, 3):
+        write_frame(watch, f"ok{k}", lattice_image(seed=k), sidecar(f"ok{k}", sleep_s=1.5))
+    write_frame(watch, "poison", lattice_image(seed=9), sidecar("poison", die=True))
+    with running_daemon(d):
+        wait_for(lambda: _done(d) == 3 and d.snapshot.counts["quarantined"] == 1,
+                 timeout_s=120, what="3 done, 1 quarantined")
+        crashes = d.n_worker_crashes
+    with Ledger(tmp_path / "session" / "ledger.sqlite", readonly=True) as led:
+        rows = {Path(r.path).stem: r for r in led.rows()}
+    assert {k: r.state for k, r in rows.items()} == {"ok1": "done", "ok2": "done",
+                                                      "ok3": "done", "poison": "quarantined"}
+    assert rows["poison"].reason == "worker-crash" and rows["poison"].attempts == 1
+    assert "no other frame in flight" in rows["poison"].message
+    # every innocent frame was charged only for the run that finished it
+    assert all(rows[f"ok{k}"].attempts == 1 for k in (1, 2, 3))
+    assert crashes == 2  # once beside the innocent frames, once alone
 
 
 def test_drain_finishes_frames_in_flight(tmp_path):

@@ -87,7 +87,7 @@ def _writer(watch: Path, rng: np.random.Generator, stop: threading.Event) -> Non
 
 def _check_outputs(folder: Path) -> None:
     names = sorted(p.name for p in folder.iterdir())
-    assert names == ["cells.csv", "columns.csv", "summary.json"], (folder, names)
+    assert names == ["cells.csv", "columns.csv", "schema.json", "summary.json"], (folder, names)
     summary = json.loads((folder / "summary.json").read_text())
     assert summary["frame_id"] == folder.name and summary["status"] == "ok"
     cols = read_columns_csv(folder / "columns.csv")

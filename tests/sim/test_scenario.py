@@ -99,3 +99,22 @@ def test_ninety_degree_wall_must_be_at_45_degrees(tmp_path):
     with pytest.raises(ScenarioError, match=r"`walls.0.angle_deg` = 90.0: a 90-degree wall must "
                                             r"run at 45 degrees"):
         Specimen.from_scenario(_write(tmp_path, text))
+
+
+def test_a_session_folder_named_like_a_scenario_is_not_taken_for_it(tmp_path, monkeypatch):
+    """`livequant demo --session demo` made ./demo, which was then read as the scenario
+    file (IsADirectoryError, 0 frames).  A bare name is a shipped scenario first; a
+    folder is never a scenario."""
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "demo").mkdir()
+    assert load_scenario("demo") == load_scenario(list_scenarios_path("demo"))
+    with pytest.raises(ScenarioError, match="is a folder, not a scenario file"):
+        load_scenario(str(tmp_path / "demo"))
+    with pytest.raises(ScenarioError, match="is a folder"):
+        load_scenario("./demo")
+
+
+def list_scenarios_path(name):
+    from sim_instrument.scenario import SCENARIO_DIR
+
+    return SCENARIO_DIR / f"{name}.toml"
