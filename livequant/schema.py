@@ -63,6 +63,11 @@ COLUMNS: tuple[tuple[str, str, str], ...] = (
                                 "counts per pixel."),
     ("reduced_chi2", _ONE, "Reduced chi-square of the column's fit window (about 1 for a good "
                            "fit under Poisson noise with gain 1)."),
+    ("significance", _ONE, "|amplitude| / sigma(amplitude): how clearly the column stands out. "
+                           "Weak columns (low dose) are fitted where the lattice puts them and "
+                           "kept; below analysis.refine.min_significance (default 2) a fit "
+                           "counts as failed and its position is the starting one with NaN "
+                           "sigmas."),
 )
 
 _CELL_BASE: tuple[tuple[str, str, str], ...] = (
