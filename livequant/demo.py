@@ -353,20 +353,24 @@ def _until_done(daemon, instrument: "_Instrument", session: Path, options: DemoO
     from livequant.daemon import Ledger
 
     deadline = time.monotonic() + max(0.0, options.duration_s)
-    said = None
+    said, idle_checks = None, 0
     while not daemon.should_exit.is_set() and time.monotonic() < deadline:
+        # the snapshot first: a frame it counts as done has had its proposals written
+        # to the ledger already (the main loop runs the rules before the next snapshot)
+        snap = daemon.snapshot
         proposals: dict[str, int] = {}
         ledger_path = session / "ledger.sqlite"
         if instrument.survey_done.is_set() and ledger_path.exists():
             with Ledger(ledger_path, readonly=True) as ledger:
                 for p in ledger.proposals():
                     proposals[p["state"]] = proposals.get(p["state"], 0) + 1
-        left = work_left(daemon.snapshot, proposals,
+        left = work_left(snap, proposals,
                          acquired=len(instrument.survey_ids) + len(instrument.revisit_ids),
                          revisits=len(instrument.revisit_ids),
                          survey_done=instrument.survey_done.is_set(),
                          auto_accept=options.auto_accept)
-        if left is None:
+        idle_checks = idle_checks + 1 if left is None else 0
+        if idle_checks >= 2:     # twice in a row, half a second apart: nothing in between
             log.info("the demo's work is done: ending %.0f s before --duration-s",
                      deadline - time.monotonic())
             return
