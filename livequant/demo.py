@@ -374,7 +374,7 @@ def _until_done(daemon, instrument: "_Instrument", session: Path, options: DemoO
             log.info("the demo's work is done: ending %.0f s before --duration-s",
                      deadline - time.monotonic())
             return
-        if left != said and instrument.survey_done.is_set():
+        if left is not None and left != said and instrument.survey_done.is_set():
             log.info("survey done; waiting for %s (at most %.0f s more)%s", left,
                      deadline - time.monotonic(),
                      ": keys a / r on the panel, or livequant accept / reject"

@@ -76,6 +76,8 @@ _SUBLATTICE_STYLE = {"A": (OKABE_ITO[1], "o"), "B": (OKABE_ITO[2], "s"),
 _PROPOSAL_STYLE = {"accepted": (OKABE_ITO[3], "-", 2.2), "open": (OKABE_ITO[1], "--", 1.4),
                    "rejected": (OKABE_ITO[7], ":", 1.4), "expired": ("#888888", ":", 1.0)}
 _DPI = 100
+#: Collections with more marks than this are drawn as images inside SVG/PDF figures.
+RASTER_ABOVE = 300
 
 
 def _lab_to_srgb(L, a, b, *, clip: bool = True) -> np.ndarray:
@@ -124,7 +126,10 @@ def save_figure(fig: Figure, path: str | Path, *, dpi: float = _DPI,
     suffix) when given, then release it.
 
     Fonts are kept as text in SVG (``svg.fonttype = "none"``) so the labels stay
-    editable and searchable on slides.
+    editable and searchable on slides.  Collections of more than
+    `RASTER_ABOVE` marks (cell maps, arrows, thousands of column markers) are
+    embedded as images at `dpi` in the vector file: the axes, ticks and text
+    stay vector, the file stays small and quick to write and to open.
     """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
@@ -135,6 +140,16 @@ def save_figure(fig: Figure, path: str | Path, *, dpi: float = _DPI,
         fmt = vector.suffix.lstrip(".").lower()
         if fmt not in ("svg", "pdf"):
             raise ValueError(f"vector figure {vector}: the suffix must be .svg or .pdf")
+        from matplotlib.collections import Collection
+
+        # the layout the PNG got holds for the vector copy (positions are fractions of
+        # the figure, text sizes points): keep it instead of computing it again
+        fig.set_layout_engine("none")
+
+        for coll in fig.findobj(Collection):
+            n = max(len(coll.get_paths()), len(coll.get_offsets()))
+            if n > RASTER_ABOVE:
+                coll.set_rasterized(True)
         with matplotlib.rc_context({"svg.fonttype": "none", "pdf.fonttype": 42}):
             fig.savefig(vector, format=fmt, dpi=dpi)
     fig.clear()
