@@ -113,6 +113,13 @@ def demo_settings(options: DemoOptions):
     if options.auto_accept:
         overrides["proposals.auto_accept"] = True
     settings = load_settings(options.config_file, overrides=overrides)
+    if settings.proposals.beam_current_pa is None:
+        # the simulated instrument's probe current: the demo can show each proposal's dose
+        from sim_instrument.scenario import load_scenario
+
+        current = float(load_scenario(options.scenario).instrument.beam_current_pa)
+        settings = settings.model_copy(update={
+            "proposals": settings.proposals.model_copy(update={"beam_current_pa": current})})
     if settings.analysis.material is None:   # the demo specimen's film, unless you chose one
         settings = settings.model_copy(update={
             "analysis": settings.analysis.model_copy(update={"material": "PbTiO3"})})

@@ -186,11 +186,13 @@ def print_proposals(rows, *, beam_current_pa=None, file=None) -> None:
     tty = hasattr(file, "isatty") and file.isatty()
     if tty:
         console = Console(file=file)
-        table = proposals_table(rows, limit=len(rows), width=max(60, console.width),
-                                beam_current_pa=beam_current_pa, wrap=True)
-    else:
-        console = Console(file=file, width=100_000, color_system=None, force_terminal=False,
-                          soft_wrap=True)
-        table = proposals_table(rows, limit=len(rows), width=None,
-                                beam_current_pa=beam_current_pa)
-    console.print(table)
+        console.print(proposals_table(rows, limit=len(rows), width=max(60, console.width),
+                                      beam_current_pa=beam_current_pa, wrap=True))
+        return
+    import io
+
+    buf = io.StringIO()
+    Console(file=buf, width=100_000, color_system=None, force_terminal=False).print(
+        proposals_table(rows, limit=len(rows), width=None, beam_current_pa=beam_current_pa))
+    for line in buf.getvalue().splitlines():
+        print(line.rstrip(), file=file)

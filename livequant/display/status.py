@@ -242,8 +242,8 @@ def proposal_cells(row: dict, beam_current_pa: float | None = None) -> dict[str,
             "centre": f"{_nm(c[0])}, {_nm(c[1])}",
             "size": f"{_nm(sz[0])} x {_nm(sz[1])}",
             "rot": "-" if rot is None else f"{_num(rot, '.0f')}°",
-            "px": _num(row.get("pixel_size_pm"), "g"),
-            "dwell": _num(row.get("dwell_time_us"), "g"),
+            "px": _num(row.get("pixel_size_pm"), ".3g"),
+            "dwell": _num(row.get("dwell_time_us"), ".3g"),
             "dose": format_dose(proposal_dose(row, beam_current_pa)),
             "reason": str(row.get("reason") or "")}
 

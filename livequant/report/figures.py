@@ -499,7 +499,8 @@ def winding_explanation(n_plaquettes: int, n_valid: int, n_winding: int, *,
                 "dose) to count windings." + flagged)
     frac = n_valid / n_plaquettes
     if frac < 0.5:
-        return (f"No core shown: only {n_valid} of {n_plaquettes} plaquettes ({100 * frac:.0f} %) "
+        pct = "< 1" if frac < 0.01 else f"{100 * frac:.0f}"
+        return (f"No core shown: only {n_valid} of {n_plaquettes} plaquettes ({pct} %) "
                 f"have four cells with |d| ≥ {min_snr:g} σ, and none of them winds; a core "
                 "(where |d| vanishes) cannot be seen at this signal-to-noise. A longer dwell "
                 "would show more." + flagged)

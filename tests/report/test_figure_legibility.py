@@ -267,3 +267,7 @@ def test_winding_map_that_shows_nothing_says_why_on_the_figure(rendered):
     assert "found by the rules on larger, smoothed" in " ".join(texts.split())
     texts = " ".join(t.get_text() for t in rendered["winding with cores"].findobj(Text))
     assert "No core" not in texts
+    assert "(< 1 %)" in F.winding_explanation(1000, 6, 0, min_snr=3.0)
+    assert F.winding_explanation(1000, 0, 0, min_snr=3.0).startswith("No core shown: no plaquette")
+    assert F.winding_explanation(1000, 900, 0, min_snr=3.0).startswith("No core in this frame")
+    assert F.winding_explanation(1000, 900, 2, min_snr=3.0) == ""
