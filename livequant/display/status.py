@@ -220,9 +220,9 @@ def proposal_dose(row: dict, beam_current_pa: float | None = None) -> float | No
     """Dose (e/Å²) the proposal's suggested scan would deliver, None when unknown.
 
     The proposal's own ``beam_current_pa`` wins over the configured one
-    (``proposals.beam_current_pa``); see :mod:`livequant.proposals.scan_dose`.
+    (``proposals.beam_current_pa``); see :mod:`livequant.scan_dose`.
     """
-    from livequant.proposals.scan_dose import dose_e_per_A2
+    from livequant.scan_dose import dose_e_per_A2
 
     current = row.get("beam_current_pa")
     if current is None:
@@ -232,7 +232,7 @@ def proposal_dose(row: dict, beam_current_pa: float | None = None) -> float | No
 
 def proposal_cells(row: dict, beam_current_pa: float | None = None) -> dict[str, str]:
     """One proposal as the table's text cells, by column name."""
-    from livequant.proposals.scan_dose import format_dose
+    from livequant.scan_dose import format_dose
 
     c = row.get("center_nm") or (None, None)
     sz = row.get("size_nm") or (None, None)

@@ -9,7 +9,7 @@ from rich.console import Console
 
 from livequant.display.keys import PanelState
 from livequant.display.status import proposals_table, render_status
-from livequant.proposals.scan_dose import dose_e_per_A2, format_dose
+from livequant.scan_dose import dose_e_per_A2, format_dose
 from tests.daemon.test_display import _decision_snapshot
 
 REASON = "vortex core (winding +1 on a loop of 3 cells) seen in two frames"
