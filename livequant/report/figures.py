@@ -668,7 +668,8 @@ def histograms_figure(series: Sequence[tuple[str, np.ndarray, str]], *, title: s
             ax.hist(np.clip(v, lo, hi), bins=40, range=(lo, hi), color=OKABE_ITO[5])
             ax.xaxis.set_major_locator(MaxNLocator(5))
             ax.axvline(float(np.median(v)), color=OKABE_ITO[6], ls="--", lw=1)
-            ax.set_title(f"{name} (n = {v.size}, median {np.median(v):.4g})", fontsize=8)
+            u = "" if unit in ("ratio", "c/a") else f" {unit}"
+            ax.set_title(f"{name} (n = {v.size}, median {np.median(v):.3g}{u})", fontsize=8)
         else:
             ax.text(0.5, 0.5, "no values", ha="center", va="center", transform=ax.transAxes)
             ax.set_title(name, fontsize=8)
