@@ -248,6 +248,8 @@ class ProposalSettings(_Model):
     lead_time_s: float = Field(default=10.0, ge=0, le=3600)
     expire_after_s: float = Field(default=900.0, ge=0)
     auto_accept: bool = False
+    #: probe current for the dose a proposal would deliver (display, accept); None = unknown
+    beam_current_pa: float | None = Field(default=None, gt=0, le=1e6)
 
 
 class DriftSettings(_Model):

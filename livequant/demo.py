@@ -13,9 +13,12 @@ The demo runs the whole loop on this machine with no microscope:
    acquires every accepted proposal at higher magnification (with
    ``--auto-accept`` the daemon accepts its own proposals -- meant for the
    simulated instrument only);
-4. after ``duration_s`` the survey stops, the daemon drains its queue and
-   stops, and the demo prints a summary (and writes the session report when
-   of maps (``SESSION/report/index.html``).
+4. the demo ends as soon as its work is done -- the survey tour acquired,
+   every frame analysed, every accepted proposal revisited and analysed, and
+   no open proposal waiting for the operator -- or after ``duration_s``,
+   whichever comes first; the daemon drains its queue and stops, and the demo
+   prints a summary and writes the session report of maps
+   (``SESSION/report/index.html``), showing its progress.
 
 The instrument's clock follows the wall clock (``engine.catch_up`` before every
 frame), so the specimen drifts in real time as it would at the microscope.
@@ -113,6 +116,13 @@ def demo_settings(options: DemoOptions):
     if options.auto_accept:
         overrides["proposals.auto_accept"] = True
     settings = load_settings(options.config_file, overrides=overrides)
+    if settings.proposals.beam_current_pa is None:
+        # the simulated instrument's probe current: the demo can show each proposal's dose
+        from sim_instrument.scenario import load_scenario
+
+        current = float(load_scenario(options.scenario).instrument.beam_current_pa)
+        settings = settings.model_copy(update={
+            "proposals": settings.proposals.model_copy(update={"beam_current_pa": current})})
     if settings.analysis.material is None:   # the demo specimen's film, unless you chose one
         settings = settings.model_copy(update={
             "analysis": settings.analysis.model_copy(update={"material": "PbTiO3"})})
@@ -153,6 +163,7 @@ class _Instrument:
         self.stop = stop
         self.survey_ids: list[str] = []
         self.revisit_ids: list[str] = []
+        self.survey_done = threading.Event()   # the tour is over (finished, stopped or failed)
         self.errors: list[str] = []
         self._threads: list[threading.Thread] = []
 
@@ -189,6 +200,12 @@ class _Instrument:
             log.exception("the simulated instrument failed")
 
     def _survey(self) -> None:
+        try:
+            self._tour()
+        finally:
+            self.survey_done.set()
+
+    def _tour(self) -> None:
         o = self.options
         for x_nm, y_nm in tour_positions(o.frames, fov_nm=o.fov_nm, overlap_nm=o.overlap_nm):
             if self.stop.is_set() or time.monotonic() >= self._deadline:
@@ -267,7 +284,7 @@ def run_demo(options: DemoOptions, *, display_factory: Callable | None = None) -
             if events_endpoint() is None:
                 return
             instrument.start()
-            daemon.should_exit.wait(max(0.0, options.duration_s))
+            _until_done(daemon, instrument, session, options)
             stop.set()
             instrument.join(30.0)
             deadline = time.monotonic() + options.drain_s
@@ -309,11 +326,81 @@ def run_demo(options: DemoOptions, *, display_factory: Callable | None = None) -
     return outcome
 
 
+def work_left(snap, proposals: dict[str, int], *, acquired: int, revisits: int,
+              survey_done: bool, auto_accept: bool) -> str | None:
+    """What the demo still waits for, or None when its work is done (pure).
+
+    Parameters
+    ----------
+    snap : Snapshot
+        The daemon's latest snapshot.
+    proposals : dict
+        Proposals per state from the ledger.
+    acquired, revisits : int
+        Frames the simulated instrument wrote (all of them) and revisits among them.
+    survey_done : bool
+        The survey tour is over.
+    auto_accept : bool
+        Proposals are accepted by the daemon itself (no operator to wait for).
+    """
+    if not survey_done:
+        return "the survey"
+    c = snap.counts
+    if snap.total < acquired or snap.settling:
+        return "frames still being written"
+    if c.get("queued", 0) or c.get("processing", 0) or snap.in_flight:
+        return "frames still being analysed"
+    if proposals.get("accepted", 0) > revisits:
+        return "accepted proposals not yet revisited"
+    if proposals.get("open", 0):
+        return ("open proposals being accepted" if auto_accept else
+                "open proposals waiting for the operator")
+    return None
+
+
+def _until_done(daemon, instrument: "_Instrument", session: Path, options: DemoOptions) -> None:
+    """Wait until the demo's work is done (:func:`work_left`), its time is up or it stops."""
+    from livequant.daemon import Ledger
+
+    deadline = time.monotonic() + max(0.0, options.duration_s)
+    said, idle_checks = None, 0
+    while not daemon.should_exit.is_set() and time.monotonic() < deadline:
+        # the snapshot first: a frame it counts as done has had its proposals written
+        # to the ledger already (the main loop runs the rules before the next snapshot)
+        snap = daemon.snapshot
+        proposals: dict[str, int] = {}
+        ledger_path = session / "ledger.sqlite"
+        if instrument.survey_done.is_set() and ledger_path.exists():
+            with Ledger(ledger_path, readonly=True) as ledger:
+                for p in ledger.proposals():
+                    proposals[p["state"]] = proposals.get(p["state"], 0) + 1
+        left = work_left(snap, proposals,
+                         acquired=len(instrument.survey_ids) + len(instrument.revisit_ids),
+                         revisits=len(instrument.revisit_ids),
+                         survey_done=instrument.survey_done.is_set(),
+                         auto_accept=options.auto_accept)
+        idle_checks = idle_checks + 1 if left is None else 0
+        if idle_checks >= 2:     # twice in a row, half a second apart: nothing in between
+            log.info("the demo's work is done: ending %.0f s before --duration-s",
+                     deadline - time.monotonic())
+            return
+        if left is not None and left != said and instrument.survey_done.is_set():
+            log.info("survey done; waiting for %s (at most %.0f s more)%s", left,
+                     deadline - time.monotonic(),
+                     ": keys a / r on the panel, or livequant accept / reject"
+                     if "operator" in left else "")
+            said = left
+        daemon.should_exit.wait(0.5)
+
+
 def _write_report(session: Path, outcome: DemoOutcome, settings) -> None:
     from livequant.report import build_report
+    from livequant.report.progress import console_progress
 
     try:
-        built = build_report(session, gain=settings.analysis.refine.gain_counts_per_electron)
+        with console_progress("report") as progress:
+            built = build_report(session, gain=settings.analysis.refine.gain_counts_per_electron,
+                                 progress=progress)
     except Exception as exc:  # noqa: BLE001 - the demo's results stand without the report
         outcome.report_error = f"{type(exc).__name__}: {exc}"
         log.exception("the session report could not be written")

@@ -88,10 +88,12 @@ def demo_command(args) -> int:
     factory = None
     if use_console:
         from livequant.display import LiveDisplay
+        from livequant.display.live import daemon_decider
 
         def factory(daemon):
             return LiveDisplay(lambda: daemon.snapshot,
-                               refresh_per_second=daemon.settings.daemon.refresh_per_second)
+                               refresh_per_second=daemon.settings.daemon.refresh_per_second,
+                               decide=daemon_decider(daemon))
     try:
         outcome = run_demo(options, display_factory=factory)
     except (ConfigError, SetupError) as exc:

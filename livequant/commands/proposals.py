@@ -14,7 +14,7 @@ from pathlib import Path
 from livequant.commands.run import DEFAULT_SESSION
 
 __all__ = ["register", "proposals_command", "ask_daemon", "NoDaemon", "NotRunning",
-           "print_caution"]
+           "print_caution", "print_proposals"]
 
 STATES = ("open", "accepted", "rejected", "expired")
 
@@ -29,7 +29,8 @@ class NotRunning(NoDaemon):
 
 def register(subparsers) -> None:
     p = subparsers.add_parser(
-        "proposals", help="list proposed scan regions (id, score, centre, size, reason)",
+        "proposals", help="list proposed scan regions (id, score, centre, size, rotation, "
+                          "pixel size, dwell, dose, reason)",
         description="List the scan regions proposed in a session, best first. Proposals are "
                     "suggestions: check the dose budget of a beam-sensitive specimen; facility "
                     "procedures and the instrument's interlocks come first.")
@@ -123,7 +124,7 @@ def proposals_command(args) -> int:
     from livequant.cli import EXIT_BAD_INPUT, EXIT_FAILURE
     from livequant.proposals.caution import CAUTION
 
-    source = "daemon"
+    source, reply = "daemon", {}
     try:
         reply = ask_daemon(Path(args.session), {"cmd": "proposals", "state": args.state},
                            timeout_s=args.timeout, client_key=getattr(args, "client_key", None))
@@ -143,20 +144,56 @@ def proposals_command(args) -> int:
             print(f"livequant proposals: cannot read the ledger: {exc}", file=sys.stderr)
             return EXIT_FAILURE
     rows = sorted(rows, key=lambda r: (r["state"] != "open", -(r["score"] or 0)))
+    current_pa = reply.get("beam_current_pa") if source == "daemon" else _configured_current()
     if args.json:
-        print(json.dumps({"source": source, "proposals": rows, "caution": CAUTION},
-                         default=str))
+        print(json.dumps({"source": source, "proposals": rows, "caution": CAUTION,
+                          "beam_current_pa": current_pa}, default=str))
         return 0
+    if not rows:
+        print("no proposals" + (f" in state {args.state}" if args.state else ""), file=sys.stderr)
+    else:
+        print_proposals(rows, beam_current_pa=current_pa)
+    if source == "ledger":
+        print("(no daemon running: read from the ledger)", file=sys.stderr)
+    if current_pa is None:
+        print("dose n/a: no beam current known (set proposals.beam_current_pa, picoamperes)",
+              file=sys.stderr)
+    print_caution()
+    return 0
+
+
+def _configured_current() -> float | None:
+    """``proposals.beam_current_pa`` of the configured settings (None when unset or unreadable)."""
+    from livequant.config import ConfigError, load_settings
+
+    try:
+        return load_settings().proposals.beam_current_pa
+    except ConfigError:
+        return None
+
+
+def print_proposals(rows, *, beam_current_pa=None, file=None) -> None:
+    """The proposals table on `file` (standard output).
+
+    At a terminal it takes the terminal's width and wraps long reasons at word
+    boundaries; piped (``livequant proposals | cat``) it has no width limit, one
+    line per proposal, so nothing is cut.
+    """
     from rich.console import Console
 
     from livequant.display.status import proposals_table
 
-    console = Console(stderr=True)
-    if not rows:
-        console.print("no proposals" + (f" in state {args.state}" if args.state else ""))
-    else:
-        console.print(proposals_table(rows, limit=len(rows), width=max(60, console.width)))
-    if source == "ledger":
-        console.print("(no daemon running: read from the ledger)", style="dim")
-    print_caution(console)
-    return 0
+    file = file or sys.stdout
+    tty = hasattr(file, "isatty") and file.isatty()
+    if tty:
+        console = Console(file=file)
+        console.print(proposals_table(rows, limit=len(rows), width=max(60, console.width),
+                                      beam_current_pa=beam_current_pa, wrap=True))
+        return
+    import io
+
+    buf = io.StringIO()
+    Console(file=buf, width=100_000, color_system=None, force_terminal=False).print(
+        proposals_table(rows, limit=len(rows), width=None, beam_current_pa=beam_current_pa))
+    for line in buf.getvalue().splitlines():
+        print(line.rstrip(), file=file)

@@ -1,4 +1,5 @@
-"""``livequant report SESSION``: maps and plots of a session as one HTML page with PNGs."""
+"""``livequant report SESSION``: maps and plots of a session as one HTML page with PNGs
+(and SVG or PDF copies), with a progress bar (a line per step when not at a terminal)."""
 
 from __future__ import annotations
 
@@ -10,11 +11,15 @@ __all__ = ["register", "report_command"]
 
 
 def register(subparsers) -> None:
-    from livequant.report.defaults import DEFAULT_HISTOGRAM_FRAMES, DEFAULT_MAX_FRAMES
+    from livequant.commands._common import positive_float
+    from livequant.report.defaults import (DEFAULT_DPI, DEFAULT_HISTOGRAM_FRAMES,
+                                           DEFAULT_MAX_FRAMES, DEFAULT_SMOOTH_CELLS,
+                                           DEFAULT_VECTOR, VECTOR_FORMATS)
 
     p = subparsers.add_parser(
         "report", help="write an HTML report (maps, plots, tables) of a session",
-        description="Write SESSION/report/index.html with PNG figures: frame footprints on the "
+        description="Write SESSION/report/index.html with PNG figures (and an SVG or PDF copy "
+                    "of each, for slides and print): frame footprints on the "
                     "specimen, drift, per-frame maps of the frames of interest (columns, "
                     "displacement, polarization, strain, walls, winding numbers), descriptor "
                     "histograms, fit quality against the Cramér-Rao bound, throughput, and "
@@ -37,6 +42,13 @@ def register(subparsers) -> None:
     p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                    help="a setting by its dotted key, e.g. "
                         "analysis.refine.gain_counts_per_electron=2.5")
+    p.add_argument("--dpi", type=positive_float, default=DEFAULT_DPI, metavar="DPI",
+                   help=f"resolution of the PNG figures, 20..1200 (default {DEFAULT_DPI:g})")
+    p.add_argument("--vector", choices=VECTOR_FORMATS, default=DEFAULT_VECTOR,
+                   help=f"a vector copy of every figure beside its PNG (default {DEFAULT_VECTOR})")
+    p.add_argument("--smooth-cells", type=float, default=DEFAULT_SMOOTH_CELLS, metavar="N",
+                   help="draw the |P| and strain maps also smoothed by a Gaussian of σ = N cells, "
+                        f"beside the raw maps; 0 for raw maps only (default {DEFAULT_SMOOTH_CELLS:g})")
     p.add_argument("--json", action="store_true", help="one JSON object on stdout")
     p.set_defaults(func=report_command)
 
@@ -57,11 +69,24 @@ def report_command(args) -> int:
             print(f"livequant report: --{name.replace('_', '-')} must be at least 1, got "
                   f"{getattr(args, name)}", file=sys.stderr)
             return EXIT_BAD_INPUT
+    if not 0 <= args.smooth_cells <= 10:
+        print(f"livequant report: --smooth-cells must lie within 0..10 cells, got "
+              f"{args.smooth_cells:g}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    if not 20 <= args.dpi <= 1200:
+        print(f"livequant report: --dpi must lie within 20..1200, got {args.dpi:g}",
+              file=sys.stderr)
+        return EXIT_BAD_INPUT
+    from livequant.report.progress import console_progress
+
     try:
-        result = build_report(Path(args.session), out_dir=args.out, frames=args.frames,
-                              max_frames=args.max_frames,
-                              gain=settings.analysis.refine.gain_counts_per_electron,
-                              histogram_frames=args.histogram_frames)
+        with console_progress("report") as progress:
+            result = build_report(Path(args.session), out_dir=args.out, frames=args.frames,
+                                  max_frames=args.max_frames,
+                                  gain=settings.analysis.refine.gain_counts_per_electron,
+                                  histogram_frames=args.histogram_frames, dpi=args.dpi,
+                                  vector=args.vector, smooth_cells=args.smooth_cells,
+                                  progress=progress)
     except SessionError as exc:
         print(f"livequant report: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
@@ -69,7 +94,8 @@ def report_command(args) -> int:
         print(json.dumps(result))
     for note in result["notes"]:
         print(f"note: {note}", file=sys.stderr)
-    print(f"report written: {result['index']} ({len(result['figures'])} figures, "
+    print(f"report written: {result['index']} ({len(result['figures'])} figures"
+          f"{' with ' + args.vector.upper() + ' copies' if args.vector != 'none' else ''}, "
           f"{result['n_frames']} frames, {result['n_flags']} flags, "
           f"{result['n_proposals']} proposals)", file=sys.stderr)
     return EXIT_OK

@@ -97,9 +97,11 @@ def run_command(args) -> int:
     display = None
     if use_console:
         from livequant.display import LiveDisplay
+        from livequant.display.live import daemon_decider
 
         display = LiveDisplay(lambda: daemon.snapshot,
-                              refresh_per_second=settings.daemon.refresh_per_second)
+                              refresh_per_second=settings.daemon.refresh_per_second,
+                              decide=daemon_decider(daemon))
     try:
         code = daemon.run(display=display)
     except SetupError as exc:

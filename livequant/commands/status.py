@@ -79,7 +79,9 @@ def status_command(args) -> int:
     st["warnings"] = tuple(st.get("warnings") or ())
     snap = Snapshot(**st, last=LastFrame(**last) if last else None)
     console = Console(stderr=True)
+    if not console.is_terminal:      # piped: wide enough that nothing is shortened
+        console = Console(stderr=True, width=160)
     if result.get("note"):
         console.print(result["note"], style="yellow")
-    console.print(render_status(snap))
+    console.print(render_status(snap, width=console.width))
     return 0

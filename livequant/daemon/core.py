@@ -669,7 +669,8 @@ class Daemon:
         return self.decisions
 
     def _cmd_proposals(self, req: dict) -> dict:
-        return {"proposals": self._decision_loop().list(req.get("state")), "caution": CAUTION}
+        return {"proposals": self._decision_loop().list(req.get("state")), "caution": CAUTION,
+                "beam_current_pa": self.settings.proposals.beam_current_pa}
 
     def _cmd_accept(self, req: dict) -> dict:
         return self._decision_loop().accept(req.get("id"), note=req.get("note"))

@@ -362,7 +362,8 @@ class DecisionLoop:
                     "drift": {"velocity_nm_per_s": [float(v[0]), float(v[1])],
                               "sigma_v_nm_per_s": float(sv), "pairs": self.model.n_pairs,
                               "ambiguous": self.tracker.n_ambiguous},
-                    "proposals": self.planner.status(), "auto_accept": self.cfg.auto_accept}
+                    "proposals": self.planner.status(), "auto_accept": self.cfg.auto_accept,
+                    "beam_current_pa": self.cfg.beam_current_pa}
 
     def snapshot_tables(self) -> tuple[tuple, tuple]:
         """``(proposals, flags)`` for the display: open first, then the latest decided.

@@ -1,11 +1,15 @@
 """``render_status(snapshot) -> renderable``: the daemon's panel, as a pure function.
 
-Sized for an 80 x 24 terminal: at most 18 lines and no line wider than 80
-columns once the panel border is drawn.  Long paths are shortened from the
-left (the end of a path is the part that tells sessions apart).  Once the
-decision loop has something to show, a proposals table (ids, so the operator
-can ``livequant accept ID``) and a panel of recent flags follow the status
-panel; warnings then shrink to two lines so the whole fits 80 x 30.
+The panel takes the terminal's width (``width``) and degrades cleanly down to
+80 x 24: at most 18 lines of status, no line wider than `width` once the
+border is drawn.  Long paths are shortened from the left (the end of a path is
+the part that tells sessions apart).  Once the decision loop has something to
+show, a proposals table (ids, rotation, suggested pixel size and dwell, the
+dose that scan would deliver, reason) and a panel of recent flags follow the
+status panel; warnings then shrink to two lines so the whole fits 80 x 30.
+With keys enabled (``ui`` given) the chosen proposal is marked, the keys are
+listed, and a decision waiting for confirmation shows the proposal with the
+safety caution before anything is sent.
 """
 
 from __future__ import annotations
@@ -19,7 +23,8 @@ from rich.text import Text
 from livequant.daemon.status import Snapshot
 from livequant.textfmt import plus_minus
 
-__all__ = ["render_status", "format_duration", "shorten_path", "proposals_table", "flags_table"]
+__all__ = ["render_status", "format_duration", "shorten_path", "proposals_table", "flags_table",
+           "proposal_dose", "proposal_cells", "confirm_panel"]
 
 _STATE_STYLE = {"running": "bold green", "paused": "bold yellow", "draining": "bold yellow",
                 "starting": "bold cyan", "stopped": "bold red", "offline": "bold red"}
@@ -56,18 +61,31 @@ def _seconds(value: float | None) -> str:
     return "-" if value is None else f"{value:.2f} s"
 
 
-def render_status(snap: Snapshot):
-    """Build the status panel for one snapshot (no side effects, no terminal access)."""
+def render_status(snap: Snapshot, *, width: int = 80, ui=None):
+    """Build the status panel for one snapshot (no side effects, no terminal access).
+
+    Parameters
+    ----------
+    snap : Snapshot
+    width : int
+        The terminal's width in columns (at least 60 is used).
+    ui : livequant.display.keys.PanelState, optional
+        The operator's choice when the display takes keys: the chosen proposal
+        is marked, the keys are listed, and a pending decision shows the
+        proposal and the caution.
+    """
+    width = max(60, int(width))
+    text_w = width - 4 - 10     # border and padding, label column
     c = snap.counts
     grid = Table.grid(padding=(0, 1))
     grid.add_column(style="bold", no_wrap=True, width=9)
-    grid.add_column(no_wrap=True, overflow="ellipsis", max_width=66)
+    grid.add_column(no_wrap=True, overflow="ellipsis", max_width=text_w)
 
-    grid.add_row("session", shorten_path(snap.session, 66))
+    grid.add_row("session", shorten_path(snap.session, text_w))
     if snap.state == "offline":
         watching = "(no daemon running: counts from the ledger)"
     else:
-        watching = shorten_path(snap.watch, 66) if snap.watch else "(socket only)"
+        watching = shorten_path(snap.watch, text_w) if snap.watch else "(socket only)"
     grid.add_row("watching", watching)
 
     frames = Text()
@@ -120,16 +138,51 @@ def render_status(snap: Snapshot):
 
     title = Text.assemble(("livequant ", "bold"), (snap.state, _STATE_STYLE.get(snap.state, "")))
     subtitle = f"up {format_duration(snap.uptime_s)}" if snap.state != "offline" else None
-    panel = Panel(Group(grid), title=title, subtitle=subtitle, box=box.ROUNDED, width=80,
+    panel = Panel(Group(grid), title=title, subtitle=subtitle, box=box.ROUNDED, width=width,
                   padding=(0, 1))
     if not has_decisions:
         return panel
     parts = [panel]
+    current_a = (snap.decisions or {}).get("beam_current_pa")
     if snap.proposals:
-        parts.append(proposals_table(snap.proposals, limit=_MAX_PROPOSALS))
+        from livequant.display.keys import KEY_HELP, current
+
+        chosen = current(ui, snap.proposals) if ui is not None else None
+        if ui is not None and ui.pending is not None:
+            # right under the status, so a 24-line terminal never crops it away
+            row = next((p for p in snap.proposals if str(p.get("id")) == ui.pending[1]), None)
+            parts.append(confirm_panel(ui.pending[0], ui.pending[1], row, width=width,
+                                       beam_current_pa=current_a))
+        parts.append(proposals_table(snap.proposals, limit=_MAX_PROPOSALS, width=width,
+                                     selected=chosen, beam_current_pa=current_a))
+        if ui is not None:
+            if ui.pending is None:
+                parts.append(Text(KEY_HELP, style="dim", no_wrap=True, overflow="ellipsis"))
+            if ui.message:
+                parts.append(Text(ui.message, style="cyan", no_wrap=True, overflow="ellipsis"))
     if snap.flags:
-        parts.append(flags_table(snap.flags, limit=_MAX_FLAGS))
+        parts.append(flags_table(snap.flags, limit=_MAX_FLAGS, width=width))
     return Group(*parts)
+
+
+def confirm_panel(verb: str, pid: str, row: dict | None, *, width: int = 80,
+                  beam_current_pa: float | None = None) -> Panel:
+    """A decision waiting for ``y``: the proposal, its dose and (to accept) the caution."""
+    from livequant.proposals.propose import CAUTION
+
+    body = Text()
+    if row is not None:
+        c = proposal_cells(row, beam_current_pa)
+        body.append(f"{pid}: centre ({c['centre']}) nm, size {c['size']} nm, rotation "
+                    f"{c['rot']}, pixel {c['px']} pm, dwell {c['dwell']} µs, dose {c['dose']} "
+                    "e/Å²\n")
+        body.append(f"{c['reason']}\n", style="dim")
+    if verb == "accept":
+        body.append(f"caution: {CAUTION}\n", style="yellow")
+    body.append(f"press y to {verb} {pid}, any other key to cancel", style="bold")
+    return Panel(body, title=f"{verb} {pid}?", title_align="left", box=box.HEAVY,
+                 border_style="yellow" if verb == "accept" else "", width=width,
+                 padding=(0, 1))
 
 
 def _decisions_line(d: dict) -> Text:
@@ -156,34 +209,128 @@ def _nm(v) -> str:
     return "-" if v is None else f"{v:.1f}"
 
 
-def proposals_table(rows, *, limit: int = _MAX_PROPOSALS, width: int = 80) -> Table:
-    """Proposals with their ids: state, score, centre and size (nm), reason.
+def _num(v, fmt: str) -> str:
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return "-"
+    return format(f, fmt) if f == f else "-"
 
-    The id, state, score, centre and size keep their full width (the operator
-    needs the id to accept); only the reason is shortened to fit.
+
+def proposal_dose(row: dict, beam_current_pa: float | None = None) -> float | None:
+    """Dose (e/Å²) the proposal's suggested scan would deliver, None when unknown.
+
+    The proposal's own ``beam_current_pa`` wins over the configured one
+    (``proposals.beam_current_pa``); see :mod:`livequant.scan_dose`.
+    """
+    from livequant.scan_dose import dose_e_per_A2
+
+    current = row.get("beam_current_pa")
+    if current is None:
+        current = beam_current_pa
+    return dose_e_per_A2(current, row.get("dwell_time_us"), row.get("pixel_size_pm"))
+
+
+def proposal_cells(row: dict, beam_current_pa: float | None = None) -> dict[str, str]:
+    """One proposal as the table's text cells, by column name."""
+    from livequant.scan_dose import format_dose
+
+    c = row.get("center_nm") or (None, None)
+    sz = row.get("size_nm") or (None, None)
+    rot = row.get("rotation_deg")
+    return {"id": str(row.get("id")), "state": str(row.get("state", "")),
+            "score": _num(row.get("score"), ".2f"),
+            "centre": f"{_nm(c[0])}, {_nm(c[1])}",
+            "size": f"{_nm(sz[0])} x {_nm(sz[1])}",
+            "rot": "-" if rot is None else f"{_num(rot, '.0f')}°",
+            "px": _num(row.get("pixel_size_pm"), ".3g"),
+            "dwell": _num(row.get("dwell_time_us"), ".3g"),
+            "dose": format_dose(proposal_dose(row, beam_current_pa)),
+            "reason": str(row.get("reason") or "")}
+
+
+#: Columns of the proposals table (two-line headers keep them narrow), and the order in
+#: which a narrow terminal leaves them out (the centre first: accepting shows it).
+_PROPOSAL_COLUMNS = ("id", "state", "score", "centre", "size", "rot", "px", "dwell", "dose")
+_HEADERS = {"centre": "centre\nnm", "size": "size\nnm", "px": "px\npm", "dwell": "dwell\nµs",
+            "dose": "dose\ne/Å²"}
+_DROP_ORDER = ("centre", "px", "dwell", "rot")
+_RIGHT = ("score", "rot", "px", "dwell", "dose")
+_MIN_REASON = 16
+
+
+def proposals_table(rows, *, limit: int = _MAX_PROPOSALS, width: int | None = 80,
+                    selected: str | None = None, beam_current_pa: float | None = None,
+                    wrap: bool = False) -> Table:
+    """Proposals with their ids, scan geometry, suggested scan and dose, and reason.
+
+    Parameters
+    ----------
+    rows : sequence of dict
+        Proposal briefs (``id``, ``state``, ``score``, ``center_nm``, ``size_nm``,
+        ``rotation_deg``, ``pixel_size_pm``, ``dwell_time_us``, ``reason``, and
+        optionally ``beam_current_pa``).
+    limit : int
+        Rows shown; the rest are counted in the caption.  The window follows
+        `selected` so the chosen proposal is always on screen.
+    width : int or None
+        Width to fit.  The id, state, score, rotation, pixel size, dwell and
+        dose always keep their full width (the operator needs them to decide);
+        below about 100 columns the centre is left out (named in the caption),
+        and the reason takes the rest.  None: no limit (piped output), one
+        line per proposal, nothing cut.
+    selected : str, optional
+        Id of the proposal chosen on the display (marked with ``›``).
+    beam_current_pa : float, optional
+        Probe current for the dose column (``n/a`` without one).
+    wrap : bool
+        Wrap long reasons onto more lines at word boundaries instead of
+        shortening them with an ellipsis.
     """
     rows = list(rows)
-    cells = []
-    for r in rows[:limit]:
-        c = r.get("center_nm") or (None, None)
-        sz = r.get("size_nm") or (None, None)
-        cells.append((str(r.get("id")), r.get("state", ""),
-                      "-" if r.get("score") is None else f"{r['score']:.2f}",
-                      f"{_nm(c[0])}, {_nm(c[1])}", f"{_nm(sz[0])} x {_nm(sz[1])}",
-                      str(r.get("reason") or "")))
-    heads = ("proposal", "state", "score", "centre nm", "size nm")
-    fixed = [max([len(h)] + [len(row[k]) for row in cells]) for k, h in enumerate(heads)]
-    t = Table(title=None, box=box.SIMPLE_HEAD, width=width, padding=(0, 1), expand=False,
-              title_justify="left")
-    for k, head in enumerate(heads):
-        t.add_column(head, no_wrap=True, min_width=fixed[k],
-                     justify="right" if head == "score" else "left")
-    reason_w = max(8, width - sum(fixed) - 2 * len(fixed) - 4)
-    t.add_column("reason", no_wrap=True, overflow="ellipsis", min_width=8, max_width=reason_w)
-    for row in cells:
-        t.add_row(row[0], Text(row[1], style=_PROPOSAL_STYLE.get(row[1], "")), *row[2:])
-    if len(rows) > limit:
-        t.caption = f"{len(rows) - limit} more: livequant proposals"
+    start = 0
+    ids = [str(r.get("id")) for r in rows]
+    if selected in ids and ids.index(selected) >= limit:
+        start = ids.index(selected) - limit + 1
+    shown = rows[start:start + limit]
+    cells = [proposal_cells(r, beam_current_pa) for r in shown]
+    for cell in cells:
+        cell["id"] = ("› " if cell["id"] == selected else "") + cell["id"]
+    heads = list(_PROPOSAL_COLUMNS)
+    fixed = {h: max([len(x) for x in _HEADERS.get(h, h).split("\n")] +
+                    [len(c[h]) for c in cells]) for h in heads}
+    dropped = []
+    if width is not None:
+        for h in _DROP_ORDER:
+            if sum(fixed[x] + 1 for x in heads) + _MIN_REASON <= width:
+                break
+            heads.remove(h)
+            dropped.append(_HEADERS.get(h, h).replace("\n", " "))
+    # the box draws one space between columns and no edges: the table is as wide as its content
+    t = Table(box=box.SIMPLE_HEAD, padding=(0, 0), show_edge=False, expand=False)
+    for h in heads:
+        t.add_column(_HEADERS.get(h, h), no_wrap=True, min_width=fixed[h],
+                     justify="right" if h in _RIGHT else "left")
+    if width is None:
+        t.add_column("reason", no_wrap=True)
+    else:
+        reason_w = max(8, width - sum(fixed[h] + 1 for h in heads))
+        t.add_column("reason", no_wrap=not wrap, overflow="fold" if wrap else "ellipsis",
+                     max_width=reason_w)
+    for c in cells:
+        style = _PROPOSAL_STYLE.get(c["state"], "")
+        first = Text(c["id"], style="reverse" if c["id"].startswith("›") else "")
+        t.add_row(first, Text(c["state"], style=style), *(c[h] for h in heads[2:]),
+                  c["reason"])
+    notes = []
+    if start:
+        notes.append(f"{start} above")
+    if len(rows) > start + limit:
+        notes.append(f"{len(rows) - start - limit} more: livequant proposals")
+    if dropped:
+        notes.append(f"not shown: {', '.join(dropped)} (wider terminal)")
+    if notes:
+        t.caption = "; ".join(notes)
     return t
 
 

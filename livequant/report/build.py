@@ -14,7 +14,9 @@ import math
 import re
 import shutil
 import time
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Callable
 
 import numpy as np
 
@@ -26,14 +28,19 @@ from livequant.report.data import (FrameData, SessionData, column_crlb_pm, fmt_t
                                    frame_footprint_nm, frames_of_interest, load_frame,
                                    load_session, payload_get, read_cells_csv, region_corners_nm,
                                    region_corners_px, stage_region_corners_nm)
-from livequant.report.maps import cell_grid, wall_profile, winding_map
+from livequant.report.maps import DEFAULT_SMOOTH_CELLS, cell_grid, wall_profile, winding_map
+from livequant.report.maps import smooth_cells as smooth_cell_values
 from livequant.report.page import SAFETY_CAUTION, FigureRef, Section, Table, render_page
 from livequant.textfmt import plus_minus
 
-__all__ = ["build_report", "DEFAULT_MAX_FRAMES", "DEFAULT_HISTOGRAM_FRAMES"]
+__all__ = ["build_report", "DEFAULT_MAX_FRAMES", "DEFAULT_HISTOGRAM_FRAMES", "DEFAULT_DPI",
+           "DEFAULT_VECTOR", "VECTOR_FORMATS", "ReportContext", "SECTIONS_BEFORE_FRAMES",
+           "SECTIONS_AFTER_FRAMES"]
 
 log = logging.getLogger("livequant.report")
 
+from livequant.report.defaults import (DEFAULT_DPI, DEFAULT_HISTOGRAM_FRAMES,  # noqa: E402
+                                       DEFAULT_MAX_FRAMES, DEFAULT_VECTOR, VECTOR_FORMATS)
 
 _HIST_FIELDS = (("d_pm", "B-site displacement |d|", "pm", 1.0),
                 ("a_pm", "local a", "pm", 1.0),
@@ -53,11 +60,13 @@ def _slug(text: str) -> str:
 
 
 class _Figures:
-    """Saves figures under OUT/figures with unique names and remembers them."""
+    """Saves figures under OUT/figures with unique names (PNG and its vector twin)."""
 
-    def __init__(self, out: Path):
+    def __init__(self, out: Path, *, dpi: float = DEFAULT_DPI, vector: str = DEFAULT_VECTOR):
         self.dir = out / "figures"
+        self.dpi, self.vector = dpi, vector
         self.names: list[str] = []
+        self.vector_names: list[str] = []
 
     def save(self, fig, name: str, caption: str, alt: str = "") -> FigureRef:
         base = _slug(name)
@@ -65,14 +74,37 @@ class _Figures:
         while fname in self.names:
             k += 1
             fname = f"{base}-{k}.png"
-        F.save_png(fig, self.dir / fname)
+        vec = None if self.vector == "none" else fname[:-4] + "." + self.vector
+        F.save_figure(fig, self.dir / fname, dpi=self.dpi,
+                      vector=None if vec is None else self.dir / vec)
         self.names.append(fname)
-        return FigureRef(src=f"figures/{fname}", caption=caption, alt=alt or caption)
+        if vec:
+            self.vector_names.append(vec)
+        return FigureRef(src=f"figures/{fname}", caption=caption, alt=alt or caption,
+                         vector=f"figures/{vec}" if vec else "")
+
+
+@dataclass
+class ReportContext:
+    """What the section builders read: the session, the figure saver, the frames drawn
+    in full (filled before :data:`SECTIONS_AFTER_FRAMES` run) and the notes to add to."""
+
+    session: SessionData
+    figs: _Figures
+    notes: list[str]
+    t0: float | None
+    gain: float = 1.0
+    histogram_frames: int = DEFAULT_HISTOGRAM_FRAMES
+    summaries: dict[str, dict] = field(default_factory=dict)
+    frame_data: list[FrameData] = field(default_factory=list)
 
 
 def build_report(session_dir: str | Path, *, out_dir: str | Path | None = None,
                  frames: list[str] | None = None, max_frames: int = DEFAULT_MAX_FRAMES,
-                 gain: float = 1.0, histogram_frames: int = DEFAULT_HISTOGRAM_FRAMES) -> dict:
+                 gain: float = 1.0, histogram_frames: int = DEFAULT_HISTOGRAM_FRAMES,
+                 dpi: float = DEFAULT_DPI, vector: str = DEFAULT_VECTOR,
+                 smooth_cells: float = DEFAULT_SMOOTH_CELLS,
+                 progress: Callable[[str, int, int], None] | None = None) -> dict:
     """Write the report of one session and return its numbers (JSON-ready).
 
     Parameters
@@ -91,6 +123,16 @@ def build_report(session_dir: str | Path, *, out_dir: str | Path | None = None,
         (for the Cramér-Rao bound of the columns).
     histogram_frames : int
         At most this many done frames feed the descriptor histograms.
+    dpi : float
+        Resolution of the PNG figures (20..1200).
+    vector : {"svg", "pdf", "none"}
+        A vector copy of every figure beside its PNG (linked under each figure).
+    smooth_cells : float
+        Gaussian σ, in cells, of the smoothed |P| and strain maps drawn beside
+        the raw ones (0: raw maps only); see :func:`livequant.report.maps.smooth_cells`.
+    progress : callable, optional
+        ``progress(step, k, n)`` before each of the n steps and ``("done", n, n)``
+        at the end (see :mod:`livequant.report.progress`).
 
     Raises
     ------
@@ -105,36 +147,48 @@ def build_report(session_dir: str | Path, *, out_dir: str | Path | None = None,
         raise ValueError(f"`gain` must be a positive number, got {gain!r}")
     if histogram_frames < 1:
         raise ValueError(f"`histogram_frames` must be >= 1, got {histogram_frames}")
+    if vector not in VECTOR_FORMATS:
+        raise ValueError(f"`vector` must be one of {', '.join(VECTOR_FORMATS)}, got {vector!r}")
+    if not (20 <= dpi <= 1200):
+        raise ValueError(f"`dpi` must lie within 20..1200, got {dpi!r}")
+    if not (0 <= smooth_cells <= 10):
+        raise ValueError(f"`smooth_cells` must lie within 0..10 cells, got {smooth_cells!r}")
+    say = progress or (lambda step, k, n: None)
     t_start = time.perf_counter()
+    say("reading the session", 0, 1)
     session = load_session(session_dir)
     out = Path(out_dir) if out_dir is not None else session.root / "report"
     out.mkdir(parents=True, exist_ok=True)
     if (out / "figures").exists():
-        shutil.rmtree(out / "figures")  # only our own PNGs live there
-    figs = _Figures(out)
-    notes = list(session.problems)
-    t0 = session.t0
-
-    summaries = _done_summaries(session, notes)
+        shutil.rmtree(out / "figures")  # only our own figures live there
+    figs = _Figures(out, dpi=dpi, vector=vector)
+    ctx = ReportContext(session=session, figs=figs, notes=list(session.problems),
+                        t0=session.t0, gain=gain, histogram_frames=histogram_frames)
+    ctx.summaries = _done_summaries(session, ctx.notes)
     chosen, choose_notes = frames_of_interest(session, max_frames=max_frames, requested=frames)
-    notes += choose_notes
+    ctx.notes += choose_notes
 
-    sections: list[Section] = [_summary_section(session, t0)]
-    sections.append(_overview_section(session, summaries, figs, t0))
-    sections.append(_flags_section(session, t0))
-    sections.append(_proposals_section(session, t0))
-    frame_data: list[FrameData] = []
+    n_steps = len(SECTIONS_BEFORE_FRAMES) + len(chosen) + len(SECTIONS_AFTER_FRAMES) + 1
+    step = 0
+    sections: list[Section] = []
+    for label, builder in SECTIONS_BEFORE_FRAMES:
+        say(label, step, n_steps)
+        step += 1
+        sections += builder(ctx)
     frame_sections: list[Section] = []
     for fid in chosen:
+        say(f"frame {fid}", step, n_steps)
+        step += 1
         try:
-            fd = load_frame(session, fid, summary=summaries.get(fid))
+            fd = load_frame(session, fid, summary=ctx.summaries.get(fid))
         except (OSError, ValueError) as exc:
             msg = f"frame {fid}: its outputs could not be read ({exc}); it is left out"
             log.warning(msg)
-            notes.append(msg)
+            ctx.notes.append(msg)
             continue
-        frame_data.append(fd)
-        frame_sections += _frame_sections(fd, session, figs)
+        ctx.frame_data.append(fd)
+        frame_sections += _frame_sections(fd, session, figs, smooth=smooth_cells)
+    frame_data = ctx.frame_data
     intro_frames = Section("frames", "Frames of interest", paragraphs=[
         "Frames with flags come first (one for each kind of finding first), then the most "
         "recent ones." if not frames else
@@ -143,10 +197,12 @@ def build_report(session_dir: str | Path, *, out_dir: str | Path | None = None,
                                                                 frame_data) or "none") + "."])
     sections.append(intro_frames)
     sections += frame_sections
-    sections.append(_histogram_section(session, figs, histogram_frames,
-                                       loaded={fd.frame_id: fd.cells for fd in frame_data}))
-    sections.append(_fit_quality_section(frame_data, figs, gain))
-    sections.append(_throughput_section(session, figs, t0))
+    for label, builder in SECTIONS_AFTER_FRAMES:
+        say(label, step, n_steps)
+        step += 1
+        sections += builder(ctx)
+    say("writing the page", step, n_steps)
+    notes, t0 = ctx.notes, ctx.t0
     if notes:
         sections.append(Section("notes", "Notes", paragraphs=notes))
 
@@ -163,8 +219,10 @@ def build_report(session_dir: str | Path, *, out_dir: str | Path | None = None,
     result.update({"index": str(out / "index.html"), "out_dir": str(out),
                    "figures": [f"figures/{n}" for n in figs.names],
                    "frames_drawn": [fd.frame_id for fd in frame_data],
-                   "notes": notes, "seconds": time.perf_counter() - t_start})
+                   "vector_figures": [f"figures/{n}" for n in figs.vector_names],
+                   "dpi": dpi, "notes": notes, "seconds": time.perf_counter() - t_start})
     write_json_atomic(out / "report.json", result)
+    say("done", n_steps, n_steps)
     return result
 
 
@@ -382,7 +440,8 @@ def _num_or_blank(v):
 # ----------------------------------------------------------------- per frame
 
 
-def _frame_sections(fd: FrameData, session: SessionData, figs: _Figures) -> list[Section]:
+def _frame_sections(fd: FrameData, session: SessionData, figs: _Figures, *,
+                    smooth: float = DEFAULT_SMOOTH_CELLS) -> list[Section]:
     fid = fd.frame_id
     px = fd.pixel_size_pm
     rows, cols = fd.shape
@@ -441,37 +500,61 @@ def _frame_sections(fd: FrameData, session: SessionData, figs: _Figures) -> list
         sections[0].paragraphs.append("Too few cells on a 2D grid for maps.")
         return sections
     pol = info.get("polarization") or {}
+    sm = float(smooth)
+    sm_title = f"Gaussian σ = {sm:g} cell{'s' if sm != 1 else ''}"
+    sm_note = (f" Beside each raw map, the same quantity smoothed with a Gaussian of σ = {sm:g} "
+               f"cell{'s' if sm != 1 else ''} over the cell grid (a normalised average over "
+               "the cells present, so holes and the frame's edge do not bias it; noise per cell "
+               f"drops about {max(1.0, 2 * math.sqrt(math.pi) * sm):.1f}-fold, features "
+               f"narrower than about {2 * sm:g} cells are blurred). Each map has its own colour "
+               "range." if sm > 0 else "")
+
+    def smoothed(v):
+        return smooth_cell_values(grid, v, sm)
+
     if np.isfinite(cells.get("pol_x_C_per_m2", np.array([np.nan]))).any():
-        mag = np.hypot(cells["pol_x_C_per_m2"], cells["pol_y_C_per_m2"])
-        ang = np.degrees(np.arctan2(cells["pol_y_C_per_m2"], cells["pol_x_C_per_m2"])) % 360
-        panels = [F.MapPanel("|P|", mag, kind="magnitude", unit="|P| (C/m²)"),
-                  F.MapPanel("direction of P", ang, kind="angle",
-                             unit="atan2(Py, Px) (deg)")]
-        what = (f"Polarization estimate ({pol.get('label', 'from the B-site displacement')}"
-                f"{', ' + str(pol.get('material')) if pol.get('material') else ''})")
+        px_, py_ = cells["pol_x_C_per_m2"], cells["pol_y_C_per_m2"]
+        name, unit, what = "P", "C/m²", (
+            f"Polarization estimate ({pol.get('label', 'from the B-site displacement')}"
+            f"{', ' + str(pol.get('material')) if pol.get('material') else ''})")
     else:
-        panels = [F.MapPanel("|d|", cells["d_pm"], kind="magnitude", unit="|d| (pm)"),
-                  F.MapPanel("direction of d", cells["d_angle_deg"] % 360,
-                             kind="angle", unit="atan2(dy, dx) (deg)")]
-        what = ("No polarization estimate (" + str(pol.get("reason") or "not computed") +
-                "); the B-site displacement magnitude and direction are shown instead")
+        px_, py_ = cells["dx_pm"], cells["dy_pm"]
+        name, unit, what = "d", "pm", (
+            "No polarization estimate (" + str(pol.get("reason") or "not computed") +
+            "); the B-site displacement magnitude and direction are shown instead")
+    mag = np.hypot(px_, py_)
+    ang = np.degrees(np.arctan2(py_, px_)) % 360
+    panels = [F.MapPanel(f"|{name}|", mag, kind="magnitude", unit=f"|{name}| ({unit})")]
+    if sm > 0:
+        spx, spy = smoothed(px_), smoothed(py_)
+        panels.append(F.MapPanel(f"|{name}|, {sm_title}", np.hypot(spx, spy),
+                                 kind="magnitude", unit=f"|{name}| ({unit})"))
+    panels.append(F.MapPanel(f"direction of {name}", ang, kind="angle",
+                             unit=f"atan2({name}y, {name}x) (deg)"))
+    if sm > 0:
+        panels.append(F.MapPanel(f"direction, {sm_title}", np.degrees(np.arctan2(spy, spx)) % 360,
+                                 kind="angle", unit=f"atan2({name}y, {name}x) (deg)"))
     polygons = grid.cell_polygons(cx, cy)
     fig = F.cell_maps(polygons, panels, extent_nm=extent, image=image,
-                      title=f"{fid}: polarization" if "Polar" in what else f"{fid}: displacement")
+                      title=f"{fid}: polarization" if name == "P" else f"{fid}: displacement")
     refs.append(figs.save(fig, f"{slug}-polarization",
-                          f"{what}: magnitude (viridis) and direction (cyclic map; x = image "
-                          "columns, y = image rows pointing down, angles from +x towards +y)."
-                          + no_image))
-    strain_panels = [F.MapPanel("εxx", cells["exx"], kind="signed",
-                                unit="εxx (%)", scale=100.0),
-                     F.MapPanel("εyy", cells["eyy"], kind="signed",
-                                unit="εyy (%)", scale=100.0),
-                     F.MapPanel("εxy", cells["exy"], kind="signed",
-                                unit="εxy (%)", scale=100.0),
-                     F.MapPanel("lattice rotation", cells["rotation_deg"],
-                                kind="signed", unit="rotation (deg)"),
-                     F.MapPanel("tetragonality c/a", cells["c_over_a"],
-                                kind="secondary", unit="max(a, b) / min(a, b)")]
+                          f"{what}: magnitude (viridis) and direction (constant-lightness "
+                          "cyclic map; x = image columns, y = image rows pointing down, angles "
+                          "from +x towards +y)." + (" The smoothed maps average the vector, "
+                          "so |P| is the magnitude of the local mean polarization." if sm > 0
+                                                    else "") + sm_note + no_image))
+    strain_panels = []
+    for key, label in (("exx", "εxx"), ("eyy", "εyy"), ("exy", "εxy")):
+        strain_panels.append(F.MapPanel(label, cells[key], kind="signed",
+                                        unit=f"{label} (%)", scale=100.0))
+    if sm > 0:
+        for key, label in (("exx", "εxx"), ("eyy", "εyy"), ("exy", "εxy")):
+            strain_panels.append(F.MapPanel(f"{label}, {sm_title}", smoothed(cells[key]),
+                                            kind="signed", unit=f"{label} (%)", scale=100.0))
+    strain_panels += [F.MapPanel("lattice rotation", cells["rotation_deg"],
+                                 kind="signed", unit="rotation (deg)"),
+                      F.MapPanel("tetragonality c/a", cells["c_over_a"],
+                                 kind="secondary", unit="max(a, b) / min(a, b)")]
     tilt_measured = np.isfinite(cells.get("tilt_deg", np.array([np.nan]))).any()
     if tilt_measured:
         strain_panels.append(F.MapPanel("octahedral tilt", cells["tilt_deg"],
@@ -485,7 +568,8 @@ def _frame_sections(fd: FrameData, session: SessionData, figs: _Figures) -> list
                           f"Strain components from the column positions against {ref} "
                           "(diverging map centred on zero, range at the 99th percentile of "
                           "|value|), local lattice rotation, tetragonality" +
-                          (" and octahedral tilt." if tilt_measured else ".") + tilt_note))
+                          (" and octahedral tilt." if tilt_measured else ".") + tilt_note +
+                          sm_note))
     wall, accepted = info.get("wall"), True
     if not wall and info.get("wall_candidate"):
         wall, accepted = info["wall_candidate"], False
@@ -523,8 +607,14 @@ def _frame_sections(fd: FrameData, session: SessionData, figs: _Figures) -> list
                 + (" (list truncated)" if topo.get("cores_truncated") else ""))
         cores += flagged
         fig = F.winding_figure(w.ravel(), grid.plaquette_polygons(), cores, extent_nm=extent,
-                               image=image,
+                               image=image, min_snr=min_snr,
                                title=f"{fid}: winding numbers", note=note)
+        wr = w.ravel()
+        fin = np.isfinite(wr)
+        why = F.winding_explanation(wr.size, int(fin.sum()), int((fin & (wr != 0)).sum()),
+                                    min_snr=min_snr, n_flagged=len(flagged))
+        if why:
+            sections[0].paragraphs.append(f"Winding map of {fid}: {why}")
         refs.append(figs.save(fig, f"{slug}-winding",
                               "Winding number of the displacement field on every plaquette of "
                               "four cells (+1 for vortices of either circulation, sources and "
@@ -645,3 +735,23 @@ def _throughput_section(session: SessionData, figs: _Figures, t0) -> Section:
                     "from being complete on disk to its outputs being written, and the time its "
                     "analysis took in the worker.")
     return Section("throughput", "Throughput and lag", figures=[ref])
+
+
+# ----------------------------------------------------------------- the page's order
+
+#: Sections before the frames drawn in full, then after them: ``(progress label,
+#: builder(ctx) -> list of Section)``.  To add a section to the report, append a
+#: builder here (it runs as one progress step).
+SECTIONS_BEFORE_FRAMES: list[tuple[str, Callable[[ReportContext], list[Section]]]] = [
+    ("session tables", lambda c: [_summary_section(c.session, c.t0)]),
+    ("overview and drift", lambda c: [_overview_section(c.session, c.summaries, c.figs, c.t0)]),
+    ("flags", lambda c: [_flags_section(c.session, c.t0)]),
+    ("proposals", lambda c: [_proposals_section(c.session, c.t0)]),
+]
+SECTIONS_AFTER_FRAMES: list[tuple[str, Callable[[ReportContext], list[Section]]]] = [
+    ("histograms", lambda c: [_histogram_section(
+        c.session, c.figs, c.histogram_frames,
+        loaded={fd.frame_id: fd.cells for fd in c.frame_data})]),
+    ("fit quality", lambda c: [_fit_quality_section(c.frame_data, c.figs, c.gain)]),
+    ("throughput", lambda c: [_throughput_section(c.session, c.figs, c.t0)]),
+]

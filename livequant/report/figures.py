@@ -20,8 +20,19 @@ colour-vision deficiencies):
   blue-yellow axis those viewers keep.  ``RdBu``/``RdYlGn``-type maps with a
   green arm or a dark centre are avoided.  The colour range is symmetric about
   zero so white means zero;
-* angles -- ``twilight``, a cyclic map whose two ends meet (0 and 360 degrees
-  look the same), uniform in lightness around the circle;
+* angles -- :func:`cyclic_direction_map`, a cyclic map of constant CIELAB
+  lightness (L* = 58) and chroma (C* = 33, the most that stays inside sRGB at
+  every hue) whose hue turns once around the
+  circle, so 0 and 360 degrees meet and no direction is darker than another:
+  arrows of every direction stay legible on the (lightened) image, where a
+  map with a dark arm (``twilight`` near 180 degrees) vanishes on black.  Equal
+  angle steps are equal hue steps at fixed L* and C*, about equal perceived
+  steps (the construction of isoluminant cyclic maps in Kovesi, "Good colour
+  maps: how to design them", arXiv:1509.03700 (2015) -- from memory).  The hue
+  circle is turned so that opposite directions 0/180 degrees -- the two
+  domains either side of a 180-degree wall -- fall on yellow and blue, which
+  stay apart for protan and deutan viewers; the arrows' own direction is the
+  first cue, colour the second;
 * categories (sublattices, flag kinds, proposal states) -- the Okabe-Ito
   palette (Okabe & Ito, "Color Universal Design", 2008 -- from memory), always
   paired with a distinct marker or line style so colour is never the only cue.
@@ -43,15 +54,15 @@ from matplotlib.patches import Polygon
 from matplotlib.ticker import MaxNLocator
 
 __all__ = ["CMAP_MAGNITUDE", "CMAP_SECONDARY", "CMAP_SIGNED", "CMAP_ANGLE", "CMAP_IMAGE",
-           "OKABE_ITO", "save_png", "image_with_columns", "displacement_arrows", "cell_maps",
+           "OKABE_ITO", "save_png", "save_figure", "cyclic_direction_map", "image_with_columns", "displacement_arrows", "cell_maps",
            "wall_profile_figure", "winding_figure", "overview_figure", "drift_figure",
            "histograms_figure", "fit_quality_figure", "throughput_figure", "MapPanel",
-           "nice_length"]
+           "nice_length", "winding_explanation", "lightened", "marker_size_pt"]
 
 CMAP_MAGNITUDE = "viridis"
 CMAP_SECONDARY = "cividis"
 CMAP_SIGNED = "coolwarm"
-CMAP_ANGLE = "twilight"
+CMAP_ANGLE = "livequant-direction"   # see cyclic_direction_map
 CMAP_IMAGE = "gray"
 
 #: Okabe-Ito colours: black, orange, sky blue, bluish green, yellow, blue, vermillion,
@@ -65,16 +76,89 @@ _SUBLATTICE_STYLE = {"A": (OKABE_ITO[1], "o"), "B": (OKABE_ITO[2], "s"),
 _PROPOSAL_STYLE = {"accepted": (OKABE_ITO[3], "-", 2.2), "open": (OKABE_ITO[1], "--", 1.4),
                    "rejected": (OKABE_ITO[7], ":", 1.4), "expired": ("#888888", ":", 1.0)}
 _DPI = 100
+#: Collections with more marks than this are drawn as images inside SVG/PDF figures.
+RASTER_ABOVE = 300
 
 
-def save_png(fig: Figure, path: str | Path) -> Path:
-    """Write `fig` as a PNG (Agg) and release it."""
+def _lab_to_srgb(L, a, b, *, clip: bool = True) -> np.ndarray:
+    """CIELAB (D65 white) to sRGB in 0..1 (CIE 1976 L*a*b*; IEC 61966-2-1 sRGB).
+
+    With ``clip=False`` the linear values are returned unclipped, to check the gamut.
+    """
+    fy = (np.asarray(L, float) + 16.0) / 116.0
+    fx, fz = fy + np.asarray(a, float) / 500.0, fy - np.asarray(b, float) / 200.0
+    eps = 6.0 / 29.0
+
+    def finv(t):
+        return np.where(t > eps, t ** 3, 3 * eps ** 2 * (t - 4.0 / 29.0))
+
+    xyz = np.stack([0.95047 * finv(fx), finv(fy), 1.08883 * finv(fz)], axis=-1)
+    m = np.array([[3.2406, -1.5372, -0.4986], [-0.9689, 1.8758, 0.0415],
+                  [0.0557, -0.2040, 1.0570]])
+    lin = xyz @ m.T
+    if not clip:
+        return lin
+    lin = np.clip(lin, 0.0, 1.0)
+    return np.where(lin <= 0.0031308, 12.92 * lin, 1.055 * lin ** (1 / 2.4) - 0.055)
+
+
+def cyclic_direction_map(n: int = 256, *, lightness: float = 58.0, chroma: float = 33.0,
+                         hue0_deg: float = 90.0) -> ListedColormap:
+    """A cyclic colour map of constant CIELAB lightness and chroma for directions.
+
+    Colour ``k / n`` of the map is CIELCh ``(lightness, chroma, hue0_deg + 360 k / n)``:
+    direction 0 deg is yellow (hue 90), 180 deg blue (hue 270).  At these values every
+    hue lies inside the sRGB gamut, so no colour is clipped and the lightness is the
+    same all around.
+    """
+    h = np.radians(hue0_deg + 360.0 * np.arange(n) / n)
+    rgb = _lab_to_srgb(np.full(n, lightness), chroma * np.cos(h), chroma * np.sin(h))
+    return ListedColormap(rgb, name=CMAP_ANGLE)
+
+
+def _angle_cmap():
+    return cyclic_direction_map()
+
+
+def save_figure(fig: Figure, path: str | Path, *, dpi: float = _DPI,
+                vector: str | Path | None = None) -> Path:
+    """Write `fig` as a PNG at `dpi` (Agg), and as SVG or PDF at `vector` (by its
+    suffix) when given, then release it.
+
+    Fonts are kept as text in SVG (``svg.fonttype = "none"``) so the labels stay
+    editable and searchable on slides.  Collections of more than
+    `RASTER_ABOVE` marks (cell maps, arrows, thousands of column markers) are
+    embedded as images at `dpi` in the vector file: the axes, ticks and text
+    stay vector, the file stays small and quick to write and to open.
+    """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     FigureCanvasAgg(fig)  # the Agg renderer, whatever backend the process has chosen
-    fig.savefig(path, format="png", dpi=_DPI)
+    fig.savefig(path, format="png", dpi=dpi)
+    if vector is not None:
+        vector = Path(vector)
+        fmt = vector.suffix.lstrip(".").lower()
+        if fmt not in ("svg", "pdf"):
+            raise ValueError(f"vector figure {vector}: the suffix must be .svg or .pdf")
+        from matplotlib.collections import Collection
+
+        # the layout the PNG got holds for the vector copy (positions are fractions of
+        # the figure, text sizes points): keep it instead of computing it again
+        fig.set_layout_engine("none")
+
+        for coll in fig.findobj(Collection):
+            n = max(len(coll.get_paths()), len(coll.get_offsets()))
+            if n > RASTER_ABOVE:
+                coll.set_rasterized(True)
+        with matplotlib.rc_context({"svg.fonttype": "none", "pdf.fonttype": 42}):
+            fig.savefig(vector, format=fmt, dpi=dpi)
     fig.clear()
     return path
+
+
+def save_png(fig: Figure, path: str | Path) -> Path:
+    """Write `fig` as a PNG (Agg) at the default resolution and release it."""
+    return save_figure(fig, path)
 
 
 def nice_length(span: float) -> float:
@@ -135,28 +219,84 @@ def _draw_regions(ax, regions: Sequence[tuple[np.ndarray, str]]) -> None:
                     bbox=dict(boxstyle="round,pad=0.15", fc="white", alpha=0.7, lw=0))
 
 
+#: Column markers span this fraction of the typical distance between columns.
+MARKER_FRACTION = 0.45
+#: Frames wider than this get a detail panel where the markers can be seen, nm.
+DETAIL_ABOVE_NM = 8.0
+DETAIL_NM = 4.0
+
+
+def marker_size_pt(spacing_nm: float, span_nm: float, axes_width_in: float) -> float:
+    """Marker diameter in points: `MARKER_FRACTION` of the column spacing as drawn.
+
+    A marker drawn at a fixed size in points covers more of the image the more
+    columns the frame holds; sized from the spacing on screen it stays a ring
+    around each column whatever the frame size (clamped to 0.8..14 pt).
+    """
+    pt_per_nm = axes_width_in * 72.0 / max(span_nm, 1e-9)
+    return float(np.clip(MARKER_FRACTION * spacing_nm * pt_per_nm, 0.8, 14.0))
+
+
+def _mark_columns(ax, x, y, sub, *, spacing_nm: float, span_nm: float, axes_width_in: float,
+                  legend: bool) -> None:
+    d = marker_size_pt(spacing_nm, span_nm, axes_width_in)
+    lw = float(np.clip(d / 6.0, 0.25, 1.0))
+    for name, (colour, marker) in _SUBLATTICE_STYLE.items():
+        m = sub == name
+        if m.any():
+            ax.scatter(x[m], y[m], s=d ** 2, marker=marker,
+                       facecolors="none" if marker not in ("x",) else colour,
+                       edgecolors=colour, linewidths=lw, label=f"{name} ({int(m.sum())})")
+    if legend and len(sub):
+        ax.legend(loc="upper right", fontsize=7, framealpha=0.8, title="sublattice",
+                  title_fontsize=7, markerscale=max(1.0, 6.0 / d))
+
+
 def image_with_columns(image, extent_nm, x_nm, y_nm, sublattice, *, title: str,
                        regions: Sequence[tuple[np.ndarray, str]] = ()) -> Figure:
     """The frame with every fitted column marked by sublattice, and flag regions.
 
+    Markers are sized to the column spacing on screen (:func:`marker_size_pt`),
+    so they ring the columns without hiding them.  A frame wider than
+    `DETAIL_ABOVE_NM` gets a second panel, a `DETAIL_NM` square around the
+    first flagged region (else the centre), where each column can be seen.
     `image` may be None (file gone): the columns are drawn on a grey ground.
     `regions` are ``(corners_nm (4, 2), label)`` in the same nm frame.
     """
-    fig = Figure(figsize=_frame_figsize(extent_nm, 6.4), layout="constrained")
-    ax = fig.add_subplot()
-    _frame_axes(ax, extent_nm, title=title, image=image)
+    x0, x1, y1, y0 = extent_nm
+    span = abs(x1 - x0)
+    x, y = np.asarray(x_nm, float), np.asarray(y_nm, float)
     sub = np.asarray(sublattice).astype(str)
-    size = max(4.0, 2000.0 / max(len(sub), 1) ** 0.8)
-    for name, (colour, marker) in _SUBLATTICE_STYLE.items():
-        m = sub == name
-        if m.any():
-            ax.scatter(np.asarray(x_nm)[m], np.asarray(y_nm)[m], s=size, marker=marker,
-                       facecolors="none" if marker not in ("x",) else colour,
-                       edgecolors=colour, linewidths=0.9, label=f"{name} ({int(m.sum())})")
-    if len(sub):
-        ax.legend(loc="upper right", fontsize=7, framealpha=0.8, title="sublattice",
-                  title_fontsize=7)
+    spacing = _typical_spacing(x, y) if len(x) > 1 else 1.0
+    detail = span > DETAIL_ABOVE_NM and len(x) > 0
+    w_in = 11.5 if detail else 6.4
+    fig = Figure(figsize=(w_in, _frame_figsize(extent_nm, 6.4)[1]), layout="constrained")
+    ax = fig.add_subplot(1, 2, 1) if detail else fig.add_subplot()
+    _frame_axes(ax, extent_nm, title=title, image=image)
+    axes_w = (w_in / 2 if detail else w_in) * 0.8
+    _mark_columns(ax, x, y, sub, spacing_nm=spacing, span_nm=span, axes_width_in=axes_w,
+                  legend=not detail)
     _draw_regions(ax, regions)
+    if detail:
+        centre = (regions[0][0].mean(axis=0) if regions else
+                  np.array([(x0 + x1) / 2, (y0 + y1) / 2]))
+        h = DETAIL_NM / 2
+        cx = float(np.clip(centre[0], min(x0, x1) + h, max(x0, x1) - h))
+        cy = float(np.clip(centre[1], min(y0, y1) + h, max(y0, y1) - h))
+        ax.add_patch(Polygon([(cx - h, cy - h), (cx + h, cy - h), (cx + h, cy + h),
+                              (cx - h, cy + h)], closed=True, fill=False, edgecolor="white",
+                             lw=1.2))
+        ax2 = fig.add_subplot(1, 2, 2)
+        _frame_axes(ax2, extent_nm, title=f"detail: {DETAIL_NM:g} nm square (white box)",
+                    image=image)
+        ax2.set_xlim(cx - h, cx + h)
+        ax2.set_ylim(cy + h, cy - h)
+        ax2.artists[-1].remove()          # the scale bar of the whole frame
+        _scale_bar(ax2, DETAIL_NM)
+        inside = (np.abs(x - cx) <= h * 1.05) & (np.abs(y - cy) <= h * 1.05)
+        _mark_columns(ax2, x[inside], y[inside], sub[inside], spacing_nm=spacing,
+                      span_nm=DETAIL_NM, axes_width_in=axes_w, legend=True)
+        ax2.set_ylabel("")
     return fig
 
 
@@ -172,7 +312,11 @@ def displacement_arrows(image, extent_nm, x_nm, y_nm, dx_pm, dy_pm, *, title: st
     ok = np.isfinite(x) & np.isfinite(y) & np.isfinite(dx) & np.isfinite(dy)
     fig = Figure(figsize=_frame_figsize(extent_nm, 6.8), layout="constrained")
     ax = fig.add_subplot()
-    _frame_axes(ax, extent_nm, title=title, image=image)
+    # the frame lightened beneath the arrows, so arrows of every direction stand out
+    _frame_axes(ax, extent_nm, title=title, image=None if image is None else
+                lightened(image))
+    if image is not None:
+        ax.images[-1].set_clim(0.0, 1.0)
     ax.set_title(title, fontsize=10, loc="left")
     ax.set_title("", loc="center")
     if ok.sum() == 0:
@@ -187,8 +331,9 @@ def displacement_arrows(image, extent_nm, x_nm, y_nm, dx_pm, dy_pm, *, title: st
     ang = np.degrees(np.arctan2(dy[ok], dx[ok])) % 360.0
     # data units are nm with y pointing down on screen; the arrows keep the image's sense
     q = ax.quiver(x[ok], y[ok], dx[ok] / 1000.0 * exaggeration, dy[ok] / 1000.0 * exaggeration,
-                  ang, cmap=CMAP_ANGLE, norm=Normalize(0, 360), angles="xy", scale_units="xy",
-                  scale=1.0, width=0.004, pivot="middle")
+                  ang, cmap=_angle_cmap(), norm=Normalize(0, 360), angles="xy",
+                  scale_units="xy", scale=1.0, width=0.004, pivot="middle",
+                  edgecolor="#202020", linewidth=0.25)
     key_pm = float(nice_length(med * 5.0)) if med > 0 else 10.0
     ax.quiverkey(q, 0.70, 1.025, key_pm / 1000.0 * exaggeration,
                  f"{key_pm:g} pm (arrows x{exaggeration:.0f})", labelpos="E",
@@ -196,6 +341,18 @@ def displacement_arrows(image, extent_nm, x_nm, y_nm, dx_pm, dy_pm, *, title: st
     cb = fig.colorbar(q, ax=ax, shrink=0.8)
     cb.set_label("direction, atan2(dy, dx) (deg)")
     return fig
+
+
+def lightened(image, *, floor: float = 0.62) -> np.ndarray:
+    """The image scaled into ``floor..1`` (grey on white) between its 1st and 99th
+    percentiles, for drawing coloured marks on top (show with clim 0..1)."""
+    im = np.asarray(image, float)
+    fin = np.isfinite(im)
+    if not fin.any():
+        return np.ones_like(im)
+    lo, hi = np.percentile(im[fin], [1, 99])
+    v = np.clip((im - lo) / (hi - lo if hi > lo else 1.0), 0.0, 1.0)
+    return floor + (1.0 - floor) * np.where(fin, v, 1.0)
 
 
 def _typical_spacing(x, y) -> float:
@@ -209,7 +366,8 @@ class MapPanel:
     """One per-cell map: a title, the values on the cell grid, a kind and a unit.
 
     `kind` is ``"magnitude"`` (viridis), ``"secondary"`` (cividis), ``"signed"``
-    (coolwarm, symmetric about zero) or ``"angle"`` (twilight, 0..360 deg).
+    (coolwarm, symmetric about zero) or ``"angle"`` (constant-lightness cyclic map,
+    0..360 deg).
     """
 
     def __init__(self, title: str, values: np.ndarray, *, kind: str, unit: str,
@@ -254,7 +412,7 @@ def cell_maps(polygons, panels: Sequence[MapPanel], *, extent_nm, title: str,
 
 def _cmap_norm(kind: str, finite_values: np.ndarray):
     if kind == "angle":
-        return CMAP_ANGLE, Normalize(0.0, 360.0)
+        return _angle_cmap(), Normalize(0.0, 360.0)
     if kind == "signed":
         lim = float(np.percentile(np.abs(finite_values), 99)) or 1e-12
         return CMAP_SIGNED, Normalize(-lim, lim)
@@ -313,18 +471,68 @@ def _num(v, digits: int) -> str:
     return f"{f:.{digits}f}" if abs(f) >= 10 ** -digits or f == 0 else f"{f:.{digits}g}"
 
 
+def winding_explanation(n_plaquettes: int, n_valid: int, n_winding: int, *,
+                        min_snr: float, n_flagged: int = 0) -> str:
+    """One sentence saying why a winding map shows no core ('' when it shows some).
+
+    Parameters
+    ----------
+    n_plaquettes : int
+        Plaquettes of the cell grid.
+    n_valid : int
+        Plaquettes whose four cells all have ``|d| / sigma >= min_snr``.
+    n_winding : int
+        Valid plaquettes with a non-zero winding number.
+    min_snr : float
+    n_flagged : int
+        Cores flagged by the rules (found on larger, smoothed loops).
+    """
+    if n_winding > 0:
+        return ""
+    flagged = (f" The {n_flagged} core(s) marked were found by the rules on larger, smoothed "
+               "loops." if n_flagged else "")
+    if n_plaquettes == 0:
+        return "Too few cells on a grid for any plaquette: no winding number can be counted."
+    if n_valid == 0:
+        return (f"No core shown: no plaquette has four cells with |d| ≥ {min_snr:g} σ, so the "
+                "displacement directions are too uncertain here (weak polarization or too little "
+                "dose) to count windings." + flagged)
+    frac = n_valid / n_plaquettes
+    if frac < 0.5:
+        pct = "< 1" if frac < 0.01 else f"{100 * frac:.0f}"
+        return (f"No core shown: only {n_valid} of {n_plaquettes} plaquettes ({pct} %) "
+                f"have four cells with |d| ≥ {min_snr:g} σ, and none of them winds; a core "
+                "(where |d| vanishes) cannot be seen at this signal-to-noise. A longer dwell "
+                "would show more." + flagged)
+    return (f"No core in this frame: all {n_valid} plaquettes with trustworthy directions have "
+            "winding 0 (the displacement turns by less than half a turn around each)." + flagged)
+
+
 def winding_figure(w, polygons, cores: Sequence[dict], *, extent_nm, title: str,
-                   image=None, note: str = "") -> Figure:
+                   image=None, note: str = "", min_snr: float = 3.0) -> Figure:
     """Winding number of every plaquette (-1, 0, +1, other), with the cores marked.
 
     `w` (M,) and `polygons` (M, 4, 2) nm: one value and one quadrilateral per
     plaquette.  `cores` are ``summary.json`` core dicts (``x_pm, y_pm, kind``).
+    When no plaquette winds, a sentence under the map says why
+    (:func:`winding_explanation`).
     """
-    fig = Figure(figsize=(6.8, 6.0), layout="constrained")
-    ax = fig.add_subplot()
-    _frame_axes(ax, extent_nm, title=title, image=image)
     w = np.asarray(w, float).ravel()
     fin = np.isfinite(w)
+    n_flagged = sum(1 for c in cores if "flagged" in str(c.get("kind", "")))
+    why = winding_explanation(w.size, int(fin.sum()), int((fin & (w != 0)).sum()),
+                              min_snr=min_snr, n_flagged=n_flagged)
+    fig = Figure(figsize=(7.4, 6.6 if why else 6.0), layout="constrained")
+    if why:
+        ax, ax_why = fig.subplots(2, 1, height_ratios=[1.0, 0.13])
+        ax_why.axis("off")
+        import textwrap
+
+        ax_why.text(0.0, 1.0, textwrap.fill(why, 88), transform=ax_why.transAxes, va="top",
+                    ha="left", fontsize=9, color="#7a2e00")
+    else:
+        ax = fig.add_subplot()
+    _frame_axes(ax, extent_nm, title=title, image=image)
     if fin.any():
         clipped = np.clip(w[fin], -2, 2)
         # discrete colours from the diverging map; 0 is its neutral centre
@@ -335,13 +543,10 @@ def winding_figure(w, polygons, cores: Sequence[dict], *, extent_nm, title: str,
                               edgecolors="#777777", linewidths=0.2,
                               alpha=0.75 if image is not None else 1.0)
         ax.add_collection(coll)
-        cb = fig.colorbar(coll, ax=ax, shrink=0.8, ticks=[-2, -1, 0, 1, 2])
-        cb.ax.set_yticklabels(["≤ -2", "-1 (antivortex)", "0", "+1 (vortex, source, sink)",
-                               "≥ +2"])
+        cb = fig.colorbar(coll, ax=ax, shrink=0.7, ticks=[-2, -1, 0, 1, 2])
+        cb.ax.set_yticklabels(["≤ -2", "-1 antivortex", "0", "+1 vortex,\nsource, sink",
+                               "≥ +2"], fontsize=8)
         cb.set_label("winding number per plaquette")
-    else:
-        ax.text(0.5, 0.5, "no plaquette with four trustworthy directions", ha="center",
-                va="center", transform=ax.transAxes)
     markers = {"vortex": ("o", OKABE_ITO[0]), "antivortex": ("X", OKABE_ITO[6]),
                "source": ("^", OKABE_ITO[5]), "sink": ("v", OKABE_ITO[5]),
                "higher-order": ("*", OKABE_ITO[7]),
@@ -404,8 +609,9 @@ def overview_figure(footprints: Sequence[tuple[np.ndarray, float]],
     for state in ("accepted", "open", "rejected", "expired"):
         colour, ls, lw = _PROPOSAL_STYLE[state]
         handles.append(Line2D([], [], color=colour, ls=ls, lw=lw, label=f"proposal, {state}"))
-    ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.1), ncol=3,
-              fontsize=7, framealpha=0.85)
+    # outside the axes, below the x label: constrained layout makes room for it
+    fig.legend(handles=handles, loc="outside lower center", ncol=3, fontsize=7,
+               framealpha=0.85)
     pts = [c for c, _ in footprints] + [c for c, _ in flags] + [c for c, _, _ in proposals]
     if pts:
         allp = np.concatenate(pts)
@@ -462,7 +668,8 @@ def histograms_figure(series: Sequence[tuple[str, np.ndarray, str]], *, title: s
             ax.hist(np.clip(v, lo, hi), bins=40, range=(lo, hi), color=OKABE_ITO[5])
             ax.xaxis.set_major_locator(MaxNLocator(5))
             ax.axvline(float(np.median(v)), color=OKABE_ITO[6], ls="--", lw=1)
-            ax.set_title(f"{name} (n = {v.size}, median {np.median(v):.4g})", fontsize=8)
+            u = "" if unit in ("ratio", "c/a") else f" {unit}"
+            ax.set_title(f"{name} (n = {v.size}, median {np.median(v):.3g}{u})", fontsize=8)
         else:
             ax.text(0.5, 0.5, "no values", ha="center", va="center", transform=ax.transAxes)
             ax.set_title(name, fontsize=8)

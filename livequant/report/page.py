@@ -55,6 +55,7 @@ class FigureRef:
     src: str
     caption: str
     alt: str = ""
+    vector: str = ""      # the same figure as SVG or PDF, relative to the page
 
 
 @dataclass
@@ -110,8 +111,12 @@ def _section(s: Section) -> str:
     out += [f"<p>{_e(p)}</p>" for p in s.paragraphs]
     out += [_table(t) for t in s.tables]
     for f in s.figures:
+        link = ""
+        if f.vector:
+            kind = f.vector.rsplit(".", 1)[-1].upper()
+            link = f' <a class="vector" href="{_e(f.vector)}">{_e(kind)} (vector)</a>'
         out.append(f'<figure><img src="{_e(f.src)}" alt="{_e(f.alt or f.caption)}">'
-                   f"<figcaption>{_e(f.caption)}</figcaption></figure>")
+                   f"<figcaption>{_e(f.caption)}{link}</figcaption></figure>")
     out.append("</section>")
     return "\n".join(out)
 

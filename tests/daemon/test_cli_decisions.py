@@ -34,15 +34,24 @@ def test_operator_commands_round_trip(tmp_path, capsys):
         assert out["source"] == "daemon" and len(out["proposals"]) == 2
         first, second = (p["id"] for p in out["proposals"])
         assert main(["proposals", "--session", session]) == 0
+        cap = capsys.readouterr()
+        # piped: the table on stdout, one whole line per proposal; the caution on stderr
+        line = next(t for t in cap.out.splitlines() if t.startswith(first))
+        assert "open" in line and "…" not in line and "dose budget" in cap.err
+        # 3a. no terminal to ask and no --yes: nothing is accepted, the caution was shown
+        assert main(["accept", first, "--session", session]) == 2
         err = capsys.readouterr().err
-        assert first in err and "dose budget" in err
-        assert main(["accept", first, "--session", session]) == 0
+        assert "--yes" in err and "interlocks" in err and first in err
+        assert d.ledger.proposal(first)["state"] == "open"
+        assert main(["accept", first, "--yes", "--session", session]) == 0
         err = capsys.readouterr().err
-        assert "accepted" in err and "scan-request" in err and "interlocks" in err
+        # the caution comes before the outcome
+        assert err.index("interlocks") < err.index(f"proposal {first}: accepted")
+        assert "scan-request" in err
         assert main(["reject", second, "--why", "too close to the edge", "--session", session,
                      "--json"]) == 0
         assert _json(capsys)["state"] == "rejected"
-        assert main(["accept", "p0999", "--session", session]) == 2
+        assert main(["accept", "p0999", "--yes", "--session", session]) == 2
         assert "no proposal with id 'p0999'" in capsys.readouterr().err
         assert main(["reject", first, "--session", session]) == 2
         assert "already accepted" in capsys.readouterr().err
@@ -53,7 +62,7 @@ def test_operator_commands_round_trip(tmp_path, capsys):
     assert out["source"] == "ledger"
     assert {p["id"]: p["state"] for p in out["proposals"]} == {first: "accepted",
                                                                second: "rejected"}
-    assert main(["accept", first, "--session", session]) == 2
+    assert main(["accept", first, "--yes", "--session", session]) == 2
     assert "no daemon is running" in capsys.readouterr().err
 
 
@@ -66,3 +75,38 @@ def test_bad_state_is_a_usage_error(tmp_path):
     with pytest.raises(SystemExit) as exc:
         main(["proposals", "--state", "maybe", "--session", str(tmp_path)])
     assert exc.value.code == 2
+
+
+def test_accept_asks_after_showing_the_proposal_and_caution(monkeypatch, capsys):
+    """At a terminal `accept` prints the proposal (rotation, dwell, dose) and the caution,
+    then asks; only y sends the decision."""
+    import argparse
+
+    import livequant.commands.proposals as P
+    from livequant.commands.accept import confirm_accept
+
+    row = {"id": "p0002", "state": "open", "score": 0.8, "center_nm": [1.0, 2.0],
+           "size_nm": [6.0, 4.0], "rotation_deg": 90.0, "pixel_size_pm": 10.0,
+           "dwell_time_us": 4.0, "reason": "domain wall"}
+    monkeypatch.setattr(P, "ask_daemon", lambda *a, **k: {"ok": True, "proposals": [row],
+                                                          "beam_current_pa": 20.0})
+
+    class Tty:
+        def isatty(self):
+            return True
+
+    args = argparse.Namespace(id="p0002", session=".", timeout=1.0, yes=False)
+    asked = []
+
+    def ask(prompt):
+        asked.append((prompt, capsys.readouterr().err))
+        return "y"
+    assert confirm_accept(args, ask=ask, stdin=Tty()) is None
+    prompt, shown = asked[0]
+    assert prompt == "accept p0002? [y/N] "
+    assert "90°" in shown and "5.0e4" in shown and "interlocks" in shown
+    assert confirm_accept(args, ask=lambda p: "", stdin=Tty()) == 2
+    assert "not accepted" in capsys.readouterr().err
+    args.id = "p0404"
+    assert confirm_accept(args, ask=ask, stdin=Tty()) == 2
+    assert "no proposal with id 'p0404'" in capsys.readouterr().err

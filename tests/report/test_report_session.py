@@ -63,7 +63,22 @@ def test_every_figure_exists_and_is_a_valid_png(made):
         assert float(np.ptp(pixels[..., :3])) > 0.1, f"{src} is blank"
     # nothing else in figures/: no stale files from earlier runs
     assert sorted(p.name for p in (out / "figures").iterdir()) == \
-        sorted(Path(f).name for f in figures)
+        sorted(Path(f).name for f in figures + made["result"]["vector_figures"])
+
+
+def test_every_png_has_its_vector_copy_linked_beside_it(made):
+    """SVG beside every PNG (the default), each a parsable SVG document with its text kept
+    as text, and linked from the figure's caption."""
+    import xml.etree.ElementTree as ET
+
+    out = made["session"] / "report"
+    figures, vectors = made["result"]["figures"], made["result"]["vector_figures"]
+    assert [Path(v).with_suffix(".png").as_posix() for v in vectors] == figures
+    for v in vectors:
+        root = ET.parse(out / v).getroot()
+        assert root.tag.endswith("svg"), v
+        assert any(el.tag.endswith("text") for el in root.iter()), f"{v}: labels are not text"
+        assert f'href="{v}"' in made["html"], v
 
 
 def test_html_refers_only_to_files_that_exist(made):
