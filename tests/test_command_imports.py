@@ -44,13 +44,15 @@ def test_operator_commands_import_nothing_heavy(tmp_path):
         s = ["--session", str(session)]
         first, second = (p["id"] for p in d._decision_loop().list("open")[:2])
         assert "queued" in _check(["status", *s], env=env)["stderr"]
-        assert first in _check(["proposals", *s], env=env)["stderr"]
+        # the table is on stdout (piped: nothing cut), the caution on stderr
+        assert first in _check(["proposals", *s], env=env)["stdout"]
         _check(["status", *s, "--json"], env=env)
-        assert "accepted" in _check(["accept", first, *s], env=env)["stderr"]
+        # without a terminal, accept needs --yes (it asks otherwise)
+        assert "accepted" in _check(["accept", first, *s, "--yes"], env=env)["stderr"]
         assert "rejected" in _check(["reject", second, *s, "--why", "edge"], env=env)["stderr"]
         _check(["accept", "p0999", *s], code=2, env=env)
     # no daemon: the ledger answers, accept says no daemon runs
-    assert first in _check(["proposals", *s], env=env)["stderr"]
+    assert first in _check(["proposals", *s], env=env)["stdout"]
     _check(["status", *s], env=env)
     assert "no daemon is running" in _check(["accept", first, *s], code=2, env=env)["stderr"]
     _check(["reject", first, *s], code=2, env=env)
