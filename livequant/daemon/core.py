@@ -23,7 +23,6 @@ reason about: ``queued -> processing`` (claim, then submit) and
 from __future__ import annotations
 
 import concurrent.futures as cf
-import hashlib
 import logging
 import multiprocessing
 import os
@@ -41,6 +40,7 @@ from livequant.daemon.commands import DECISION_SCHEMAS, CommandServer
 from livequant.daemon.decisions import DecisionLoop
 from livequant.daemon.ledger import Ledger
 from livequant.daemon.publisher import EventPublisher
+from livequant.daemon.register import file_sha256, register_file
 from livequant.daemon.security import bind_policy, start_authenticator
 from livequant.daemon.session import (SessionLock, SetupError, check_session_folder,
                                       check_watch_folder, write_daemon_file)
@@ -48,7 +48,6 @@ from livequant.daemon.sources import (Candidate, FolderSource, SocketSource,
                                       incoming_candidates, put_until)
 from livequant.daemon.status import LastFrame, Snapshot, last_frame_from_summary
 from livequant.daemon.worker import DEFAULT_ANALYZE, Outcome, init_worker, process_path
-from livequant.frames import sidecar_path
 from livequant.pipeline import threads_per_worker
 from livequant.proposals.propose import CAUTION
 
@@ -58,14 +57,6 @@ log = logging.getLogger("livequant.daemon")
 
 _HANDLED_SIGNALS = (signal.SIGINT, signal.SIGTERM)
 _RATE_WINDOW_S = 60.0
-
-
-def file_sha256(path: str | os.PathLike) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
 
 
 class Daemon:
@@ -297,29 +288,25 @@ class Daemon:
                 self._warn(f"intake: {Path(cand.path).name}: {type(exc).__name__}: {exc}")
 
     def _register(self, cand: Candidate) -> None:
-        path = Path(cand.path)
+        # One ledger row per image: a container (HDF5/EMD, MRC, TIFF stack) gives several.
         try:
-            st = path.stat()
+            registered = register_file(self.ledger, cand.path, origin=cand.origin,
+                                       complete_at=cand.complete_at)
         except FileNotFoundError:
-            log.info("%s vanished before it was registered", path)
+            log.info("%s vanished before it was registered", cand.path)
             return
-        side = sidecar_path(path)
-        side_sha = file_sha256(side) if side.exists() else None
-        known = self.ledger.known(str(path))
-        if known == (st.st_size, st.st_mtime_ns, side_sha):
-            return  # seen before, not changed: the common case of a catch-up listing
-        reg = self.ledger.register(str(path), origin=cand.origin, sha256=file_sha256(path),
-                                   sidecar_sha256=side_sha, size_bytes=st.st_size,
-                                   mtime_ns=st.st_mtime_ns, complete_at=cand.complete_at)
-        if reg.action == "duplicate":
-            msg = f"{path.name}: same image as {Path(reg.duplicate_of).name}; not analysed again"
-            self._warn(msg)
-            self.publisher.publish("status", {"event": "quarantined", "path": str(path),
-                                              "reason": "duplicate", "message": msg})
-        elif reg.action == "requeued":
-            log.info("%s changed since it was analysed; queued again", path.name)
-        if reg.action in ("queued", "requeued"):
-            self._wake.set()
+        for ref, reg in registered:  # empty when seen before and not changed
+            path = Path(ref)
+            if reg.action == "duplicate":
+                msg = (f"{path.name}: same image as {Path(reg.duplicate_of).name}; not "
+                       "analysed again")
+                self._warn(msg)
+                self.publisher.publish("status", {"event": "quarantined", "path": ref,
+                                                  "reason": "duplicate", "message": msg})
+            elif reg.action == "requeued":
+                log.info("%s changed since it was analysed; queued again", path.name)
+            if reg.action in ("queued", "requeued"):
+                self._wake.set()
 
     def _on_rejected_message(self, reason: str, message: str) -> None:
         self._warn(f"socket: {message}")

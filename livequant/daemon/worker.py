@@ -20,7 +20,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
 
-from livequant.frames import FrameError, read_frame
+from livequant.containers import read_any, split_ref
+from livequant.frames import FrameError
 
 __all__ = ["Outcome", "init_worker", "process_path", "resolve_callable", "DEFAULT_ANALYZE"]
 
@@ -133,7 +134,9 @@ def process_path(path: str, scan_drift_nm_per_s=None) -> Outcome:
     t0 = time.perf_counter()
     try:
         # Confined to the folder the frame was found in: a link out of it is refused.
-        frame = read_frame(path, defaults=_state["defaults"], confine_to=Path(path).parent)
+        # `path` may name one image of a container (FILE#KEY, livequant.containers).
+        frame = read_any(path, defaults=_state["defaults"],
+                         confine_to=split_ref(path)[0].parent)
     except FrameError as exc:
         return Outcome(path, "quarantined", reason=exc.reason, message=str(exc))
     t1 = time.perf_counter()
