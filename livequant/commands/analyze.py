@@ -12,7 +12,7 @@ from pathlib import Path
 from livequant.cli import EXIT_BAD_INPUT, EXIT_FAILURE, EXIT_OK
 from livequant.commands._common import add_settings_arguments, settings_from_args
 from livequant.config import ConfigError
-from livequant.frames import FrameError, read_frame, write_frame
+from livequant.frames import FrameError, write_frame
 from livequant.outputs import write_frame_outputs
 from livequant.pipeline import analyze_frame
 
@@ -31,7 +31,9 @@ def register(sub) -> None:
         description="Fit every atomic column of each frame (TIFF or NPY, optional JSON "
                     "sidecar) and write DIR/FRAME_ID/columns.csv, cells.csv and summary.json.",
     )
-    p.add_argument("frames", nargs="*", metavar="FRAME", help="image files (.tif, .tiff, .npy)")
+    p.add_argument("frames", nargs="*", metavar="FRAME",
+                   help="image files (.tif, .tiff, .npy) or containers (.h5/.emd, .mrc, TIFF "
+                        "stacks: each image a frame; FILE#KEY names one)")
     p.add_argument("--out", metavar="DIR", help="folder for the per-frame outputs "
                    "(default: no files are written, except with --example: ./livequant-example)")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
@@ -72,10 +74,13 @@ def run(args) -> int:
         return EXIT_BAD_INPUT
 
     reports, worst = [], EXIT_OK
-    for path in paths:
+    # a container (HDF5/EMD, MRC, TIFF stack) is one frame per image (FILE#KEY)
+    from livequant.containers import container_members, read_any
+
+    for path in [ref for p in paths for ref in container_members(p)]:
         report = {"path": str(path)}
         try:
-            frame = read_frame(path, defaults=settings.frame_defaults.as_dict())
+            frame = read_any(path, defaults=settings.frame_defaults.as_dict())
             result = analyze_frame(frame, settings)
             report.update(_report(result))
             if out_dir is not None and result.ok:

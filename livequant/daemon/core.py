@@ -249,6 +249,18 @@ class Daemon:
         self._take_snapshot()
 
     def _new_pool(self) -> cf.ProcessPoolExecutor:
+        if self.cfg.scheduler:  # a Dask cluster analyses; all else stays here (cluster.py)
+            from livequant.cluster import DaskExecutor
+
+            try:
+                pool = DaskExecutor.connect(self.cfg.scheduler, settings=self.settings,
+                                            analyze_ref=self.analyze,
+                                            frames_dir=self.paths.frames)
+            except ConnectionError as exc:
+                raise SetupError(str(exc)) from None
+            self.n_workers = pool.n_slots
+            self.max_in_flight = self.cfg.max_in_flight or pool.n_slots + 1
+            return pool
         # spawn: a fresh interpreter per worker, safe beside our threads and the
         # ZeroMQ context (fork would copy both mid-flight).
         return cf.ProcessPoolExecutor(
