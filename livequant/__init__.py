@@ -5,4 +5,15 @@ from livequant.rules.hookspecs import hookimpl
 
 __version__ = "0.1.0"
 
-__all__ = ["Frame", "FrameError", "FrameMeta", "read_frame", "hookimpl", "__version__"]
+__all__ = ["Frame", "FrameError", "FrameMeta", "read_frame", "hookimpl", "analyze",
+           "open_session", "__version__"]
+
+
+def __getattr__(name):
+    # The notebook API (livequant/api.py) loads the analysis only when first used, so
+    # `import livequant` (and every command's start-up) stays light.
+    if name in ("analyze", "open_session"):
+        from livequant import api
+
+        return getattr(api, name)
+    raise AttributeError(f"module 'livequant' has no attribute {name!r}")

@@ -40,6 +40,11 @@ def register(subparsers) -> None:
     p.add_argument("--no-ingest", action="store_true", help="do not open the ingest socket")
     p.add_argument("--no-console", action="store_true",
                    help="no live display: log one status line per heartbeat instead")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="analyse on the Dask cluster of this scheduler (tcp://HOST:PORT) "
+                        "instead of local processes; ledger, rules, sockets and display stay "
+                        "here and the frames' pixels travel to the workers "
+                        "(default: daemon.scheduler)")
     p.add_argument("--analyze", metavar="MODULE:FUNCTION", default=None,
                    help="advanced: the per-frame analysis to run "
                         "(default livequant.pipeline:analyze_frame)")
@@ -60,6 +65,7 @@ def run_command(args) -> int:
         "daemon.events_port": args.events_port,
         "daemon.commands_port": args.commands_port,
         "daemon.ingest_socket": False if args.no_ingest else None,
+        "daemon.scheduler": getattr(args, "scheduler", None),
     }
     try:
         settings = load_settings(args.config, overrides=overrides)

@@ -153,6 +153,14 @@ def test_mixed_archive_once_equal_to_analyze_then_nothing_to_do(tmp_path, client
     np.testing.assert_array_equal(one.column("x_pm").to_numpy(), ref["x_pm"])
     np.testing.assert_array_equal(one.column("sublattice").to_pylist(), ref["sublattice"])
 
+    # the notebook API reads the same tables and the ledger
+    import livequant
+
+    sess = livequant.open_session(session, as_pandas=False)
+    assert (len(sess.cells), len(sess.columns), len(sess.frames)) == (n_cells, n_cols, 11)
+    assert sorted(sess.frames.state) == sorted(r.state for r in rows)
+    np.testing.assert_array_equal(sess.columns.x_pm, cols.column("x_pm").to_numpy())
+
     # a second run does nothing: nothing queued, no file rewritten
     stamps = {p: p.stat().st_mtime_ns for p in (session / "frames").rglob("*.csv")}
     again = reprocess([archive], session, fast_settings(), client=client, tables=False)
