@@ -184,7 +184,7 @@ def test_worker_killed_mid_task_leaves_every_frame_done_exactly_once(tmp_path, c
         write_frame(archive, stem, lattice_image(SHAPE, seed=40 + k), sidecar(stem, **extra))
     pids_before = set(client.run(os.getpid).values())
     s = reprocess([archive], session, fast_settings(), client=client,
-                  analyze="tests.cluster._analyses:dying_analyze")
+                  analyze="tests.cluster._analyses:dying_analyze", progress=True)
     assert marker.exists(), "the worker was not killed"
     assert int(marker.read_text()) in pids_before
     assert (s.done, s.quarantined, s.failed) == (6, 0, 0), s.to_json()
@@ -202,12 +202,24 @@ def test_reprocess_command_json_force_and_rules(tmp_path, client, capsys):
     archive.mkdir()
     for k in range(2):
         _good(archive, f"f{k}", seed=60 + k)
+    # a user rule that flags every frame once: the rules ran on every frame analysed
+    plugins = tmp_path / "plugins"
+    plugins.mkdir()
+    (plugins / "every_frame.py").write_text(
+        "from livequant import hookimpl\n"
+        "from livequant.rules import Flag, Region\n\n"
+        "@hookimpl\n"
+        "def livequant_frame_rules(view):\n"
+        "    return [Flag('seen', 0.5, Region(20.0, 20.0, 10.0, 10.0), 'test', {})]\n")
+    config = tmp_path / "user.toml"
+    config.write_text(f"[rules]\nplugin_dirs = [{json.dumps(str(plugins))}]\n")
     address = client.scheduler.address
     args = ["reprocess", str(archive / "*.tif"), "--session", str(session),
-            "--scheduler", address, "--json", "--rules"]
+            "--scheduler", address, "--json", "--rules", "--config", str(config)]
     assert main(args) == 0
     first = json.loads(capsys.readouterr().out)
     assert first["done"] == 2 and first["tables"]["cells"]["rows"] > 0
+    assert first["flags"] == 2
     assert main(args) == 0
     assert json.loads(capsys.readouterr().out)["done"] == 0
     assert main([*args, "--force"]) == 0
@@ -217,6 +229,10 @@ def test_reprocess_command_json_force_and_rules(tmp_path, client, capsys):
     assert all(r.done_count == 1 and r.version == 2 for r in rows)
     with Ledger(session / "ledger.sqlite", readonly=True) as led:
         assert list(led.proposals()) == []  # rules write flags, never proposals
+        flags = led.flags()
+    # first run and --force: each frame flagged once per analysis (the run between skipped)
+    assert sorted(f["frame_id"] for f in flags) == ["f0", "f0", "f1", "f1"]
+    assert {f["rule"] for f in flags} == {"every_frame"}
     # a source that names nothing is bad input
     assert main(["reprocess", str(tmp_path / "nowhere"), "--session", str(session)]) == 2
     assert "no such file or folder" in capsys.readouterr().err
