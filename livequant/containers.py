@@ -7,7 +7,7 @@ inside the file.
 ==================  ======================================  ========================
 file                key of one image                        frame id
 ==================  ======================================  ========================
-``run.tif`` stack   ``run.tif#3`` (page 3, from 0)          ``run#3``
+``run.tif`` stack   ``run.tif#3`` (image page 3, from 0)    ``run#3``
 ``run.mrc`` stack   ``run.mrc#3`` (section 3 along z)       ``run#3``
 ``run.h5`` / .emd   ``run.h5#/data/survey/data`` (2D)       ``run#data.survey``
                     ``run.h5#/data/series/data[3]`` (3D)    ``run#data.series#3``
@@ -98,8 +98,6 @@ def split_ref(ref: str | os.PathLike) -> tuple[Path, str | None]:
     text = os.fspath(ref)
     if "#" not in text:
         return Path(text), None
-    if os.path.isfile(text) and not _suffix(text.split("#")[-1]):
-        return Path(text), None
     start = 0
     while True:
         k = text.find("#", start)
@@ -155,7 +153,14 @@ def _tiff_page_count(path: Path) -> int:
     import tifffile
 
     with tifffile.TiffFile(path) as tif:
-        return len(tif.pages)
+        return len(_tiff_images(tif))
+
+
+def _tiff_images(tif) -> list:
+    """The image pages of a TIFF: every page but reduced-resolution copies (previews)."""
+    pages = list(tif.pages)
+    full = [p for p in pages if not getattr(p, "is_reduced", False)]
+    return full or pages
 
 
 def _mrc_section_count(path: Path) -> int:
@@ -374,12 +379,12 @@ def _read_tiff_page(path: Path, key: str | None):
     where = f"{path}#{key}" if key is not None else str(path)
     try:
         with tifffile.TiffFile(path) as tif:
-            n = len(tif.pages)
-            if n == 0:
+            pages = _tiff_images(tif)
+            if not pages:
                 raise FrameError(f"{path}: TIFF holds no image pages", reason="unreadable",
                                  path=path)
-            i = _index(key, n, path, "page")
-            page = tif.pages[i]
+            i = _index(key, len(pages), path, "page")
+            page = pages[i]
             _check_size(page.shape, path, where)
             pixels = page.asarray()
             found = {"pixel_size_pm": _imagej_pixel_size_pm(tif, page)}

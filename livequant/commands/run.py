@@ -99,6 +99,7 @@ def run_command(args) -> int:
     except SetupError as exc:
         print(f"livequant run: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    _write_tables(Path(args.session))
     # Hand a captured signal back to the default behaviour (the exit status a
     # supervisor expects from a process stopped by SIGTERM or Ctrl+C).
     for sig in daemon.captured_signals[:1]:
@@ -106,3 +107,20 @@ def run_command(args) -> int:
 
         signal.raise_signal(sig)
     return code
+
+
+def _write_tables(session: Path) -> None:
+    """Session-wide cells.parquet / columns.parquet once the daemon has stopped."""
+    from livequant.tables import write_session_tables
+
+    try:
+        info = write_session_tables(session)
+    except Exception as exc:  # noqa: BLE001 - the session itself is complete; say what failed
+        log.error("could not write the session tables (cells/columns.parquet): %s: %s",
+                  type(exc).__name__, exc)
+        print(f"livequant run: the session is complete, but its Parquet tables could not be "
+              f"written ({type(exc).__name__}: {exc}); `livequant reprocess` writes them",
+              file=sys.stderr)
+        return
+    log.info("session tables: %s", ", ".join(f"{k} {v['rows']} rows" for k, v in info.items()))
+
