@@ -54,7 +54,7 @@ from livequant.frames import (IMAGE_SUFFIXES, MAX_FRAME_PIXELS, Frame, FrameErro
                               read_frame, read_sidecar, resolve_meta, sidecar_path)
 
 __all__ = ["HDF5_SUFFIXES", "MRC_SUFFIXES", "CONTAINER_SUFFIXES", "FRAME_FILE_SUFFIXES",
-           "container_members", "split_ref", "read_any", "member_sha256", "is_member_ref",
+           "container_members", "split_ref", "read_any", "read_pixels", "member_sha256", "is_member_ref",
            "iter_frames"]
 
 HDF5_SUFFIXES = (".h5", ".hdf5", ".hdf", ".emd")
@@ -294,6 +294,32 @@ def read_any(ref: str | os.PathLike, *, defaults: dict | None = None,
                          path=path)
     pixels = check_pixels(pixels, where=where)
     return _frame(pixels, path, key, found, defaults=defaults, where=where)
+
+
+def read_pixels(ref: str | os.PathLike) -> np.ndarray:
+    """Only the pixels of a frame file or of one image of a container (no metadata).
+
+    Raises
+    ------
+    FrameError
+        As :func:`read_any`, for the image itself.
+    """
+    path, key = split_ref(ref)
+    suffix = _suffix(path)
+    if key is None and suffix in IMAGE_SUFFIXES:
+        from livequant.frames import read_image
+
+        return read_image(path)
+    if suffix in (".tif", ".tiff"):
+        pixels, _found, where = _read_tiff_page(path, key)
+    elif suffix in MRC_SUFFIXES:
+        pixels, _found, where = _read_mrc_section(path, key)
+    elif suffix in HDF5_SUFFIXES:
+        pixels, _found, where = _read_hdf5_image(path, key)
+    else:
+        raise FrameError(f"{path}: not a frame or container file", reason="unsupported-format",
+                         path=path)
+    return check_pixels(pixels, where=where)
 
 
 def _frame(pixels, path: Path, key: str | None, found: dict, *, defaults, where) -> Frame:

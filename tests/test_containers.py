@@ -11,7 +11,8 @@ import numpy as np
 import pytest
 import tifffile
 
-from livequant.containers import container_members, iter_frames, read_any, split_ref
+from livequant.containers import (container_members, iter_frames, read_any, read_pixels,
+                                  split_ref)
 from livequant.frames import FrameError
 from tests.daemon._helpers import lattice_image
 
@@ -103,6 +104,7 @@ def test_mrc_stack_sections_with_voxel_size_in_angstrom(tmp_path):
         f = read_any(ref)
         assert f.frame_id == f"tilt#{k}"
         np.testing.assert_array_equal(f.pixels, stack[k])
+        np.testing.assert_array_equal(read_pixels(ref), stack[k])  # the report's reader
         assert f.meta.pixel_size_pm == pytest.approx(25.0)
 
 
