@@ -13,9 +13,13 @@ def dying_analyze(frame, settings):
     a frame whose sidecar names a `die_marker` file (created just before dying).
 
     A worker killed mid-task, at a known moment: ``os._exit`` ends the process at once,
-    no clean-up, as an out-of-memory kill would.
+    no clean-up, as an out-of-memory kill would.  A frame whose sidecar has
+    ``fail_analysis`` makes the analysis raise (a bug in the analysis, not a crash).
     """
-    marker = (frame.meta.extra or {}).get("die_marker")
+    extra = frame.meta.extra or {}
+    if extra.get("fail_analysis"):
+        raise RuntimeError("synthetic analysis failure for the test")
+    marker = extra.get("die_marker")
     if marker and not Path(marker).exists():
         Path(marker).write_text(str(os.getpid()))
         os._exit(17)

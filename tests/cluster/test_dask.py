@@ -239,6 +239,9 @@ def test_reprocess_command_json_force_and_rules(tmp_path, client, capsys):
 
 
 def test_daemon_with_scheduler_processes_a_burst_exactly_once(tmp_path, client, capsys):
+    """A burst in the watched folder, analysed on the cluster; one worker dies mid-task
+    (the frame runs again elsewhere), a constant frame is refused where it is read, an
+    analysis that raises on a worker is quarantined; every good frame done once."""
     watch, session = tmp_path / "watch", tmp_path / "session"
     watch.mkdir()
     settings = fast_settings(scheduler=client.scheduler.address, ingest_socket=False)
@@ -246,16 +249,31 @@ def test_daemon_with_scheduler_processes_a_burst_exactly_once(tmp_path, client, 
     # later frames, which `livequant analyze` (one frame at a time) cannot; off for the check
     settings = settings.model_copy(update={"analysis": settings.analysis.model_copy(update={
         "scan_drift": settings.analysis.scan_drift.model_copy(update={"enabled": False})})})
-    d = Daemon(settings, session=session, watch=watch)
+    marker = tmp_path / "worker-died"
+    d = Daemon(settings, session=session, watch=watch,
+               analyze="tests.cluster._analyses:dying_analyze")
     with running_daemon(d):
         assert d.n_workers == 2
         for k in range(6):
-            _good(watch, f"burst_{k}", seed=80 + k)
-        wait_for(lambda: d.snapshot.counts.get("done", 0) == 6, timeout_s=180,
-                 what="6 frames done")
+            extra = {"die_marker": str(marker)} if k == 1 else {}
+            write_frame(watch, f"burst_{k}", lattice_image(SHAPE, seed=80 + k),
+                        sidecar(f"burst_{k}", **extra))
+        # bad ones: refused when read here, and an analysis that raises on the worker
+        write_frame(watch, "flat", np.full(SHAPE, 9, np.uint16), sidecar("flat"))
+        write_frame(watch, "broken", lattice_image(SHAPE, seed=90),
+                    sidecar("broken", fail_analysis=True))
+        wait_for(lambda: d.snapshot.counts.get("done", 0) == 6
+                 and d.snapshot.counts.get("quarantined", 0) == 2, timeout_s=180,
+                 what="6 frames done, 2 quarantined")
         assert d.decisions.n_frames == 6  # rules ran here, on the daemon's machine
+    assert marker.exists(), "no worker was killed"
     rows = _rows(session)
-    assert len(rows) == 6 and all(r.state == "done" and r.done_count == 1 for r in rows)
+    done = [r for r in rows if r.state == "done"]
+    assert len(done) == 6 and all(r.done_count == 1 and r.attempts == 1 for r in done)
+    reasons = {r.frame_id or Path(r.path).stem: r.reason for r in rows
+               if r.state == "quarantined"}
+    assert reasons == {"flat": "constant", "broken": "analysis-error"}
+    client.wait_for_workers(2, timeout=120)
     out = tmp_path / "analyze"
     assert main(["analyze", str(watch / "burst_3.tif"), "--out", str(out)]) == 0
     _same_outputs(session / "frames" / "burst_3", out / "burst_3")
