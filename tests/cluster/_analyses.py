@@ -19,6 +19,8 @@ def dying_analyze(frame, settings):
     extra = frame.meta.extra or {}
     if extra.get("fail_analysis"):
         raise RuntimeError("synthetic analysis failure for the test")
+    if extra.get("always_die"):
+        os._exit(17)  # a frame that kills every worker it is given
     marker = extra.get("die_marker")
     if marker and not Path(marker).exists():
         Path(marker).write_text(str(os.getpid()))

@@ -38,7 +38,11 @@ def client():
     # workers import this worktree's livequant and the tests' analyses
     env = {"PYTHONPATH": os.pathsep.join(p for p in (str(ROOT), os.environ.get("PYTHONPATH"))
                                          if p)}
-    cluster = local_cluster(2, env=env)
+    # a task is given up (KilledWorker) when it was running on 2 workers that died
+    import dask
+
+    with dask.config.set({"distributed.scheduler.allowed-failures": 1}):
+        cluster = local_cluster(2, env=env)
     c = distributed.Client(cluster)
     c.wait_for_workers(2, timeout=120)
     yield c
@@ -172,9 +176,10 @@ def test_mixed_archive_once_equal_to_analyze_then_nothing_to_do(tmp_path, client
 
 
 def test_worker_killed_mid_task_leaves_every_frame_done_exactly_once(tmp_path, client):
-    """The worker analysing `victim` dies mid-task (os._exit, as an OOM kill); the
+    """The worker analysing `frame_2` dies mid-task (os._exit, as an OOM kill); the
     scheduler runs the task again on the other worker, and the ledger records each
-    frame done once, claimed once."""
+    frame done once, claimed once.  A frame that kills every worker is given up by the
+    scheduler after 2 deaths and quarantined as `worker-crash`."""
     archive, session = tmp_path / "archive", tmp_path / "session"
     archive.mkdir()
     marker = tmp_path / "victim-died"
@@ -182,17 +187,24 @@ def test_worker_killed_mid_task_leaves_every_frame_done_exactly_once(tmp_path, c
         stem = f"frame_{k}"
         extra = {"die_marker": str(marker)} if k == 2 else {}
         write_frame(archive, stem, lattice_image(SHAPE, seed=40 + k), sidecar(stem, **extra))
+    # and one frame that kills every worker it meets: given up, quarantined, never done
+    write_frame(archive, "poison", lattice_image(SHAPE, seed=49),
+                sidecar("poison", always_die=True))
     pids_before = set(client.run(os.getpid).values())
     s = reprocess([archive], session, fast_settings(), client=client,
                   analyze="tests.cluster._analyses:dying_analyze", progress=True)
     assert marker.exists(), "the worker was not killed"
     assert int(marker.read_text()) in pids_before
-    assert (s.done, s.quarantined, s.failed) == (6, 0, 0), s.to_json()
+    assert (s.done, s.quarantined, s.failed) == (6, 1, 0), s.to_json()
     rows = _rows(session)
-    assert len(rows) == 6
-    assert all(r.state == "done" and r.done_count == 1 and r.attempts == 1 for r in rows)
+    assert len(rows) == 7
+    done = [r for r in rows if r.state == "done"]
+    assert len(done) == 6 and all(r.done_count == 1 and r.attempts == 1 for r in done)
+    (poison,) = [r for r in rows if r.state == "quarantined"]
+    assert poison.path.endswith("poison.tif") and poison.reason == "worker-crash"
+    assert poison.done_count == 0
     assert sorted(p.name for p in (session / "frames").iterdir()) == \
-        [f"frame_{k}" for k in range(6)]
+        [f"frame_{k}" for k in range(6)]  # nothing of the poison frame
     # the nanny restarts the dead worker: the cluster is whole for the next tests
     client.wait_for_workers(2, timeout=120)
 
