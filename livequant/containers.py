@@ -54,7 +54,8 @@ from livequant.frames import (IMAGE_SUFFIXES, MAX_FRAME_PIXELS, Frame, FrameErro
                               read_frame, read_sidecar, resolve_meta, sidecar_path)
 
 __all__ = ["HDF5_SUFFIXES", "MRC_SUFFIXES", "CONTAINER_SUFFIXES", "FRAME_FILE_SUFFIXES",
-           "container_members", "split_ref", "read_any", "read_pixels", "member_sha256", "is_member_ref",
+           "container_members", "split_ref", "ref_name", "read_any", "read_pixels",
+           "member_sha256", "is_member_ref",
            "iter_frames"]
 
 HDF5_SUFFIXES = (".h5", ".hdf5", ".hdf", ".emd")
@@ -107,6 +108,17 @@ def split_ref(ref: str | os.PathLike) -> tuple[Path, str | None]:
         if _suffix(head) in CONTAINER_SUFFIXES + (".tif", ".tiff") and os.path.isfile(head):
             return Path(head), text[k + 1:]
         start = k + 1
+
+
+def ref_name(ref: str | os.PathLike) -> str:
+    """Short name of a frame for messages: the file name, and ``#KEY`` inside a container."""
+    path, key = split_ref(ref)
+    if key is None:  # a plain file, or a container that is gone (split by its suffix then)
+        head, sep, tail = os.fspath(ref).partition("#")
+        if sep and _suffix(head) in CONTAINER_SUFFIXES + (".tif", ".tiff"):
+            return f"{Path(head).name}#{tail}"
+        return path.name
+    return f"{path.name}#{key}"
 
 
 def member_sha256(container_sha256: str, key: str) -> str:

@@ -12,7 +12,7 @@ import pytest
 import tifffile
 
 from livequant.containers import (container_members, iter_frames, read_any, read_pixels,
-                                  split_ref)
+                                  ref_name, split_ref)
 from livequant.frames import FrameError
 from tests.daemon._helpers import lattice_image
 
@@ -181,6 +181,8 @@ def test_hash_in_file_name_and_iter_frames(tmp_path):
     tifffile.imwrite(path, stack)
     assert split_ref(f"{path}#1") == (path, "1")
     assert split_ref(str(path)) == (path, None)
+    assert ref_name(f"{path}#1") == "run#2.tif#1" and ref_name(path) == "run#2.tif"
+    assert ref_name(f"{tmp_path}/gone.h5#/data/a/data") == "gone.h5#/data/a/data"
     got = list(iter_frames([path], defaults={"pixel_size_pm": 20.0}))
     assert [g.frame.frame_id for g in got] == ["run#2#0", "run#2#1"]
     assert all(g.error is None for g in got)

@@ -36,6 +36,7 @@ from pathlib import Path
 from typing import Callable
 
 from livequant.config import ConfigError, Settings
+from livequant.containers import ref_name
 from livequant.daemon.commands import DECISION_SCHEMAS, CommandServer
 from livequant.daemon.decisions import DecisionLoop
 from livequant.daemon.ledger import Ledger
@@ -308,15 +309,14 @@ class Daemon:
             log.info("%s vanished before it was registered", cand.path)
             return
         for ref, reg in registered:  # empty when seen before and not changed
-            path = Path(ref)
             if reg.action == "duplicate":
-                msg = (f"{path.name}: same image as {Path(reg.duplicate_of).name}; not "
+                msg = (f"{ref_name(ref)}: same image as {ref_name(reg.duplicate_of)}; not "
                        "analysed again")
                 self._warn(msg)
                 self.publisher.publish("status", {"event": "quarantined", "path": ref,
                                                   "reason": "duplicate", "message": msg})
             elif reg.action == "requeued":
-                log.info("%s changed since it was analysed; queued again", path.name)
+                log.info("%s changed since it was analysed; queued again", ref_name(ref))
             if reg.action in ("queued", "requeued"):
                 self._wake.set()
 
@@ -454,7 +454,7 @@ class Daemon:
                                           message=out.message or "", frame_id=out.frame_id):
                 log.info("%s changed while it was analysed; queued again", out.path)
                 return
-            self._warn(f"quarantined {Path(out.path).name}: {out.reason}")
+            self._warn(f"quarantined {ref_name(out.path)}: {out.reason}")
             log.warning("quarantined %s: %s", out.path, out.message)
             self.publisher.publish("status", {"event": "quarantined", "path": out.path,
                                               "frame_id": out.frame_id, "reason": out.reason,
@@ -485,7 +485,7 @@ class Daemon:
             msg = (f"{row.path}: the worker process died {row.attempts} times on this frame "
                    "(out of memory, or a crash in native code)")
             self.ledger.quarantine(seq, reason="worker-crash", message=msg)
-            self._warn(f"quarantined {Path(row.path).name}: worker-crash")
+            self._warn(f"quarantined {ref_name(row.path)}: worker-crash")
             self.publisher.publish("status", {"event": "quarantined", "path": row.path,
                                               "reason": "worker-crash", "message": msg})
         else:
