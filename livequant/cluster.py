@@ -144,7 +144,8 @@ def analyze_on_worker(token: str, frame, scan_drift_nm_per_s=None):
 def local_cluster(n_workers: int, **kwargs):
     """A ``LocalCluster`` of `n_workers` single-threaded worker processes on this machine."""
     opts = dict(n_workers=int(n_workers), threads_per_worker=1, processes=True,
-                dashboard_address=":0")  # any free port: never a clash with another
+                dashboard_address=":0",  # any free port: never a clash with another
+                silence_logs=logging.WARNING)
     opts.update(kwargs)
     return distributed.LocalCluster(**opts)
 

@@ -91,6 +91,7 @@ class ReprocessSummary:
     workers: int = 0
     scheduler: str = ""
     elapsed_s: float = 0.0
+    processing_s: float = 0.0
     quarantine: list = field(default_factory=list)
     errors: list = field(default_factory=list)
     tables: dict = field(default_factory=dict)
@@ -98,8 +99,10 @@ class ReprocessSummary:
 
     @property
     def frames_per_s(self) -> float:
+        """Frames finished per second of processing (from the first task sent to the last
+        result; start-up, hashing and the tables not counted)."""
         n = self.done + self.quarantined
-        return n / self.elapsed_s if self.elapsed_s > 0 else 0.0
+        return n / self.processing_s if self.processing_s > 0 else 0.0
 
     def to_json(self) -> dict:
         d = {k: getattr(self, k) for k in self.__dataclass_fields__}
@@ -176,8 +179,14 @@ def reprocess(sources, session, settings, *, client=None, scheduler: str | None 
         n_back = ledger.recover()
         if n_back:
             log.info("%d frame(s) left in processing by an earlier run are queued again", n_back)
+        # a scheduler first: a wrong address fails before the archive is hashed
+        if client is None and (scheduler or settings.daemon.scheduler):
+            address = scheduler or settings.daemon.scheduler
+            client = own_client = connect(address)
+            summary.scheduler = address
+        elif client is not None:
+            summary.scheduler = str(client.scheduler.address)
         now = time.time()
-        refs = []
         for path in files:
             try:
                 regs = register_file(ledger, path, origin="archive", complete_at=now,
@@ -186,34 +195,26 @@ def reprocess(sources, session, settings, *, client=None, scheduler: str | None 
                 summary.errors.append(f"{path}: vanished before it was recorded")
                 continue
             summary.duplicates += sum(r.action == "duplicate" for _, r in regs)
-            refs += [ref for ref, _ in regs]
         counts = ledger.counts()
         summary.queued = counts["queued"]
         summary.frames = sum(counts.values())
         summary.skipped_done = counts["done"]
 
-        if client is None:
-            address = scheduler or settings.daemon.scheduler
-            if address:
-                client = own_client = connect(address)
-                summary.scheduler = address
-            else:
+        decisions = _decision_loop(settings, ledger) if rules else None
+        if summary.queued:
+            if client is None:  # a LocalCluster, only when there is work for it
                 n = n_workers or settings.workers or (os.cpu_count() or 1)
                 cluster = local_cluster(n)
                 client = own_client = _client(cluster)
                 summary.scheduler = f"LocalCluster({n})"
-        else:
-            summary.scheduler = str(getattr(client, "scheduler", None) and
-                                    client.scheduler.address)
-        slots = worker_slots(client)
-        summary.workers = slots
-        decisions = _decision_loop(settings, ledger) if rules else None
-        if summary.queued:
+            slots = summary.workers = worker_slots(client)
             token = install_setup(client, settings, analyze, paths.frames)
+            t_run = time.monotonic()
             try:
                 _run(client, token, ledger, summary, decisions,
                      limit=max_in_flight or 2 * slots, progress=progress)
             finally:
+                summary.processing_s = time.monotonic() - t_run
                 uninstall_setup(client, token)
         if decisions is not None:
             summary.flags = decisions.n_flags

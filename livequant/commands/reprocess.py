@@ -53,6 +53,12 @@ def run(args) -> int:
         print(f"livequant reprocess: --workers must be at least 1, got {args.workers}",
               file=sys.stderr)
         return EXIT_BAD_INPUT
+    if not getattr(args, "verbose", 0):  # Dask's own INFO lines only with -v
+        import logging
+
+        import distributed  # noqa: F401 - it sets its loggers' levels when imported
+
+        logging.getLogger("distributed").setLevel(logging.WARNING)
     try:
         settings = settings_from_args(args)
         summary = reprocess(args.sources, args.session, settings, scheduler=args.scheduler,
@@ -62,9 +68,15 @@ def run(args) -> int:
         print(f"livequant reprocess: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
     s = summary
-    print(f"livequant reprocess: {s.done} frame(s) done, {s.quarantined} quarantined, "
-          f"{s.skipped_done} already done before, {s.failed} failed; {s.frames_per_s:.2f} "
-          f"frames/s on {s.workers} worker thread(s) ({s.scheduler})", file=sys.stderr)
+    if s.queued == 0:
+        print(f"livequant reprocess: nothing to do: {s.skipped_done} frame(s) already done, "
+              f"{s.ledger_counts.get('quarantined', 0)} quarantined (--force analyses them "
+              "again)", file=sys.stderr)
+    else:
+        print(f"livequant reprocess: {s.done} frame(s) done, {s.quarantined} quarantined, "
+              f"{s.skipped_done} already done before, {s.failed} failed; "
+              f"{s.frames_per_s:.2f} frames/s on {s.workers} worker thread(s) "
+              f"({s.scheduler})", file=sys.stderr)
     for q in s.quarantine:
         print(f"  quarantined {q['ref']}: {q['reason']}: {q['message']}", file=sys.stderr)
     for e in s.errors:
