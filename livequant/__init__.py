@@ -7,11 +7,15 @@ The names below are imported on first use (PEP 562), so that ``livequant
 
 __version__ = "0.1.0"
 
-__all__ = ["Frame", "FrameError", "FrameMeta", "read_frame", "hookimpl", "__version__"]
+__all__ = ["Frame", "FrameError", "FrameMeta", "read_frame", "hookimpl", "analyze",
+           "open_session", "__version__"]
 
+# The names are imported on first use, so `import livequant` (and every command's
+# start-up) stays light; the notebook API (livequant/api.py) loads the analysis then.
 _LAZY = {"Frame": "livequant.frames", "FrameError": "livequant.frames",
          "FrameMeta": "livequant.frames", "read_frame": "livequant.frames",
-         "hookimpl": "livequant.rules.hookspecs"}
+         "hookimpl": "livequant.rules.hookspecs", "analyze": "livequant.api",
+         "open_session": "livequant.api"}
 
 
 def __getattr__(name):

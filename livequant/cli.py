@@ -34,6 +34,7 @@ COMMAND_MODULES = (
     "livequant.commands.reject",
     "livequant.commands.report",
     "livequant.commands.keys",
+    "livequant.commands.reprocess",
 )
 
 

@@ -166,6 +166,9 @@ class DaemonSettings(_Model):
     refresh_per_second: float = Field(default=4.0, ge=0.5, le=10)
     grace_s: float = Field(default=30.0, ge=0, le=3600)
     max_attempts: int = Field(default=3, ge=1, le=100)
+    # Dask scheduler for the analysis (livequant/cluster.py): None = the local process pool
+    # for `livequant run`, a LocalCluster for `livequant reprocess`
+    scheduler: str | None = None
 
 
 # ---------------------------------------------------------------- decision rules

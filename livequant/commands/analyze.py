@@ -41,7 +41,9 @@ def register(sub) -> None:
         epilog=EXIT_CODES_HELP,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("frames", nargs="*", metavar="FRAME", help="image files (.tif, .tiff, .npy)")
+    p.add_argument("frames", nargs="*", metavar="FRAME",
+                   help="image files (.tif, .tiff, .npy) or containers (.h5/.emd, .mrc, TIFF "
+                        "stacks: each image a frame; FILE#KEY names one)")
     p.add_argument("--out", metavar="DIR", help="folder for the per-frame outputs "
                    "(default: no files are written, except with --example: ./livequant-example)")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
@@ -65,7 +67,7 @@ def _example_frame(folder: Path) -> Path:
 
 def run(args) -> int:
     from livequant.config import NO_MATERIAL_NOTE, ConfigError
-    from livequant.frames import FrameError, read_frame
+    from livequant.frames import FrameError
     from livequant.outputs import write_frame_outputs
     from livequant.pipeline import analyze_frame
 
@@ -91,12 +93,22 @@ def run(args) -> int:
         print(f"livequant analyze: note: {NO_MATERIAL_NOTE}", file=sys.stderr)
     reports, worst = [], EXIT_OK
     written: dict[str, str] = {}  # frame id -> input file, in this run
-    for path in paths:
-        report = {"path": str(path)}
+    # a container (HDF5/EMD, MRC, TIFF stack) is one frame per image (FILE#KEY)
+    from livequant.containers import container_members, read_any
+
+    refs = []  # (reference to read, the file it is in)
+    for given in paths:
+        if not given.exists() and not given.is_symlink():
+            refs.append((str(given), None))  # reported as "no such file" below
+        else:
+            refs.extend((r, given) for r in container_members(given))
+    for ref, given in refs:
+        path = Path(ref)
+        report = {"path": ref}
         try:
-            if not path.exists() and not path.is_symlink():
-                raise FrameError(f"{path}: no such file", reason="not-found", path=path)
-            frame = read_frame(path, defaults=settings.frame_defaults.as_dict())
+            if given is None:
+                raise FrameError(f"{ref}: no such file", reason="not-found", path=ref)
+            frame = read_any(ref, defaults=settings.frame_defaults.as_dict())
             frame = _unique_id(frame, path, written)
             result = analyze_frame(frame, settings)
             report.update(_report(result))

@@ -47,6 +47,11 @@ def register(subparsers) -> None:
     p.add_argument("--no-ingest", action="store_true", help="do not open the ingest socket")
     p.add_argument("--no-console", action="store_true",
                    help="no live display: log one status line per heartbeat instead")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="analyse on the Dask cluster of this scheduler (tcp://HOST:PORT) "
+                        "instead of local processes; ledger, rules, sockets and display stay "
+                        "here and the frames' pixels travel to the workers "
+                        "(default: daemon.scheduler)")
     p.add_argument("--analyze", metavar="MODULE:FUNCTION", default=None,
                    help="advanced: the per-frame analysis to run "
                         "(default livequant.pipeline:analyze_frame)")
@@ -69,6 +74,7 @@ def run_command(args) -> int:
         "daemon.events_port": args.events_port,
         "daemon.commands_port": args.commands_port,
         "daemon.ingest_socket": False if args.no_ingest else None,
+        "daemon.scheduler": getattr(args, "scheduler", None),
     }
     try:
         settings = load_settings(args.config, overrides=overrides)
@@ -107,6 +113,7 @@ def run_command(args) -> int:
     except SetupError as exc:
         print(f"livequant run: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    _write_tables(Path(args.session))
     # Hand a captured signal back to the default behaviour (the exit status a
     # supervisor expects from a process stopped by SIGTERM or Ctrl+C).
     for sig in daemon.captured_signals[:1]:
@@ -114,3 +121,20 @@ def run_command(args) -> int:
 
         signal.raise_signal(sig)
     return code
+
+
+def _write_tables(session: Path) -> None:
+    """Session-wide cells.parquet / columns.parquet once the daemon has stopped."""
+    from livequant.tables import write_session_tables
+
+    try:
+        info = write_session_tables(session)
+    except Exception as exc:  # noqa: BLE001 - the session itself is complete; say what failed
+        log.error("could not write the session tables (cells/columns.parquet): %s: %s",
+                  type(exc).__name__, exc)
+        print(f"livequant run: the session is complete, but its Parquet tables could not be "
+              f"written ({type(exc).__name__}: {exc}); `livequant reprocess` writes them",
+              file=sys.stderr)
+        return
+    log.info("session tables: %s", ", ".join(f"{k} {v['rows']} rows" for k, v in info.items()))
+

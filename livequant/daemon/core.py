@@ -23,7 +23,6 @@ reason about: ``queued -> processing`` (claim, then submit) and
 from __future__ import annotations
 
 import concurrent.futures as cf
-import hashlib
 import logging
 import multiprocessing
 import os
@@ -37,10 +36,12 @@ from pathlib import Path
 from typing import Callable
 
 from livequant.config import ConfigError, Settings
+from livequant.containers import ref_name
 from livequant.daemon.commands import DECISION_SCHEMAS, CommandServer
 from livequant.daemon.decisions import DecisionLoop
 from livequant.daemon.ledger import Ledger
 from livequant.daemon.publisher import EventPublisher
+from livequant.daemon.register import file_sha256, register_file
 from livequant.daemon.security import bind_policy, start_authenticator
 from livequant.daemon.session import (SessionLock, SetupError, check_session_folder,
                                       check_watch_folder, write_daemon_file)
@@ -48,7 +49,6 @@ from livequant.daemon.sources import (Candidate, FolderSource, SocketSource,
                                       incoming_candidates, put_until)
 from livequant.daemon.status import LastFrame, Snapshot, last_frame_from_summary
 from livequant.daemon.worker import DEFAULT_ANALYZE, Outcome, init_worker, process_path
-from livequant.frames import sidecar_path
 from livequant.pipeline import threads_per_worker
 from livequant.proposals.propose import CAUTION
 
@@ -58,14 +58,6 @@ log = logging.getLogger("livequant.daemon")
 
 _HANDLED_SIGNALS = (signal.SIGINT, signal.SIGTERM)
 _RATE_WINDOW_S = 60.0
-
-
-def file_sha256(path: str | os.PathLike) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
 
 
 class Daemon:
@@ -262,6 +254,18 @@ class Daemon:
         self._take_snapshot()
 
     def _new_pool(self) -> cf.ProcessPoolExecutor:
+        if self.cfg.scheduler:  # a Dask cluster analyses; all else stays here (cluster.py)
+            from livequant.cluster import DaskExecutor
+
+            try:
+                pool = DaskExecutor.connect(self.cfg.scheduler, settings=self.settings,
+                                            analyze_ref=self.analyze,
+                                            frames_dir=self.paths.frames)
+            except ConnectionError as exc:
+                raise SetupError(str(exc)) from None
+            self.n_workers = pool.n_slots
+            self.max_in_flight = self.cfg.max_in_flight or pool.n_slots + 1
+            return pool
         # spawn: a fresh interpreter per worker, safe beside our threads and the
         # ZeroMQ context (fork would copy both mid-flight).
         return cf.ProcessPoolExecutor(
@@ -301,29 +305,24 @@ class Daemon:
                 self._warn(f"intake: {Path(cand.path).name}: {type(exc).__name__}: {exc}")
 
     def _register(self, cand: Candidate) -> None:
-        path = Path(cand.path)
+        # One ledger row per image: a container (HDF5/EMD, MRC, TIFF stack) gives several.
         try:
-            st = path.stat()
+            registered = register_file(self.ledger, cand.path, origin=cand.origin,
+                                       complete_at=cand.complete_at)
         except FileNotFoundError:
-            log.info("%s vanished before it was registered", path)
+            log.info("%s vanished before it was registered", cand.path)
             return
-        side = sidecar_path(path)
-        side_sha = file_sha256(side) if side.exists() else None
-        known = self.ledger.known(str(path))
-        if known == (st.st_size, st.st_mtime_ns, side_sha):
-            return  # seen before, not changed: the common case of a catch-up listing
-        reg = self.ledger.register(str(path), origin=cand.origin, sha256=file_sha256(path),
-                                   sidecar_sha256=side_sha, size_bytes=st.st_size,
-                                   mtime_ns=st.st_mtime_ns, complete_at=cand.complete_at)
-        if reg.action == "duplicate":
-            msg = f"{path.name}: same image as {Path(reg.duplicate_of).name}; not analysed again"
-            self._warn(msg)
-            self.publisher.publish("status", {"event": "quarantined", "path": str(path),
-                                              "reason": "duplicate", "message": msg})
-        elif reg.action == "requeued":
-            log.info("%s changed since it was analysed; queued again", path.name)
-        if reg.action in ("queued", "requeued"):
-            self._wake.set()
+        for ref, reg in registered:  # empty when seen before and not changed
+            if reg.action == "duplicate":
+                msg = (f"{ref_name(ref)}: same image as {ref_name(reg.duplicate_of)}; not "
+                       "analysed again")
+                self._warn(msg)
+                self.publisher.publish("status", {"event": "quarantined", "path": ref,
+                                                  "reason": "duplicate", "message": msg})
+            elif reg.action == "requeued":
+                log.info("%s changed since it was analysed; queued again", ref_name(ref))
+            if reg.action in ("queued", "requeued"):
+                self._wake.set()
 
     def _on_rejected_message(self, reason: str, message: str) -> None:
         self._warn(f"socket: {message}")
@@ -470,7 +469,7 @@ class Daemon:
                                           message=out.message or "", frame_id=out.frame_id):
                 log.info("%s changed while it was analysed; queued again", out.path)
                 return
-            self._warn(f"quarantined {Path(out.path).name}: {out.reason}")
+            self._warn(f"quarantined {ref_name(out.path)}: {out.reason}")
             log.warning("quarantined %s: %s", out.path, out.message)
             self.publisher.publish("status", {"event": "quarantined", "path": out.path,
                                               "frame_id": out.frame_id, "reason": out.reason,
@@ -513,7 +512,7 @@ class Daemon:
                    "each time with no other frame in flight (out of memory, or a crash in "
                    "native code)")
             self.ledger.quarantine(seq, reason="worker-crash", message=msg)
-            self._warn(f"quarantined {Path(row.path).name}: worker-crash")
+            self._warn(f"quarantined {ref_name(row.path)}: worker-crash")
             self.publisher.publish("status", {"event": "quarantined", "path": row.path,
                                               "reason": "worker-crash", "message": msg})
         else:

@@ -306,6 +306,21 @@ class Ledger:
             return Registration("duplicate", cur.lastrowid, duplicate_of=twin[0])
         return Registration("queued", cur.lastrowid)
 
+    def force_requeue(self, seq: int) -> bool:
+        """Queue a ``done`` or ``quarantined`` frame again as a new version (reprocess --force).
+
+        Like a change of content: ``version`` + 1 and ``done_count`` back to 0, so
+        "done exactly once" still holds per version.  Duplicates stay set aside.
+        Returns whether the frame was queued.
+        """
+        with self._transaction() as db:
+            cur = db.execute(
+                "UPDATE frames SET state='queued', reason=NULL, message=NULL, "
+                "version=version+1, attempts=0, done_count=0, queued_at=?, started_at=NULL, "
+                "finished_at=NULL, published_at=NULL WHERE seq=? AND state IN ('done', "
+                "'quarantined') AND COALESCE(reason, '')<>'duplicate'", (time.time(), seq))
+            return cur.rowcount == 1
+
     def recover(self) -> int:
         """Put frames left ``processing`` by a stopped daemon back in the queue; return how many."""
         with self._lock:

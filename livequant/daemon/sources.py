@@ -27,7 +27,8 @@ from pathlib import Path
 
 from livequant.daemon._socket_thread import SocketThread
 from livequant.daemon.security import apply_curve_server
-from livequant.frames import (IMAGE_SUFFIXES, MAX_FRAME_PIXELS, FrameError, resolve_meta,
+from livequant.containers import FRAME_FILE_SUFFIXES
+from livequant.frames import (MAX_FRAME_PIXELS, FrameError, resolve_meta,
                               sidecar_path, write_frame)
 
 __all__ = ["Candidate", "FolderSource", "SocketSource", "image_files", "put_until",
@@ -71,7 +72,7 @@ def image_files(folder: Path) -> list[Path]:
         return out
     for entry in entries:
         name = entry.name
-        if name.startswith(".") or not name.lower().endswith(IMAGE_SUFFIXES):
+        if name.startswith(".") or not name.lower().endswith(FRAME_FILE_SUFFIXES):
             continue
         if entry.is_file():
             out.append(Path(entry.path))
@@ -242,12 +243,12 @@ class FolderSource:
         lower = name.lower()
         if lower.endswith(".json"):
             # A sidecar arrived: the frame it belongs to may now be complete.
-            for suffix in IMAGE_SUFFIXES:
+            for suffix in FRAME_FILE_SUFFIXES:
                 image = path.with_suffix(suffix)
                 if image.exists():
                     self._note(image)
             return
-        if not lower.endswith(IMAGE_SUFFIXES) or path.parent != self.folder:
+        if not lower.endswith(FRAME_FILE_SUFFIXES) or path.parent != self.folder:
             return
         sig = _signature(path)
         if sig is None:

@@ -20,9 +20,11 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
 
-from livequant.frames import FrameError, read_frame
+from livequant.containers import read_any, split_ref
+from livequant.frames import FrameError
 
-__all__ = ["Outcome", "init_worker", "process_path", "resolve_callable", "DEFAULT_ANALYZE"]
+__all__ = ["Outcome", "init_worker", "configure", "process_path", "read_for_analysis",
+           "analyze_read_frame", "write_and_view", "resolve_callable", "DEFAULT_ANALYZE"]
 
 #: The analysis run on every frame, as ``"module:attribute"``.
 DEFAULT_ANALYZE = "livequant.pipeline:analyze_frame"
@@ -92,15 +94,25 @@ def init_worker(settings, analyze_ref, frames_dir: str, n_threads: int | None = 
     # Ctrl+C reaches the whole process group; the daemon decides what to do with
     # the frames in flight, so a worker must not die half-way through one.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    configure(settings, analyze_ref, frames_dir)
+    if n_threads is not None:
+        from livequant.pipeline import limit_threads
+
+        limit_threads(n_threads)
+
+
+def configure(settings, analyze_ref, frames_dir: str) -> None:
+    """Remember settings, analysis function and output folder in this process.
+
+    :func:`init_worker` calls it in each pool process; a Dask worker calls it
+    through its setup plugin (:mod:`livequant.cluster`), which does not touch
+    signals (a Dask worker's signal handling belongs to its nanny).
+    """
     _state["settings"] = settings
     _state["analyze"] = resolve_callable(analyze_ref)
     _state["takes_scan_drift"] = _takes_scan_drift(_state["analyze"])
     _state["frames_dir"] = Path(frames_dir)
     _state["defaults"] = settings.frame_defaults.as_dict()
-    if n_threads is not None:
-        from livequant.pipeline import limit_threads
-
-        limit_threads(n_threads)
 
 
 def _takes_scan_drift(fn) -> bool:
@@ -128,31 +140,57 @@ def process_path(path: str, scan_drift_nm_per_s=None) -> Outcome:
     permissions) are not the frame's fault and propagate, so the daemon keeps the
     frame queued and reports the failure.
     """
-    from livequant.outputs import write_frame_outputs
-
     t0 = time.perf_counter()
+    frame = read_for_analysis(path)
+    if isinstance(frame, Outcome):
+        return frame
+    t1 = time.perf_counter()
+    result = analyze_read_frame(frame, path, scan_drift_nm_per_s)
+    if isinstance(result, Outcome):
+        return result
+    return write_and_view(result, frame, path, read_s=t1 - t0,
+                          analyze_s=time.perf_counter() - t1)
+
+
+# The three steps of process_path, also run apart: with a Dask scheduler the daemon
+# reads and writes on its own machine and only the analysis runs on a cluster worker.
+
+def read_for_analysis(path: str):
+    """The frame at `path` (file or ``FILE#KEY``), or a quarantined Outcome saying why not."""
     try:
         # Confined to the folder the frame was found in: a link out of it is refused.
-        frame = read_frame(path, defaults=_state["defaults"], confine_to=Path(path).parent)
+        # `path` may name one image of a container (FILE#KEY, livequant.containers).
+        return read_any(path, defaults=_state["defaults"], confine_to=split_ref(path)[0].parent)
     except FrameError as exc:
         return Outcome(path, "quarantined", reason=exc.reason, message=str(exc))
-    t1 = time.perf_counter()
+
+
+def analyze_read_frame(frame, path: str, scan_drift_nm_per_s=None):
+    """The configured analysis of `frame`, or a quarantined Outcome (``analysis-error``)."""
     try:
         analyze = _state["analyze"]
         if scan_drift_nm_per_s is not None and _state["takes_scan_drift"]:
-            result = analyze(frame, _state["settings"], scan_drift_nm_per_s=scan_drift_nm_per_s)
-        else:
-            result = analyze(frame, _state["settings"])
+            return analyze(frame, _state["settings"], scan_drift_nm_per_s=scan_drift_nm_per_s)
+        return analyze(frame, _state["settings"])
     except Exception as exc:  # noqa: BLE001 - becomes the frame's quarantine reason
         tb = traceback.format_exception_only(type(exc), exc)[-1].strip()
         return Outcome(path, "quarantined", frame_id=frame.frame_id, reason="analysis-error",
                        message=f"{path}: analysis failed: {tb}")
+
+
+def write_and_view(result, frame, path: str, *, read_s: float, analyze_s: float) -> Outcome:
+    """Write the frame's outputs (``summary.json`` last), build its view: a done Outcome.
+
+    Errors writing (disk full, permissions) propagate: they are not the frame's fault.
+    """
+    from livequant.outputs import write_frame_outputs
+
     t2 = time.perf_counter()
     write_frame_outputs(result, _state["frames_dir"])
     t3 = time.perf_counter()
     view, view_error = _frame_view(result, frame)
     return Outcome(path, "done", frame_id=result.frame_id, summary=result.summary(),
-                   timings_s={"read": t1 - t0, "analyze": t2 - t1, "write": t3 - t2,
+                   timings_s={"read": read_s, "analyze": analyze_s, "write": t3 - t2,
                               "view": time.perf_counter() - t3},
                    view=view, view_error=view_error)
 

@@ -232,7 +232,8 @@ def load_frame(session: SessionData, frame_id: str, *, summary: dict | None = No
     FileNotFoundError
         When the frame has no ``summary.json`` (not done, or outputs removed).
     """
-    from livequant.frames import FrameError, read_image
+    from livequant.containers import read_pixels, split_ref
+    from livequant.frames import FrameError
 
     folder = session.frame_dir(frame_id)
     if summary is None:
@@ -253,11 +254,11 @@ def load_frame(session: SessionData, frame_id: str, *, summary: dict | None = No
     image, note = None, ""
     if record is None:
         note = "the ledger has no row for this frame, so its image file is unknown"
-    elif not Path(record.path).is_file():
+    elif not split_ref(record.path)[0].is_file():  # FILE#KEY: one image of a container
         note = f"the image file {record.path} is gone; maps are drawn without it"
     else:
         try:
-            image = np.asarray(read_image(record.path), dtype=float)
+            image = np.asarray(read_pixels(record.path), dtype=float)
         except (FrameError, OSError, ValueError) as exc:
             note = f"the image file {record.path} could not be read ({exc}); maps are drawn " \
                    "without it"

@@ -416,3 +416,8 @@ def test_sigterm_drains_and_exits(tmp_path):
     assert "stopping" in log
     events = [e["data"].get("event") for e in read_events(tmp_path / "session", "status")]
     assert events[-1] == "stopped"
+    # the session-wide table of columns is written once the daemon has stopped
+    import pyarrow.parquet as pq
+
+    table = pq.read_table(tmp_path / "session" / "columns.parquet")
+    assert set(table.column("frame_id").to_pylist()) == {"t0"} and table.num_rows > 0

@@ -14,6 +14,7 @@ import queue
 import time
 from pathlib import Path
 
+import mrcfile
 import numpy as np
 import pytest
 import tifffile
@@ -65,9 +66,13 @@ def _write_bad_inputs(watch: Path, outside: Path) -> dict[str, set[str]]:
     image("zero_bytes", b"", reasons={"empty-file"})
     image("not_an_image", b"operator notes: check the gun vacuum before lunch\n",
           reasons={"unreadable"})
-    tifffile.imwrite(watch / "stack_3d.tif", np.stack([good] * 3), photometric="minisblack")
-    (watch / "stack_3d.json").write_text(json.dumps(_sc("stack_3d")))
-    expected["stack_3d"] = {"not-2d"}
+    # a stack is not bad input: each page is a frame (test below); a cut-off MRC stack is
+    with mrcfile.new(watch / "cut_stack.mrc") as mrc:
+        mrc.set_data(np.stack([good.astype(np.float32)] * 3))
+    data = (watch / "cut_stack.mrc").read_bytes()
+    (watch / "cut_stack.mrc").write_bytes(data[: len(data) // 2])
+    (watch / "cut_stack.json").write_text(json.dumps(_sc("cut_stack")))
+    expected["cut_stack"] = {"unreadable"}
     with_nan = good.astype(np.float32)
     with_nan[40, 17] = np.nan
     write_frame(watch, "nan_pixel", with_nan, _sc("nan_pixel"))
@@ -120,7 +125,7 @@ def _done_once(session: Path) -> list[str]:
 
 
 def test_every_kind_of_bad_input_is_quarantined_and_nothing_else_is_lost(tmp_path):
-    """1. good frames and 17 bad inputs (15 to quarantine, 2 pipes) land in the watched
+    """1. good frames, a 3-page TIFF stack (3 frames) and 17 bad inputs (15 to quarantine, 2 pipes) land in the watched
     folder together; 2. a frame vanishes between being queued and being read; 3. a writer
     dies half-way through a frame and finishes it later (19 bad inputs in all).  Every bad one is quarantined with its reason
     (or, for pipes, ignored with a warning), the daemon never stops, every good frame is
@@ -133,10 +138,15 @@ def test_every_kind_of_bad_input_is_quarantined_and_nothing_else_is_lost(tmp_pat
         write_frame(watch, "good_before", lattice_image(SHAPE, seed=1), _sc("good_before"))
         expected = _write_bad_inputs(watch, outside)
         write_frame(watch, "good_after", lattice_image(SHAPE, seed=2), _sc("good_after"))
+        # a 3-page TIFF stack: each page is a frame of its own (DESIGN.md, containers)
+        tifffile.imwrite(watch / "stack_3d.tif",
+                         np.stack([lattice_image(SHAPE, seed=60 + k) for k in range(3)]),
+                         photometric="minisblack")
+        (watch / "stack_3d.json").write_text(json.dumps(_sc("stack_3d")))
         n_bad = len(expected)
         wait_for(lambda: d.snapshot.counts.get("quarantined", 0) == n_bad
-                 and d.snapshot.counts.get("done", 0) == 2, timeout_s=120,
-                 what=f"{n_bad} quarantined and 2 done")
+                 and d.snapshot.counts.get("done", 0) == 5, timeout_s=120,
+                 what=f"{n_bad} quarantined and 5 done")
 
         # a frame that vanishes after it was queued, before a worker reads it
         assert send_command(cmd, {"cmd": "pause"}, timeout_s=10)["ok"]
@@ -156,7 +166,7 @@ def test_every_kind_of_bad_input_is_quarantined_and_nothing_else_is_lost(tmp_pat
                  what="the half-written frame quarantined")
         (watch / "interrupted.json").write_text(json.dumps(_sc("interrupted")))
         (watch / "interrupted.tif").write_bytes(data)
-        wait_for(lambda: d.snapshot.counts.get("done", 0) == 3, what="the finished frame done")
+        wait_for(lambda: d.snapshot.counts.get("done", 0) == 6, what="the finished frame done")
 
         assert d.snapshot.state == "running" and d.n_worker_crashes == 0
         warnings = "\n".join(d.snapshot.warnings)
@@ -164,7 +174,8 @@ def test_every_kind_of_bad_input_is_quarantined_and_nothing_else_is_lost(tmp_pat
     for stem, ok in expected.items():
         assert reasons.get(stem) in ok, (stem, reasons.get(stem), ok)
     assert set(reasons) == set(expected), set(reasons) ^ set(expected)
-    assert _done_once(session) == ["good_after", "good_before", "interrupted"]
+    assert _done_once(session) == ["good_after", "good_before", "interrupted", "stack_3d#0",
+                                   "stack_3d#1", "stack_3d#2"]
     assert "quarantined" in warnings
     # each quarantine is published with its reason and a message naming the file
     events = {Path(e["data"]["path"]).stem: e["data"] for e in read_events(session, "status")
