@@ -27,6 +27,7 @@ __all__ = [
     "DEFAULT_TOML",
     "MATERIALS_TOML",
     "Material",
+    "LandauCoefficients",
     "load_materials",
 ]
 
@@ -380,6 +381,22 @@ def validate_settings(tree: Mapping) -> Settings:
 # ---------------------------------------------------------------- materials
 
 
+class LandauCoefficients(_Model):
+    """Landau-Devonshire coefficients of a material (``[NAME.landau]``), Haun's form.
+
+    ``F = alpha1 P^2 + alpha11 P^4 + alpha111 P^6`` with ``alpha1 = alpha1_slope_m_per_F_K
+    * (T - t0_K)``, SI units; ``livequant.analysis.landau`` converts them to its own
+    convention (``alpha = 2 alpha1, beta = 4 alpha11, gamma = 6 alpha111``).
+    """
+
+    alpha1_slope_m_per_F_K: float = Field(gt=0)
+    t0_K: float = Field(gt=0)
+    alpha11: float
+    alpha111: float = 0.0
+    source: str
+    status: str
+
+
 class Material(_Model):
     """One entry of ``config/materials.toml``."""
 
@@ -395,6 +412,7 @@ class Material(_Model):
     p_sign_b_vs_a: Literal[-1, 1] | None = None
     source: str
     status: str
+    landau: LandauCoefficients | None = None
 
     @property
     def cell_volume_pm3(self) -> float:
