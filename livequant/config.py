@@ -121,6 +121,15 @@ class ScanDriftSettings(_Model):
     min_drift_pairs: int = Field(default=2, ge=1)
 
 
+class PhysicsSettings(_Model):
+    """Wall physics per frame (livequant.analysis.wallphysics): G-L numbers and roughness."""
+
+    enabled: bool = True
+    temperature_K: float = Field(default=298.0, gt=0, le=2000)
+    roughness_min_rows: int = Field(default=12, ge=4)
+    roughness_bootstrap: int = Field(default=100, ge=10, le=10_000)
+
+
 class AnalysisSettings(_Model):
     lattice: LatticeSettings = LatticeSettings()
     detection: DetectionSettings = DetectionSettings()
@@ -130,6 +139,7 @@ class AnalysisSettings(_Model):
     cells: CellsSettings = CellsSettings()
     scan_drift: ScanDriftSettings = ScanDriftSettings()
     material: str | None = None
+    physics: PhysicsSettings = PhysicsSettings()
 
 
 class DaemonSettings(_Model):
