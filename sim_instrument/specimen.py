@@ -210,10 +210,10 @@ class Specimen:
         self.a_ref_nm = ref.a_pm / 1000.0
         w, h = scenario.size_nm
         self.bounds_nm = (-w / 2, w / 2, -h / 2, h / 2)
+        self.time_s = 0.0
         self.layers = self._build_layers()
         self.kinks = self._build_kinks()
         self._vacancy_keys = self._build_vacancies()
-        self.time_s = 0.0
 
     def set_time(self, t_s: float) -> None:
         """Move the specimen's time-varying features to session time `t_s` (seconds).
