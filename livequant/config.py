@@ -220,10 +220,26 @@ class AnomalyRuleSettings(_Model):
     max_flags: int = Field(default=10, ge=1)
 
 
+class FeatureTrackSettings(_Model):
+    """Built-in rule ``feature_tracks`` and the tracker behind it (livequant.proposals.tracks)."""
+
+    max_wall_shift_nm: float = Field(default=0.5, gt=0)
+    min_significance: float = Field(default=3.0, ge=0)
+    flag_cores: bool = True
+    region_nm: float = Field(default=3.0, gt=0)
+    match_distance_nm: float = Field(default=3.0, gt=0)
+    max_angle_deg: float = Field(default=20.0, gt=0, le=90)
+    core_merge_nm: float = Field(default=1.5, gt=0)
+    core_match_nm: float = Field(default=2.0, gt=0)
+    edge_margin_nm: float = Field(default=1.0, ge=0)
+    vanish_frames: int = Field(default=2, ge=1)
+
+
 class RulesSettings(_Model):
     """Decision rules (livequant.rules): which load, from where, and their thresholds."""
 
-    enabled: list[str] = ["domain_walls", "vortex_cores", "interfaces", "anomalies"]
+    enabled: list[str] = ["domain_walls", "vortex_cores", "interfaces", "anomalies",
+                          "feature_tracks"]
     blocked: list[str] = []
     plugin_dirs: list[str] = []
     max_consecutive_failures: int = Field(default=5, ge=1, le=100_000)
@@ -233,6 +249,7 @@ class RulesSettings(_Model):
     vortex_cores: VortexRuleSettings = VortexRuleSettings()
     interfaces: InterfaceRuleSettings = InterfaceRuleSettings()
     anomalies: AnomalyRuleSettings = AnomalyRuleSettings()
+    feature_tracks: FeatureTrackSettings = FeatureTrackSettings()
     options: dict[str, dict[str, Any]] = {}
 class ProposalSettings(_Model):
     """Flags -> proposed scan regions (livequant.proposals)."""

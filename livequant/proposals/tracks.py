@@ -32,12 +32,12 @@ Cores
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 __all__ = ["WallObservation", "CoreObservation", "WallTrack", "CoreTrack", "FeatureTracker",
-           "merge_cores", "inside_region"]
+           "merge_cores", "inside_region", "frame_features"]
 
 
 def inside_region(xy_nm, region: dict, *, margin_nm: float = 0.0) -> np.ndarray:
@@ -61,6 +61,16 @@ class WallObservation:
     sigma_nm: float
     width_nm: float | None = None
     energy_J_per_m2: float | None = None
+    stage_point_nm: tuple[float, float] | None = None
+    sigma_fit_nm: float | None = None
+
+    def redrifted(self, drift_nm, sigma_drift_nm: float) -> "WallObservation":
+        """The same observation with a better drift estimate (needs ``stage_point_nm``)."""
+        if self.stage_point_nm is None:
+            return self
+        p = tuple(float(v) for v in np.asarray(self.stage_point_nm) - np.asarray(drift_nm))
+        return replace(self, point_nm=p,
+                       sigma_nm=float(math.hypot(self.sigma_fit_nm or 0.0, sigma_drift_nm)))
 
 
 @dataclass(frozen=True)
@@ -71,6 +81,7 @@ class CoreObservation:
     t_s: float
     point_nm: tuple[float, float]
     winding: int
+    stage_point_nm: tuple[float, float] | None = None
 
 
 @dataclass
@@ -223,6 +234,8 @@ class FeatureTracker:
         self.walls: list[WallTrack] = []
         self.cores: list[CoreTrack] = []
         self.footprints: list[dict] = []   # specimen regions imaged so far
+        self._stage_footprints: dict[str, dict] = {}
+        self._footprint_index: dict[str, int] = {}
         self._n = 0
 
     def _id(self, prefix: str) -> str:
@@ -231,8 +244,31 @@ class FeatureTracker:
 
     # ------------------------------------------------------------------ frames
 
+    def redrift(self, frame_id: str, drift_nm, sigma_drift_nm: float) -> None:
+        """Re-place one frame's observations with a better drift estimate.
+
+        The decision loop tracks a frame with the drift *predicted* for it
+        (the rules need the tracks before the frame is registered) and calls
+        this once the frame's own drift is measured.  Walls and footprints
+        move; cores keep their (already linked) positions, shifted likewise.
+        """
+        d = np.asarray(drift_nm, float)
+        for tr in self.walls:
+            tr.observations = [o.redrifted(d, sigma_drift_nm) if o.frame_id == frame_id else o
+                               for o in tr.observations]
+        for tr in self.cores:
+            tr.observations = [replace(o, point_nm=tuple(float(v) for v in
+                                                         np.asarray(o.stage_point_nm) - d))
+                               if o.frame_id == frame_id and o.stage_point_nm is not None else o
+                               for o in tr.observations]
+        fp = self._stage_footprints.get(frame_id)
+        if fp is not None:
+            k = self._footprint_index[frame_id]
+            self.footprints[k] = {**fp, "center_x_nm": fp["center_x_nm"] - float(d[0]),
+                                  "center_y_nm": fp["center_y_nm"] - float(d[1])}
+
     def observe(self, frame_id: str, t_s: float, footprint_specimen: dict, *,
-                walls=(), cores_xy_nm=(), cores_winding=()) -> dict:
+                walls=(), cores_xy_nm=(), cores_winding=(), drift_nm=None) -> dict:
         """Add one frame; returns what changed.
 
         Parameters
@@ -245,6 +281,9 @@ class FeatureTracker:
         walls : iterable of WallObservation
         cores_xy_nm, cores_winding : array_like
             Plaquette cores (specimen nm) and their windings.
+        drift_nm : (dx, dy), optional
+            The drift used for the specimen coordinates; kept (as stage
+            positions) so that :meth:`redrift` can re-place them.
 
         Returns
         -------
@@ -252,9 +291,14 @@ class FeatureTracker:
             ``walls``: ids of the wall tracks observed in this frame;
             ``appeared`` / ``vanished``: core tracks that appeared or vanished now.
         """
+        d = np.zeros(2) if drift_nm is None else np.asarray(drift_nm, float)
         seen_walls = [self._add_wall(o) for o in walls]
         xy, wd = merge_cores(cores_xy_nm, cores_winding, radius_nm=self.core_merge_nm)
-        appeared, vanished = self._add_cores(frame_id, t_s, footprint_specimen, xy, wd)
+        appeared, vanished = self._add_cores(frame_id, t_s, footprint_specimen, xy, wd, d)
+        self._footprint_index[frame_id] = len(self.footprints)
+        self._stage_footprints[frame_id] = {
+            **footprint_specimen, "center_x_nm": footprint_specimen["center_x_nm"] + float(d[0]),
+            "center_y_nm": footprint_specimen["center_y_nm"] + float(d[1])}
         self.footprints.append(dict(footprint_specimen))
         return {"walls": seen_walls, "appeared": appeared, "vanished": vanished}
 
@@ -273,8 +317,7 @@ class FeatureTracker:
             best = WallTrack(self._id("W"))
             self.walls.append(best)
         elif float(n @ best.normal) < 0:  # same wall, normal reported the other way
-            obs = WallObservation(obs.frame_id, obs.t_s, obs.point_nm, tuple(-n), obs.sigma_nm,
-                                  obs.width_nm, obs.energy_J_per_m2)
+            obs = replace(obs, normal=tuple(-n))
         best.observations.append(obs)
         return best.track_id
 
@@ -282,7 +325,7 @@ class FeatureTracker:
         return any(bool(inside_region(xy, fp, margin_nm=self.edge_margin_nm)[0])
                    for fp in self.footprints)
 
-    def _add_cores(self, frame_id, t_s, footprint, xy, wd):
+    def _add_cores(self, frame_id, t_s, footprint, xy, wd, d):
         live = [tr for tr in self.cores if tr.alive]
         used_tracks: set[int] = set()
         used_obs: set[int] = set()
@@ -299,14 +342,16 @@ class FeatureTracker:
                 continue
             used_tracks.add(k)
             used_obs.add(m)
-            live[k].observations.append(CoreObservation(frame_id, t_s, tuple(xy[m]), int(wd[m])))
+            live[k].observations.append(CoreObservation(frame_id, t_s, tuple(xy[m]), int(wd[m]),
+                                                        tuple(xy[m] + d)))
             live[k].missed = 0
         appeared, vanished = [], []
         for m in range(len(xy)):
             if m in used_obs:
                 continue
             tr = CoreTrack(self._id("C"), int(wd[m]),
-                           [CoreObservation(frame_id, t_s, tuple(xy[m]), int(wd[m]))],
+                           [CoreObservation(frame_id, t_s, tuple(xy[m]), int(wd[m]),
+                                            tuple(xy[m] + d))],
                            first_seen_in=frame_id)
             if inside_region(xy[m], footprint, margin_nm=self.edge_margin_nm)[0] and \
                     self._imaged_before(xy[m]):
@@ -336,3 +381,48 @@ class FeatureTracker:
         """JSON-ready: every wall and core track."""
         return {"walls": [t.to_json() for t in self.walls],
                 "cores": [t.to_json() for t in self.cores]}
+
+
+def frame_features(view, geometry, t_s: float, drift_nm, sigma_drift_nm: float) -> dict:
+    """One frame's wall and cores in specimen coordinates (stage minus `drift_nm`).
+
+    Parameters
+    ----------
+    view : FrameView
+        Its ``summary["cells"]`` gives the wall (``x_pm, y_pm`` in the image,
+        ``normal_deg``, ``sigma_x0``, ``width``) and the topology cores.
+    geometry : FrameGeometry
+    t_s : float
+        The frame's middle time.
+    drift_nm, sigma_drift_nm
+        The drift model's specimen offset of this frame and its sigma.
+
+    Returns
+    -------
+    dict
+        ``walls`` (list of :class:`WallObservation`), ``cores_xy_nm`` (K, 2),
+        ``cores_winding`` (K,).
+    """
+    cells = (view.summary or {}).get("cells") or {}
+    px_pm = float(view.pixel_size_pm)
+    d = np.asarray(drift_nm, float)
+    walls = []
+    w = cells.get("wall")
+    if w and all(w.get(k) is not None for k in ("x_pm", "y_pm", "normal_deg", "sigma_x0")):
+        stage = geometry.px_to_stage(w["x_pm"] / px_pm, w["y_pm"] / px_pm)
+        th = math.radians(w["normal_deg"])
+        n = math.cos(th) * geometry.e_fast + math.sin(th) * geometry.e_slow
+        sigma = math.hypot(w["sigma_x0"] / 1000.0, sigma_drift_nm)
+        phys = ((view.summary.get("physics") or {}).get("gl") or {})
+        walls.append(WallObservation(view.frame_id, float(t_s), tuple(stage - d), tuple(n),
+                                     sigma, width_nm=(w.get("width") or 0) / 1000.0 or None,
+                                     energy_J_per_m2=phys.get("energy_J_per_m2"),
+                                     stage_point_nm=tuple(float(v) for v in stage),
+                                     sigma_fit_nm=w["sigma_x0"] / 1000.0))
+    cores = ((cells.get("topology") or {}).get("cores")) or []
+    xy = np.array([[c["x_pm"] / px_pm, c["y_pm"] / px_pm] for c in cores
+                   if c.get("x_pm") is not None and c.get("winding")]).reshape(-1, 2)
+    wd = np.array([int(np.sign(c["winding"])) for c in cores
+                   if c.get("x_pm") is not None and c.get("winding")], int)
+    stage = geometry.px_to_stage(xy[:, 0], xy[:, 1]).reshape(-1, 2) - d if len(xy) else xy
+    return {"walls": walls, "cores_xy_nm": stage, "cores_winding": wd}
