@@ -258,6 +258,14 @@ def fit_roughness(lines, sigmas=None, *, l_min: int = 1, l_max: int | None = Non
     var = np.concatenate([s[np.isfinite(u) & np.isfinite(s)] ** 2 for u, s in zip(lines, sigmas)])
     floor = 2.0 * float(np.mean(var)) if var.size else 0.0
     lag, b, npairs = displacement_correlation(lines, max_lag=l_max)
+    if floor > 0:
+        # Pure noise gives B(L) = floor with a standard error of about floor * 2 / sqrt(n)
+        # (each squared difference is floor * chi2_1; overlapping pairs share noise, x sqrt 2).
+        sel = (lag >= l_min) & (npairs > 0)
+        se = floor * 2.0 / np.sqrt(np.maximum(npairs[sel], 1))
+        if not np.any(b[sel] - floor > 3.0 * se):
+            raise ValueError("B(L) does not exceed the noise floor 2<sigma_u^2> by 3 standard "
+                             "errors at any lag: the wall is flat within its noise")
     zeta, amp = _fit_zeta(lag, b - floor, l_min, l_max)
     if not np.isfinite(zeta):
         raise ValueError("B(L) is not positive over the fit range (the wall is flat within "

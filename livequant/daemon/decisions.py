@@ -112,6 +112,11 @@ class DecisionLoop:
                                        edge_margin_nm=ft.edge_margin_nm,
                                        vanish_frames=ft.vanish_frames)
         self.latest_tracks: dict = {}
+        # Cores for the tracks come from the loop windings of the vortex rule (robust where
+        # the displacement vanishes at a core), whether or not that rule is enabled.
+        from livequant.rules.builtin.vortex_cores import VortexCoreRule
+
+        self._core_finder = VortexCoreRule(settings.rules.vortex_cores)
         self._lock = threading.RLock()
         self._shown_proposals: tuple | None = None  # display rows; None: read again
         self._next_number = 1
@@ -249,7 +254,9 @@ class DecisionLoop:
         """Walls and cores of this frame into the feature tracks (specimen coordinates)."""
         d, sd = (self.model.position_of(view.frame_id, t_mid) if self.drift_cfg.enabled
                  else (np.zeros(2), 0.0))
-        report = frame_features(view, geometry, t_mid, d, sd)
+        cores_px = [(f.evidence["x_px"], f.evidence["y_px"], f.evidence["winding"])
+                    for f in (self._core_finder.livequant_frame_rules(view) or [])]
+        report = frame_features(view, geometry, t_mid, d, sd, cores_px=cores_px)
         out = self.features.observe(view.frame_id, t_mid,
                                     shift_region(geometry.footprint(), -np.asarray(d)),
                                     walls=report["walls"], cores_xy_nm=report["cores_xy_nm"],

@@ -383,7 +383,8 @@ class FeatureTracker:
                 "cores": [t.to_json() for t in self.cores]}
 
 
-def frame_features(view, geometry, t_s: float, drift_nm, sigma_drift_nm: float) -> dict:
+def frame_features(view, geometry, t_s: float, drift_nm, sigma_drift_nm: float, *,
+                   cores_px=None) -> dict:
     """One frame's wall and cores in specimen coordinates (stage minus `drift_nm`).
 
     Parameters
@@ -396,6 +397,11 @@ def frame_features(view, geometry, t_s: float, drift_nm, sigma_drift_nm: float) 
         The frame's middle time.
     drift_nm, sigma_drift_nm
         The drift model's specimen offset of this frame and its sigma.
+    cores_px : sequence of (x_px, y_px, winding), optional
+        Cores found by a more robust method (the decision loop passes those
+        of the ``vortex_cores`` loop windings); default: the plaquette cores of
+        the topology summary (which miss cores whose cells fall below the
+        summary's signal-to-noise limit).
 
     Returns
     -------
@@ -419,10 +425,11 @@ def frame_features(view, geometry, t_s: float, drift_nm, sigma_drift_nm: float) 
                                      energy_J_per_m2=phys.get("energy_J_per_m2"),
                                      stage_point_nm=tuple(float(v) for v in stage),
                                      sigma_fit_nm=w["sigma_x0"] / 1000.0))
-    cores = ((cells.get("topology") or {}).get("cores")) or []
-    xy = np.array([[c["x_pm"] / px_pm, c["y_pm"] / px_pm] for c in cores
-                   if c.get("x_pm") is not None and c.get("winding")]).reshape(-1, 2)
-    wd = np.array([int(np.sign(c["winding"])) for c in cores
-                   if c.get("x_pm") is not None and c.get("winding")], int)
+    if cores_px is None:
+        cores = ((cells.get("topology") or {}).get("cores")) or []
+        cores_px = [(c["x_pm"] / px_pm, c["y_pm"] / px_pm, c["winding"]) for c in cores
+                    if c.get("x_pm") is not None and c.get("winding")]
+    xy = np.array([[c[0], c[1]] for c in cores_px], float).reshape(-1, 2)
+    wd = np.array([int(np.sign(c[2])) for c in cores_px], int)
     stage = geometry.px_to_stage(xy[:, 0], xy[:, 1]).reshape(-1, 2) - d if len(xy) else xy
     return {"walls": walls, "cores_xy_nm": stage, "cores_winding": wd}

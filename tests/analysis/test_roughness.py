@@ -97,3 +97,11 @@ def test_wall_positions_by_row_recovers_a_known_line():
     assert ok.sum() >= 38
     pulls = (u[ok] - u_true[ok]) / su[ok]
     assert abs(np.mean(pulls)) < 0.4 and 0.7 < np.std(pulls) < 1.3
+
+
+def test_straight_wall_is_flat_within_noise():
+    # A straight wall measured with 2 pm noise: B(L) is the noise floor, no exponent claimed.
+    rng = np.random.default_rng(12)
+    u = rng.normal(0.0, 2.0, 60)
+    with pytest.raises(ValueError, match="flat within its noise"):
+        fit_roughness(u, np.full(60, 2.0))
