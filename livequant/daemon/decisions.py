@@ -292,6 +292,18 @@ class DecisionLoop:
         d, sd = self.model.position_of(view.frame_id, t_mid)
         self.features.redrift(view.frame_id, d, sd)
 
+    def _tracks_status(self) -> dict:
+        """Counts and the latest observed wall track's velocity (for the display)."""
+        latest = None
+        for w in self.latest_tracks.get("walls") or ():
+            if w.get("velocity_nm_per_s") is not None:
+                latest = {k: w.get(k) for k in ("track_id", "n", "velocity_nm_per_s",
+                                                "sigma_velocity_nm_per_s")}
+        return {"walls": len(self.features.walls),
+                "cores_alive": sum(c.alive for c in self.features.cores),
+                "cores_vanished": sum(not c.alive for c in self.features.cores),
+                "latest_wall": latest}
+
     def tracks_summary(self) -> dict:
         """Every wall and core track of the session (JSON-ready)."""
         with self._lock:
@@ -433,7 +445,8 @@ class DecisionLoop:
                     "drift": {"velocity_nm_per_s": [float(v[0]), float(v[1])],
                               "sigma_v_nm_per_s": float(sv), "pairs": self.model.n_pairs,
                               "ambiguous": self.tracker.n_ambiguous},
-                    "proposals": self.planner.status(), "auto_accept": self.cfg.auto_accept}
+                    "proposals": self.planner.status(), "auto_accept": self.cfg.auto_accept,
+                    "tracks": self._tracks_status()}
 
     def snapshot_tables(self) -> tuple[tuple, tuple]:
         """``(proposals, flags)`` for the display: open first, then the latest decided.

@@ -100,6 +100,8 @@ def render_status(snap: Snapshot):
         grid.add_row("", f"mean displacement {_pm(last.mean_displacement_pm)}   "
                          f"analysis {_seconds(last.analyze_s)}   "
                          f"latency {_seconds(last.latency_s)}")
+        for label, line in physics_rows(last.physics, (snap.decisions or {}).get("tracks")):
+            grid.add_row(label, line)
 
     has_decisions = bool(snap.proposals or snap.flags)
     if snap.decisions:
@@ -129,6 +131,38 @@ def render_status(snap: Snapshot):
     if snap.flags:
         parts.append(flags_table(snap.flags, limit=_MAX_FLAGS))
     return Group(*parts)
+
+
+def _pm_sigma(v, s, unit="pm", fmt=".0f") -> str:
+    if v is None:
+        return "-"
+    return f"{v:{fmt}}" + ("" if s is None else f" ± {s:{fmt}}") + f" {unit}"
+
+
+def physics_rows(physics: dict | None, tracks: dict | None) -> list[tuple[str, str]]:
+    """Rows ``wall`` (width, energy, roughness exponent) and ``track`` (velocity).
+
+    ``physics`` is :func:`livequant.daemon.status.wall_physics_brief` of the latest frame,
+    ``tracks`` the decision loop's track status (``latest_wall``); rows with nothing to say
+    are left out.
+    """
+    parts = []
+    if physics:
+        parts.append(f"w {_pm_sigma(physics.get('width_pm'), physics.get('sigma_width_pm'))}")
+        if physics.get("energy_mJ_per_m2") is not None:
+            e = _pm_sigma(physics["energy_mJ_per_m2"], physics.get("sigma_energy_mJ_per_m2"),
+                          "mJ/m²")
+            parts.append(f"E {e}")
+        if physics.get("zeta") is not None:
+            z = _pm_sigma(physics["zeta"], physics.get("sigma_zeta"), "", ".2f").rstrip()
+            parts.append(f"ζ {z}")
+    rows = [("wall", "   ".join(parts))] if parts else []
+    w = (tracks or {}).get("latest_wall") or {}
+    if w.get("velocity_nm_per_s") is not None:
+        v, sv = 1000.0 * w["velocity_nm_per_s"], 1000.0 * (w.get("sigma_velocity_nm_per_s") or 0)
+        rows.append(("track", f"{w.get('track_id')}: v {v:.1f} ± {sv:.1f} pm/s along its "
+                              f"normal, {w.get('n')} frames"))
+    return rows
 
 
 def _decisions_line(d: dict) -> Text:
