@@ -27,6 +27,7 @@ from livequant.report.data import (FrameData, SessionData, column_crlb_pm, fmt_t
                                    region_corners_px, stage_region_corners_nm)
 from livequant.report.maps import cell_grid, wall_profile, winding_map
 from livequant.report.page import SAFETY_CAUTION, FigureRef, Section, Table, render_page
+from livequant.report.physics import physics_sections
 
 __all__ = ["build_report", "DEFAULT_MAX_FRAMES", "DEFAULT_HISTOGRAM_FRAMES"]
 
@@ -148,6 +149,7 @@ def build_report(session_dir: str | Path, *, out_dir: str | Path | None = None,
     sections.append(_histogram_section(session, figs, histogram_frames,
                                        loaded={fd.frame_id: fd.cells for fd in frame_data}))
     sections.append(_fit_quality_section(frame_data, figs, gain))
+    sections += physics_sections(session, summaries, figs, t0)
     sections.append(_throughput_section(session, figs, t0))
     if notes:
         sections.append(Section("notes", "Notes", paragraphs=notes))
