@@ -26,8 +26,10 @@ Conventions and choices
   over independent lines when four or more are given (resampling whole
   lines keeps every correlation inside a line), otherwise parametric
   (lines of the same length synthesised with the fitted zeta and amplitude
-  plus the measured noise, refitted; the basic-bootstrap interval then also
-  corrects the finite-length bias).
+  plus the measured noise, refitted; the interval is their spread about its
+  median placed at the estimate).  Measured coverage of the nominal 68 %
+  interval: 0.62 for single detrended 40-row random walks, 0.67 for 128-row
+  ones (100 and 60 trials; docs/wall-physics.md).
 """
 
 from __future__ import annotations
@@ -213,8 +215,19 @@ def _fit_zeta(lag, b, l_min, l_max):
     return slope / 2.0, float(np.exp(icpt))
 
 
+def _detrend(u):
+    """``u`` minus its least-squares straight line (over the finite rows)."""
+    u = np.asarray(u, float)
+    z = np.arange(u.size)
+    ok = np.isfinite(u)
+    if ok.sum() < 2:
+        return u
+    return u - np.polyval(np.polyfit(z[ok], u[ok], 1), z)
+
+
 def fit_roughness(lines, sigmas=None, *, l_min: int = 1, l_max: int | None = None,
-                  n_boot: int = 200, ci_level: float = 0.68, seed: int = 0) -> WallRoughness:
+                  n_boot: int = 200, ci_level: float = 0.68, seed: int = 0,
+                  detrend: bool = False) -> WallRoughness:
     """Roughness exponent ``zeta`` from ``B(L) ~ L^(2 zeta)`` with a bootstrap CI.
 
     Parameters
@@ -232,6 +245,14 @@ def fit_roughness(lines, sigmas=None, *, l_min: int = 1, l_max: int | None = Non
         Central coverage of ``[ci_low, ci_high]``.
     seed : int
         Seed of the bootstrap's local generator (results are reproducible).
+    detrend : bool
+        Remove each line's straight-line fit first (and from every simulated
+        line of the parametric bootstrap, which then corrects the bias this
+        causes).  Use it for positions measured from a fitted straight wall,
+        whose tilt is already gone: removing a line's tilt lowers B at large
+        L and with it zeta (by ~0.1 for 40 rows of a random walk); with the
+        parametric bootstrap that shift is measured on simulated lines and
+        added back to the reported ``zeta``.
 
     Returns
     -------
@@ -245,6 +266,8 @@ def fit_roughness(lines, sigmas=None, *, l_min: int = 1, l_max: int | None = Non
     if isinstance(lines, np.ndarray) and lines.ndim == 1:
         lines = [lines]
     lines = [np.asarray(u, float) for u in lines]
+    if detrend:
+        lines = [_detrend(u) for u in lines]
     if sigmas is None:
         sigmas = [np.zeros_like(u) for u in lines]
     elif isinstance(sigmas, np.ndarray) and sigmas.ndim == 1:
@@ -283,23 +306,44 @@ def fit_roughness(lines, sigmas=None, *, l_min: int = 1, l_max: int | None = Non
         boots = boots[np.isfinite(boots)]
         lo, hi = np.quantile(boots, [(1 - ci_level) / 2, (1 + ci_level) / 2])
     else:
-        method = "parametric bootstrap (synthetic self-affine lines of the fitted zeta)"
+        method = ("parametric bootstrap (synthetic self-affine lines of the fitted zeta"
+                  + (", detrended like the data)" if detrend else ")"))
+        def simulate(z_sim):
+            # B(1) of the simulated lines matches the data's (amplitude of the fit at L = 1).
+            raw, flat = [], []
+            for _ in range(n_boot):
+                sims = []
+                for u, s in zip(lines, sigmas):
+                    n = u.size
+                    # Synthesise 4n points and keep n: no periodicity of the FFT line.
+                    line = self_affine_line(4 * n, z_sim, rng=rng, amplitude=np.sqrt(amp))[:n]
+                    noise = np.where(np.isfinite(s), s, 0.0) * rng.normal(size=n)
+                    sims.append(np.where(np.isfinite(u), line + noise, np.nan))
+                _, bb, _ = displacement_correlation(sims, max_lag=l_max)
+                raw.append(_fit_zeta(lag, bb - floor, l_min, l_max)[0])
+                if detrend:
+                    _, bb, _ = displacement_correlation([_detrend(v) for v in sims],
+                                                        max_lag=l_max)
+                    flat.append(_fit_zeta(lag, bb - floor, l_min, l_max)[0])
+            raw = np.array(raw)
+            flat = np.array(flat) if detrend else raw
+            keep = np.isfinite(raw) & np.isfinite(flat)
+            return raw[keep], flat[keep]
+
+        # The interval is the simulated spread of the estimate about its median, placed at
+        # the estimate (a percentile interval; the estimator's own small bias, which depends
+        # on the line model, is not corrected).  Removing the tilt (detrend) lowers zeta
+        # systematically; that shift is measured on the same simulated lines and undone.
         z_sim = float(np.clip(zeta, 0.05, 0.95))
-        for _ in range(n_boot):
-            sims = []
-            for u, s in zip(lines, sigmas):
-                n = u.size
-                # Synthesise on 4n points and keep n: removes the periodicity of the FFT line.
-                line = self_affine_line(4 * n, z_sim, rng=rng, amplitude=np.sqrt(amp))[:n]
-                noise = np.where(np.isfinite(s), s, 0.0) * rng.normal(size=n)
-                sims.append(np.where(np.isfinite(u), line + noise, np.nan))
-            _, bb, _ = displacement_correlation(sims, max_lag=l_max)
-            boots.append(_fit_zeta(lag, bb - floor, l_min, l_max)[0])
-        boots = np.array(boots)
-        boots = boots[np.isfinite(boots)]
-        # Basic bootstrap: reflect the simulated spread (and bias) about the estimate.
-        qlo, qhi = np.quantile(boots, [(1 - ci_level) / 2, (1 + ci_level) / 2])
-        lo, hi = zeta - (qhi - z_sim), zeta - (qlo - z_sim)
+        raw, boots = simulate(z_sim)
+        if detrend:
+            shift = float(np.median(boots) - np.median(raw))
+            z_sim = float(np.clip(zeta - shift, 0.05, 0.95))
+            raw, boots = simulate(z_sim)
+            shift = float(np.median(boots) - np.median(raw))
+            zeta = zeta - shift
+        qlo, qmed, qhi = np.quantile(boots, [(1 - ci_level) / 2, 0.5, (1 + ci_level) / 2])
+        lo, hi = zeta - (qmed - qlo), zeta + (qhi - qmed)
     return WallRoughness(zeta=float(zeta), sigma_zeta=float(np.std(boots)) if boots.size else
                          np.nan, ci_low=float(lo), ci_high=float(hi), ci_level=ci_level,
                          l_min=int(l_min), l_max=int(l_max), amplitude_pm2=float(amp),

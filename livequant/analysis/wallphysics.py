@@ -128,7 +128,8 @@ def wall_physics(cells_arrays: dict, wall: dict | None, *, potential: LandauPote
         out["roughness_reason"] = f"{n_ok} rows with a wall position (< {min_rows})"
     else:
         try:
-            out["roughness"] = fit_roughness(u, su, n_boot=n_boot).to_json()
+            # u is measured from the fitted straight wall: its tilt is gone, so detrend.
+            out["roughness"] = fit_roughness(u, su, n_boot=n_boot, detrend=True).to_json()
         except ValueError as exc:
             out["roughness"] = None
             out["roughness_reason"] = str(exc)
