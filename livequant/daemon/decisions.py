@@ -284,7 +284,8 @@ class DecisionLoop:
                 "event": "tracks", "frame_id": view.frame_id,
                 "walls": [{k: w[k] for k in ("track_id", "n", "displacement_nm",
                                              "sigma_displacement_nm", "velocity_nm_per_s",
-                                             "sigma_velocity_nm_per_s")} for w in walls],
+                                             "sigma_velocity_nm_per_s", "means")}
+                          for w in walls],
                 "appeared": [c["track_id"] for c in tracks["appeared"]],
                 "vanished": [c["track_id"] for c in tracks["vanished"]]})
 
@@ -298,7 +299,7 @@ class DecisionLoop:
         for w in self.latest_tracks.get("walls") or ():
             if w.get("velocity_nm_per_s") is not None:
                 latest = {k: w.get(k) for k in ("track_id", "n", "velocity_nm_per_s",
-                                                "sigma_velocity_nm_per_s")}
+                                                "sigma_velocity_nm_per_s", "means")}
         return {"walls": len(self.features.walls),
                 "cores_alive": sum(c.alive for c in self.features.cores),
                 "cores_vanished": sum(not c.alive for c in self.features.cores),

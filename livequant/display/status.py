@@ -162,6 +162,14 @@ def physics_rows(physics: dict | None, tracks: dict | None) -> list[tuple[str, s
         v, sv = 1000.0 * w["velocity_nm_per_s"], 1000.0 * (w.get("sigma_velocity_nm_per_s") or 0)
         rows.append(("track", f"{w.get('track_id')}: v {v:.1f} ± {sv:.1f} pm/s along its "
                               f"normal, {w.get('n')} frames"))
+    means = w.get("means") or {}
+    mw, me = means.get("width_nm"), means.get("energy_J_per_m2")
+    if mw and mw.get("n", 0) > 1:
+        text = f"mean w {_pm_sigma(1000 * mw['mean'], 1000 * mw['sigma_scaled'])}"
+        if me and me.get("n", 0) > 1:
+            text += f", E {_pm_sigma(1000 * me['mean'], 1000 * me['sigma_scaled'], 'mJ/m²')}"
+        ok = mw.get("consistent") and (not me or me.get("consistent", True))
+        rows.append(("", text + ("  (χ² consistent)" if ok else "  (χ²: frames disagree)")))
     return rows
 
 

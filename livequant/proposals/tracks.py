@@ -36,6 +36,8 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
+from livequant.analysis.combine import weighted_mean
+
 __all__ = ["WallObservation", "CoreObservation", "WallTrack", "CoreTrack", "FeatureTracker",
            "merge_cores", "inside_region", "frame_features"]
 
@@ -63,6 +65,8 @@ class WallObservation:
     energy_J_per_m2: float | None = None
     stage_point_nm: tuple[float, float] | None = None
     sigma_fit_nm: float | None = None
+    sigma_width_nm: float | None = None
+    sigma_energy_J_per_m2: float | None = None
 
     def redrifted(self, drift_nm, sigma_drift_nm: float) -> "WallObservation":
         """The same observation with a better drift estimate (needs ``stage_point_nm``)."""
@@ -140,9 +144,26 @@ class WallTrack:
         v = self.velocity()["velocity_nm_per_s"]
         return float(s[-1] + (v or 0.0) * (t_s - t[-1]))
 
+    def session_means(self) -> dict:
+        """Weighted means of the width and wall energy over the track's frames, with the
+        chi-square consistency test (:func:`livequant.analysis.combine.weighted_mean`)."""
+        out = {}
+        for key, attr, sattr in (("width_nm", "width_nm", "sigma_width_nm"),
+                                 ("energy_J_per_m2", "energy_J_per_m2",
+                                  "sigma_energy_J_per_m2")):
+            v = [getattr(o, attr) for o in self.observations]
+            sv = [getattr(o, sattr) for o in self.observations]
+            pairs = [(a, b) for a, b in zip(v, sv) if a is not None and b is not None]
+            if pairs:
+                try:
+                    out[key] = weighted_mean([a for a, _ in pairs], [b for _, b in pairs]).to_json()
+                except ValueError:
+                    pass
+        return out
+
     def to_json(self) -> dict:
         t, s, sig = self.positions()
-        return {"track_id": self.track_id, "kind": "wall",
+        return {"track_id": self.track_id, "kind": "wall", "means": self.session_means(),
                 "normal": [float(v) for v in self.normal],
                 "origin_nm": [float(v) for v in self.origin],
                 "frames": [o.frame_id for o in self.observations],
@@ -424,7 +445,10 @@ def frame_features(view, geometry, t_s: float, drift_nm, sigma_drift_nm: float, 
                                      sigma, width_nm=(w.get("width") or 0) / 1000.0 or None,
                                      energy_J_per_m2=phys.get("energy_J_per_m2"),
                                      stage_point_nm=tuple(float(v) for v in stage),
-                                     sigma_fit_nm=w["sigma_x0"] / 1000.0))
+                                     sigma_fit_nm=w["sigma_x0"] / 1000.0,
+                                     sigma_width_nm=(w.get("sigma_width") or 0) / 1000.0
+                                     or None,
+                                     sigma_energy_J_per_m2=phys.get("sigma_energy_J_per_m2")))
     if cores_px is None:
         cores = ((cells.get("topology") or {}).get("cores")) or []
         cores_px = [(c["x_pm"] / px_pm, c["y_pm"] / px_pm, c["winding"]) for c in cores

@@ -27,6 +27,13 @@ def test_physics_row_reads_the_summary_and_the_track():
         assert part in rows["wall"], (part, rows)
     assert rows["track"] == "W1: v -20.2 ± 0.1 pm/s along its normal, 7 frames"
     assert physics_rows(None, None) == []
+    tracks["latest_wall"]["means"] = {
+        "width_nm": {"n": 7, "mean": 0.5172, "sigma": 0.0075, "sigma_scaled": 0.0075,
+                     "consistent": True},
+        "energy_J_per_m2": {"n": 7, "mean": 0.1081, "sigma": 0.0016, "sigma_scaled": 0.0016,
+                            "consistent": True}}
+    rows = physics_rows(last.physics, tracks)
+    assert rows[-1] == ("", "mean w 517 ± 8 pm, E 108 ± 2 mJ/m²  (χ² consistent)")
 
 
 def test_physics_row_fits_the_80_column_panel():

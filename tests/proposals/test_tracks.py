@@ -94,3 +94,19 @@ def test_inside_region_rotated():
     r = {**REGION, "width_nm": 10.0, "height_nm": 2.0, "rotation_deg": 90.0}
     assert inside_region([0.0, 4.0], r)[0] and not inside_region([4.0, 0.0], r)[0]
     assert not inside_region([0.0, 4.5], r, margin_nm=1.0)[0]
+
+
+def test_session_means_of_a_track_with_chi2():
+    # Widths 0.50 +- 0.01 nm in five frames, then one at 0.60: the weighted mean of the first
+    # five is consistent, adding the sixth is not (chi-square test, combine.weighted_mean).
+    from dataclasses import replace
+    tr = FeatureTracker()
+    for k, w in enumerate([0.50, 0.51, 0.49, 0.50, 0.505]):
+        tr.observe(f"f{k}", k, REGION, walls=[replace(_wall(f"f{k}", k, 1.0), width_nm=w,
+                                                      sigma_width_nm=0.01)])
+    m = tr.walls[0].session_means()["width_nm"]
+    assert m["n"] == 5 and m["consistent"] and m["mean"] == pytest.approx(0.501, abs=0.002)
+    tr.observe("f5", 5, REGION, walls=[replace(_wall("f5", 5, 1.0), width_nm=0.60,
+                                               sigma_width_nm=0.01)])
+    m = tr.walls[0].to_json()["means"]["width_nm"]
+    assert m["n"] == 6 and not m["consistent"] and m["sigma_scaled"] > 2 * m["sigma"]
