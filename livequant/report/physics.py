@@ -62,8 +62,9 @@ def wall_tracks_from_summaries(summaries: dict[str, dict], drift_rows: list[dict
     ----------
     summaries : dict of frame id -> summary.json content
     drift_rows : list of dict
-        The ledger's drift rows (``frame_id``, ``dx_nm``, ``dy_nm``, ``sigma_nm``);
-        frames without one are placed with zero drift (said in the notes).
+        The ledger's drift rows (``frame_id``, ``t``, ``dx_nm``, ``dy_nm``, ``sigma_nm``);
+        a frame without one gets the drift interpolated in time between the measured
+        frames (said in the notes).
 
     Returns
     -------
@@ -84,6 +85,12 @@ def wall_tracks_from_summaries(summaries: dict[str, dict], drift_rows: list[dict
         if start is None:
             continue
         items.append((start + dur / 2, fid, s, meta, shape))
+    rows_t = sorted((r["t"], r["dx_nm"], r["dy_nm"], r["sigma_nm"] or 0.0) for r in drift_rows
+                    if r.get("t") is not None and r.get("dx_nm") is not None)
+    known_t = np.array([r[0] for r in rows_t])
+    known_x = np.array([r[1] for r in rows_t])
+    known_y = np.array([r[2] for r in rows_t])
+    known_s = np.array([r[3] for r in rows_t])
     no_drift = 0
     for t_mid, fid, s, meta, shape in sorted(items, key=lambda x: x[0]):
         geom = FrameGeometry(center_x_nm=float(meta.get("stage_x_nm") or 0.0),
@@ -92,7 +99,13 @@ def wall_tracks_from_summaries(summaries: dict[str, dict], drift_rows: list[dict
                              rotation_deg=float(meta.get("scan_rotation_deg") or 0.0),
                              shape=tuple(shape))
         row = drift.get(fid)
-        if row is None:
+        if row is None and len(known_t) >= 2:
+            # Not registered itself (no overlap with a kept frame): the drift between the
+            # measured frames, interpolated in time (held constant beyond them).
+            no_drift += 1
+            d = np.array([np.interp(t_mid, known_t, known_x), np.interp(t_mid, known_t, known_y)])
+            sd = float(np.max(known_s)) if len(known_s) else 0.0
+        elif row is None:
             no_drift += 1
             d, sd = np.zeros(2), 0.0
         else:
@@ -106,8 +119,9 @@ def wall_tracks_from_summaries(summaries: dict[str, dict], drift_rows: list[dict
             frame_track[fid] = tid
     notes = []
     if no_drift:
-        notes.append(f"{no_drift} frame(s) with a wall had no measured drift: their wall "
-                     "positions are stage positions (no drift correction)")
+        notes.append(f"{no_drift} frame(s) with a wall had no drift measurement of their "
+                     "own: their drift is interpolated between measured frames (or zero when "
+                     "fewer than two were measured)")
     return tracker, frame_track, notes
 
 

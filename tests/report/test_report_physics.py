@@ -45,7 +45,8 @@ def _summaries(rng):
                                "energy_J_per_m2": 0.08, "sigma_energy_J_per_m2": 0.002},
                         "roughness": None, "roughness_reason": "test",
                         "line": {"u_pm": u.tolist(), "sigma_u_pm": [1.0] * 40}}}
-        drift.append({"frame_id": fid, "dx_nm": d[0], "dy_nm": d[1], "sigma_nm": 0.01})
+        drift.append({"frame_id": fid, "t": (T0 + timedelta(seconds=t)).timestamp(),
+                      "dx_nm": d[0], "dy_nm": d[1], "sigma_nm": 0.01})
     return out, drift
 
 
@@ -76,3 +77,12 @@ def test_sections_tables_and_figures(tmp_path):
     html = render_page("t", [], secs)
     assert "Paruch" in html and "gl-session" in html
     assert physics_sections(session, {}, figs, None) == []
+
+
+def test_a_frame_without_its_own_drift_gets_it_interpolated():
+    summaries, drift = _summaries(np.random.default_rng(4))
+    drift = [r for r in drift if r["frame_id"] != "f3"]
+    tracker, _, notes = wall_tracks_from_summaries(summaries, drift)
+    assert len(tracker.walls) == 1 and "interpolated" in notes[0]
+    v = tracker.walls[0].velocity()
+    assert abs(v["velocity_nm_per_s"] - 0.02) <= 2 * v["sigma_velocity_nm_per_s"]
