@@ -27,6 +27,7 @@ __all__ = [
     "DEFAULT_TOML",
     "MATERIALS_TOML",
     "Material",
+    "LandauCoefficients",
     "load_materials",
     "check_materials",
 ]
@@ -126,6 +127,15 @@ class ScanDriftSettings(_Model):
     min_drift_pairs: int = Field(default=2, ge=1)
 
 
+class PhysicsSettings(_Model):
+    """Wall physics per frame (livequant.analysis.wallphysics): G-L numbers and roughness."""
+
+    enabled: bool = True
+    temperature_K: float = Field(default=298.0, gt=0, le=2000)
+    roughness_min_rows: int = Field(default=12, ge=4)
+    roughness_bootstrap: int = Field(default=100, ge=10, le=10_000)
+
+
 class AnalysisSettings(_Model):
     lattice: LatticeSettings = LatticeSettings()
     detection: DetectionSettings = DetectionSettings()
@@ -136,6 +146,7 @@ class AnalysisSettings(_Model):
     scan_drift: ScanDriftSettings = ScanDriftSettings()
     material: str | None = None
     materials_file: str | None = None
+    physics: PhysicsSettings = PhysicsSettings()
 
 
 class DaemonSettings(_Model):
@@ -219,10 +230,26 @@ class AnomalyRuleSettings(_Model):
     max_flags: int = Field(default=10, ge=1)
 
 
+class FeatureTrackSettings(_Model):
+    """Built-in rule ``feature_tracks`` and the tracker behind it (livequant.proposals.tracks)."""
+
+    max_wall_shift_nm: float = Field(default=0.5, gt=0)
+    min_significance: float = Field(default=3.0, ge=0)
+    flag_cores: bool = True
+    region_nm: float = Field(default=3.0, gt=0)
+    match_distance_nm: float = Field(default=3.0, gt=0)
+    max_angle_deg: float = Field(default=20.0, gt=0, le=90)
+    core_merge_nm: float = Field(default=1.5, gt=0)
+    core_match_nm: float = Field(default=2.0, gt=0)
+    edge_margin_nm: float = Field(default=1.0, ge=0)
+    vanish_frames: int = Field(default=2, ge=1)
+
+
 class RulesSettings(_Model):
     """Decision rules (livequant.rules): which load, from where, and their thresholds."""
 
-    enabled: list[str] = ["domain_walls", "vortex_cores", "interfaces", "anomalies"]
+    enabled: list[str] = ["domain_walls", "vortex_cores", "interfaces", "anomalies",
+                          "feature_tracks"]
     blocked: list[str] = []
     plugin_dirs: list[str] = []
     max_consecutive_failures: int = Field(default=5, ge=1, le=100_000)
@@ -232,6 +259,7 @@ class RulesSettings(_Model):
     vortex_cores: VortexRuleSettings = VortexRuleSettings()
     interfaces: InterfaceRuleSettings = InterfaceRuleSettings()
     anomalies: AnomalyRuleSettings = AnomalyRuleSettings()
+    feature_tracks: FeatureTrackSettings = FeatureTrackSettings()
     options: dict[str, dict[str, Any]] = {}
 class ProposalSettings(_Model):
     """Flags -> proposed scan regions (livequant.proposals)."""
@@ -392,6 +420,22 @@ def validate_settings(tree: Mapping) -> Settings:
 # ---------------------------------------------------------------- materials
 
 
+class LandauCoefficients(_Model):
+    """Landau-Devonshire coefficients of a material (``[NAME.landau]``), Haun's form.
+
+    ``F = alpha1 P^2 + alpha11 P^4 + alpha111 P^6`` with ``alpha1 = alpha1_slope_m_per_F_K
+    * (T - t0_K)``, SI units; ``livequant.analysis.landau`` converts them to its own
+    convention (``alpha = 2 alpha1, beta = 4 alpha11, gamma = 6 alpha111``).
+    """
+
+    alpha1_slope_m_per_F_K: float = Field(gt=0)
+    t0_K: float = Field(gt=0)
+    alpha11: float
+    alpha111: float = 0.0
+    source: str
+    status: str
+
+
 class Material(_Model):
     """One entry of ``config/materials.toml``."""
 
@@ -407,6 +451,7 @@ class Material(_Model):
     p_sign_b_vs_a: Literal[-1, 1] | None = None
     source: str = Field(min_length=1)
     status: str
+    landau: LandauCoefficients | None = None
 
     @property
     def cell_volume_pm3(self) -> float:

@@ -208,6 +208,27 @@ def _strain_reference(cells_cfg, shape):
     return mask
 
 
+def _wall_physics(cells, material, cfg) -> dict:
+    """The ``physics`` block of the summary (analysis.wallphysics) for the frame's wall."""
+    from livequant.analysis.landau import LandauPotential
+    from livequant.analysis.wallphysics import wall_physics
+
+    potential, note = None, ""
+    coeffs = getattr(material, "landau", None)
+    if coeffs is not None:
+        potential = LandauPotential.from_haun(
+            coeffs.alpha1_slope_m_per_F_K * (cfg.temperature_K - coeffs.t0_K), coeffs.alpha11,
+            coeffs.alpha111)
+        note = (f"{material.name} at {cfg.temperature_K:g} K: {coeffs.source} "
+                f"[{coeffs.status}]")
+    v = cells.values
+    arrays = {"x_pm": cells.x_pm, "y_pm": cells.y_pm, "i": cells.i, "j": cells.j,
+              **{k: v[k] for k in ("dx_pm", "dy_pm", "sigma_dx_pm", "sigma_dy_pm")}}
+    return wall_physics(arrays, cells.info.get("wall"), potential=potential,
+                        material_note=note, min_rows=cfg.roughness_min_rows,
+                        n_boot=cfg.roughness_bootstrap)
+
+
 def threads_per_worker(n_workers: int, n_cores: int | None = None) -> int:
     """Compute threads each of `n_workers` analysis processes should use so that
     together they do not oversubscribe the cores: ``max(1, cores // workers)``.
@@ -380,8 +401,12 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
     except ValueError as exc:  # e.g. reference="material" without a material: say so per frame
         cells_message = f"no cell descriptors: {exc}"
     timings["cells"] = time.perf_counter() - t0
-    timings["total"] = float(sum(timings.values()))
     extra = {} if drift_info is None else {"scan_drift_correction": drift_info}
+    if cells is not None and cfg.physics.enabled:
+        t0 = time.perf_counter()
+        extra["physics"] = _wall_physics(cells, material, cfg.physics)
+        timings["physics"] = time.perf_counter() - t0
+    timings["total"] = float(sum(timings.values()))
     return FrameResult(**base, status=STATUS_OK, lattice=lattice, columns=columns, cells=cells,
                        calibration=calibration, timings_s=timings, extra=extra,
                        message="; ".join(m for m in (sites.message, columns.message,

@@ -490,6 +490,9 @@ class ScanEngine:
         t_px = dwell * 1e-6
         t_line = cols * t_px + dist.flyback_s
         t0 = self.time_s
+        # A time-varying specimen (moving walls, annihilating cores) is held at its state
+        # at the middle of the frame.
+        self.specimen.set_time(t0 + rows * t_line / 2)
 
         theta = math.radians(scan_rotation_deg)
         e_f = np.array([math.cos(theta), math.sin(theta)])
@@ -671,6 +674,7 @@ class ScanEngine:
             "probe_sigma_pm": self.instrument.probe.sigma_pm,
         }
         meta["specimen_center_nm"] = centre_xy.tolist()
+        meta["specimen_time_s"] = self.specimen.time_s
         return FrameTruth(arrays=arrays, meta=meta)
 
 

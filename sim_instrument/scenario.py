@@ -104,6 +104,16 @@ class WallSpec(_Strict):
     angle_deg: float
     half_width_nm: float = Field(gt=0, le=50)
     rotation_deg: Literal[90, -90] = 90
+    #: A 180-degree wall may move: its point is ``point_nm + velocity_nm_per_s * t``
+    #: (t = the simulated session clock at the middle of each frame).
+    velocity_nm_per_s: Pair = (0.0, 0.0)
+
+    @model_validator(mode="after")
+    def _only_180_walls_move(self):
+        if self.kind != "180" and any(self.velocity_nm_per_s):
+            raise ValueError("only 180-degree walls may move (`velocity_nm_per_s`): a 90-degree "
+                             "wall carries a lattice kink that is built once")
+        return self
 
 
 class VortexPairSpec(_Strict):
@@ -112,6 +122,9 @@ class VortexPairSpec(_Strict):
     vortex_nm: Pair
     antivortex_nm: Pair
     core_nm: float = Field(default=1.0, gt=0, le=20)
+    #: The pair annihilates (both cores vanish, the domain is uniform) from this
+    #: simulated session time on, seconds; None: it stays.
+    annihilate_at_s: float | None = Field(default=None, ge=0)
 
 
 class DefectSpec(_Strict):

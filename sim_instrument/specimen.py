@@ -211,9 +211,29 @@ class Specimen:
         self.a_ref_nm = ref.a_pm / 1000.0
         w, h = scenario.size_nm
         self.bounds_nm = (-w / 2, w / 2, -h / 2, h / 2)
+        self.time_s = 0.0
         self.layers = self._build_layers()
         self.kinks = self._build_kinks()
         self._vacancy_keys = self._build_vacancies()
+
+    def set_time(self, t_s: float) -> None:
+        """Move the specimen's time-varying features to session time `t_s` (seconds).
+
+        180-degree walls with a ``velocity_nm_per_s`` move; vortex pairs with an
+        ``annihilate_at_s`` vanish from then on.  The scan engine calls this with
+        the middle of each frame (the state is held for the whole frame).
+        """
+        if not math.isfinite(t_s):
+            raise ValueError(f"`t_s` must be finite, got {t_s!r}")
+        self.time_s = float(t_s)
+
+    def _wall_point(self, wall) -> np.ndarray:
+        return np.asarray(wall.point_nm, float) + self.time_s * np.asarray(wall.velocity_nm_per_s,
+                                                                           float)
+
+    def _active_pairs(self):
+        return [p for p in self.scenario.vortex_pairs
+                if p.annihilate_at_s is None or self.time_s < p.annihilate_at_s]
 
     # ------------------------------------------------------------ building
 
@@ -364,14 +384,14 @@ class Specimen:
                                            math.sin(layer.direction_rad)))
         walls = self.scenario.walls if upto_wall is None else self.scenario.walls[:upto_wall]
         for wall in walls:
-            s = (r_nm - np.asarray(wall.point_nm, float)) @ self._wall_normal(wall)
+            s = (r_nm - self._wall_point(wall)) @ self._wall_normal(wall)
             if wall.kind == "180":
                 z = z * (-np.tanh(s / wall.half_width_nm))
             else:
                 f = 0.5 * (1 + np.tanh(s / wall.half_width_nm))
                 z = z * ((1 - f) + f * np.exp(1j * math.radians(wall.rotation_deg)))
         if upto_wall is None:
-            for pair in self.scenario.vortex_pairs:
+            for pair in self._active_pairs():
                 d1 = r_nm - np.asarray(pair.vortex_nm, float)
                 d2 = r_nm - np.asarray(pair.antivortex_nm, float)
                 e1 = d1[:, 0] + 1j * d1[:, 1]
@@ -537,18 +557,22 @@ class Specimen:
         """The domain walls: kind, a point on the (displaced) wall and its direction."""
         out = []
         for k, wall in enumerate(self.scenario.walls):
-            p = np.asarray(wall.point_nm, float)
+            p = self._wall_point(wall)
             p_disp = p + self.displacement_nm(p[None, :])[0]
             t = math.radians(wall.angle_deg)
             out.append({"index": k, "kind": wall.kind, "point_nm": p_disp.tolist(),
                         "direction": [math.cos(t), math.sin(t)],
-                        "half_width_nm": wall.half_width_nm})
+                        "half_width_nm": wall.half_width_nm,
+                        "velocity_nm_per_s": list(wall.velocity_nm_per_s),
+                        "time_s": self.time_s})
         return out
 
     def vortex_truth(self) -> list[dict]:
         """Vortex and antivortex cores (displaced positions) with their winding numbers."""
         out = []
         for k, pair in enumerate(self.scenario.vortex_pairs):
+            if pair.annihilate_at_s is not None and self.time_s >= pair.annihilate_at_s:
+                continue  # annihilated by now
             for key, winding in (("vortex_nm", 1), ("antivortex_nm", -1)):
                 p = np.asarray(getattr(pair, key), float)
                 p_disp = p + self.displacement_nm(p[None, :])[0]

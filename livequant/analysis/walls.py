@@ -84,7 +84,12 @@ class WallFit:
     direction fields are set by :func:`find_wall` only: ``axis_deg`` is the
     polar axis whose component reverses, ``normal_deg`` (with
     ``sigma_normal_deg``) the wall normal, both ``atan2(y, x)``;
-    ``x_pm, y_pm`` a point on the wall.
+    ``x_pm, y_pm`` a point on the wall.  ``asymmetry`` (with
+    ``sigma_asymmetry``) is ``|P+| - |P-|`` of the two plateaus, from a refit
+    with an offset, ``p = c + P0 tanh(...)``, so ``|P+| - |P-| = 2c``: a
+    non-zero value hints at a built-in field along the polar axis.  When the
+    offset model fits better by more than 3 sigma its P0 (the mean plateau
+    magnitude), x0, w and angle are the ones reported.
     """
 
     x0: float
@@ -101,6 +106,8 @@ class WallFit:
     sigma_normal_deg: float | None = None
     x_pm: float | None = None
     y_pm: float | None = None
+    asymmetry: float | None = None
+    sigma_asymmetry: float | None = None
 
     @property
     def correlation_length(self) -> float:
@@ -346,19 +353,65 @@ def find_wall(positions_xy, d_xy, sigma_d_xy, *, noise: DisplacementNoise | None
         return None
     jac = _wall_jacobian(r, centre, popt)
     resid = p - _wall_model(r, centre)(None, *popt)
-    chi2 = float(np.sum((resid / sp) ** 2) / max(len(p) - 4, 1))
+    chi2_total = float(np.sum((resid / sp) ** 2))
+    dof = max(len(p) - 4, 1)
     if noise is not None:
         sig = _sandwich_sigmas(jac, sp, axis, noise, ok)
     else:
         g = jac / sp[:, None] ** 2
         sig = np.sqrt(np.clip(np.diag(np.linalg.inv(jac.T @ g)), 0, None))
+    asym = sigma_asym = None
+    offset_fit = _offset_fit(r, centre, p, sp, popt, axis, noise, ok, span, theta0)
+    if offset_fit is not None:
+        q, sig5, chi2_5 = offset_fit
+        # Along this axis |P+| - |P-| = |c + |P0|| - ||P0| - c| = 2 c while |c| < |P0|,
+        # whatever the sign of P0; negated below when the axis is flipped.
+        asym, sigma_asym = float(2.0 * q[4]), float(2.0 * sig5[4])
+        # Unequal plateaus bias a symmetric fit: report the offset model when it is better
+        # by more than 3 sigma (chi-square drop > 9 for one parameter, Wilks).
+        if chi2_total - chi2_5 > 9.0:
+            popt, sig, chi2_total, dof = q[:4], sig5[:4], chi2_5, max(len(p) - 5, 1)
+    chi2 = chi2_total / dof
     p0, x0, w, theta = (float(v) for v in popt)
     if p0 < 0:  # describe the same wall with P0 > 0: flip the polar axis
         axis, p0 = -axis, -p0
+        asym = None if asym is None else -asym
     n_vec = np.array([np.cos(theta), np.sin(theta)])
     at = centre + x0 * n_vec
     return WallFit(x0=x0, sigma_x0=float(sig[1]), width=w, sigma_width=float(sig[2]), p0=p0,
                    sigma_p0=float(sig[0]), reduced_chi2=chi2, n_points=int(len(p)),
                    axis_deg=float(np.degrees(np.arctan2(axis[1], axis[0]))),
                    normal_deg=float(np.degrees(theta)), sigma_normal_deg=float(np.degrees(sig[3])),
-                   x_pm=float(at[0]), y_pm=float(at[1]))
+                   x_pm=float(at[0]), y_pm=float(at[1]), asymmetry=asym,
+                   sigma_asymmetry=sigma_asym)
+
+
+def _offset_fit(r, centre, p, sp, popt, axis, noise, keep, span, theta0):
+    """Fit ``c + P0 tanh(...)`` from the 4-parameter solution.
+
+    Returns ``(params, sigmas, chi2_total)`` with params ``(P0, x0, w, theta,
+    c)`` and sigmas as for the wall (sandwich with the shared corners), or
+    None when the refit fails.
+    """
+    model4 = _wall_model(r, centre)
+
+    def model5(_, p0, x0, w, theta, c):
+        return c + model4(None, p0, x0, w, theta)
+
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", OptimizeWarning)
+            q, _ = curve_fit(model5, None, p, p0=[*popt, 0.0], sigma=sp, absolute_sigma=True,
+                             bounds=([-np.inf, -2 * span, 1e-6 * span, theta0 - np.pi / 4, -np.inf],
+                                     [np.inf, 2 * span, 10 * span, theta0 + np.pi / 4, np.inf]),
+                             max_nfev=2000)
+    except (RuntimeError, OptimizeWarning, ValueError):
+        return None
+    jac = np.column_stack([_wall_jacobian(r, centre, q[:4]), np.ones(len(p))])
+    if noise is not None:
+        sig = _sandwich_sigmas(jac, sp, axis, noise, keep)
+    else:
+        g = jac / sp[:, None] ** 2
+        sig = np.sqrt(np.clip(np.diag(np.linalg.inv(jac.T @ g)), 0, None))
+    chi2_total = float(np.sum(((p - model5(None, *q)) / sp) ** 2))
+    return q, sig, chi2_total

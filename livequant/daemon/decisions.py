@@ -14,6 +14,11 @@ State shared between the two threads (drift model, planner, recent flags) is
 guarded by one lock; the ledger and the publisher are thread-safe on their own.
 Any exception inside a step is logged, counted and shown in the status; it
 never reaches the main loop.
+
+Order per frame: drift (the frame's specimen position), feature tracks (walls
+and cores in specimen coordinates, :mod:`livequant.proposals.tracks`; this
+frame's part goes to the rules as ``context.tracks`` and out as a ``status``
+event with ``event: tracks``), rules, flags, visited regions, proposals.
 """
 
 from __future__ import annotations
@@ -24,11 +29,14 @@ import time
 from collections import deque
 from typing import Callable
 
+import numpy as np
+
 from livequant.daemon.briefs import proposal_brief as _proposal_brief
 from livequant.proposals.drift import DriftImage, DriftModel, DriftTracker, frame_times_s
 from livequant.proposals.geometry import FrameGeometry, shift_region
 from livequant.proposals.propose import (CAUTION, Planner, candidate_from_flag,
                                          proposal_from_json, scan_request_fields)
+from livequant.proposals.tracks import FeatureTracker, frame_features
 
 __all__ = ["DecisionLoop", "make_rules"]
 
@@ -97,6 +105,19 @@ class DecisionLoop:
                                     upsample_factor=d.upsample_factor,
                                     ambiguity_ratio=d.ambiguity_ratio)
         self.planner = Planner.from_settings(self.cfg)
+        ft = settings.rules.feature_tracks
+        self.features = FeatureTracker(match_distance_nm=ft.match_distance_nm,
+                                       max_angle_deg=ft.max_angle_deg,
+                                       core_merge_nm=ft.core_merge_nm,
+                                       core_match_nm=ft.core_match_nm,
+                                       edge_margin_nm=ft.edge_margin_nm,
+                                       vanish_frames=ft.vanish_frames)
+        self.latest_tracks: dict = {}
+        # Cores for the tracks come from the loop windings of the vortex rule (robust where
+        # the displacement vanishes at a core), whether or not that rule is enabled.
+        from livequant.rules.builtin.vortex_cores import VortexCoreRule
+
+        self._core_finder = VortexCoreRule(settings.rules.vortex_cores)
         self._lock = threading.RLock()
         self._shown_proposals: tuple | None = None  # display rows; None: read again
         self._next_number = 1
@@ -158,10 +179,14 @@ class DecisionLoop:
             except Exception as exc:  # noqa: BLE001 - a frame without usable geometry
                 self._error(f"{view.frame_id}: geometry: {exc}", exc)
                 return
+            # The rules see this frame's feature tracks, placed with the drift predicted for
+            # it; once the frame is registered they are re-placed with its measured drift.
+            self._step("tracks", self._update_tracks, view, geometry, t_mid)
             flags = self._step("rules", self._run_rules, view) or []
             flag_ids = self._step("flags", self._record_flags, view, geometry, flags) or []
             if self.drift_cfg.enabled:
                 self._step("drift", self._update_drift, view, t_mid)
+                self._step("tracks-drift", self._redrift_tracks, view, t_mid)
             self._step("visited", self._note_visited, view, geometry, t_mid)
             if self.cfg.enabled and flags:
                 self._step("proposals", self._propose, view, geometry, flags, flag_ids, t_mid)
@@ -225,6 +250,66 @@ class DecisionLoop:
         if not used:
             self.warn(f"drift: {view.frame_id} vs {result.ref_frame_id} ambiguous by a lattice "
                       "vector; not used")
+
+    def _update_tracks(self, view, geometry: FrameGeometry, t_mid: float) -> None:
+        """Walls and cores of this frame into the feature tracks (specimen coordinates)."""
+        d, sd = (self.model.position_of(view.frame_id, t_mid) if self.drift_cfg.enabled
+                 else (np.zeros(2), 0.0))
+        cores_px = [(f.evidence["x_px"], f.evidence["y_px"], f.evidence["winding"])
+                    for f in (self._core_finder.livequant_frame_rules(view) or [])]
+        report = frame_features(view, geometry, t_mid, d, sd, cores_px=cores_px)
+        out = self.features.observe(view.frame_id, t_mid,
+                                    shift_region(geometry.footprint(), -np.asarray(d)),
+                                    walls=report["walls"], cores_xy_nm=report["cores_xy_nm"],
+                                    cores_winding=report["cores_winding"], drift_nm=d)
+
+        def at_px(xy_specimen):
+            return geometry.stage_to_px(np.asarray(xy_specimen) + d)
+
+        walls = []
+        for tid, obs in zip(out["walls"], report["walls"]):
+            px = at_px(obs.point_nm)
+            walls.append({**self.features.wall(tid).to_json(), "x_px": float(px[0]),
+                          "y_px": float(px[1])})
+        tracks = {"frame_id": view.frame_id, "t_s": t_mid, "walls": walls}
+        for key in ("appeared", "vanished"):
+            tracks[key] = []
+            for tid in out[key]:
+                c = self.features.core(tid)
+                px = at_px(c.point)
+                tracks[key].append({**c.to_json(), "x_px": float(px[0]), "y_px": float(px[1])})
+        self.context.set_tracks(tracks)
+        self.latest_tracks = tracks
+        if walls or tracks["appeared"] or tracks["vanished"]:
+            self.publisher.publish("status", {
+                "event": "tracks", "frame_id": view.frame_id,
+                "walls": [{k: w[k] for k in ("track_id", "n", "displacement_nm",
+                                             "sigma_displacement_nm", "velocity_nm_per_s",
+                                             "sigma_velocity_nm_per_s", "means")}
+                          for w in walls],
+                "appeared": [c["track_id"] for c in tracks["appeared"]],
+                "vanished": [c["track_id"] for c in tracks["vanished"]]})
+
+    def _redrift_tracks(self, view, t_mid: float) -> None:
+        d, sd = self.model.position_of(view.frame_id, t_mid)
+        self.features.redrift(view.frame_id, d, sd)
+
+    def _tracks_status(self) -> dict:
+        """Counts and the latest observed wall track's velocity (for the display)."""
+        latest = None
+        for w in self.latest_tracks.get("walls") or ():
+            if w.get("velocity_nm_per_s") is not None:
+                latest = {k: w.get(k) for k in ("track_id", "n", "velocity_nm_per_s",
+                                                "sigma_velocity_nm_per_s", "means")}
+        return {"walls": len(self.features.walls),
+                "cores_alive": sum(c.alive for c in self.features.cores),
+                "cores_vanished": sum(not c.alive for c in self.features.cores),
+                "latest_wall": latest}
+
+    def tracks_summary(self) -> dict:
+        """Every wall and core track of the session (JSON-ready)."""
+        with self._lock:
+            return self.features.summary()
 
     def _note_visited(self, view, geometry: FrameGeometry, t_mid: float) -> None:
         """A frame acquired for a request covers its region: no proposal there again."""
@@ -363,7 +448,8 @@ class DecisionLoop:
                               "sigma_v_nm_per_s": float(sv), "pairs": self.model.n_pairs,
                               "ambiguous": self.tracker.n_ambiguous},
                     "proposals": self.planner.status(), "auto_accept": self.cfg.auto_accept,
-                    "beam_current_pa": self.cfg.beam_current_pa}
+                    "beam_current_pa": self.cfg.beam_current_pa,
+                    "tracks": self._tracks_status()}
 
     def snapshot_tables(self) -> tuple[tuple, tuple]:
         """``(proposals, flags)`` for the display: open first, then the latest decided.

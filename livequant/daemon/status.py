@@ -31,6 +31,7 @@ class LastFrame:
     median_sigma_position_pm: float | None = None
     analyze_s: float | None = None
     latency_s: float | None = None
+    physics: dict | None = None   # wall_physics_brief(summary): wall width, energy, zeta
 
 
 @dataclass(frozen=True)
@@ -119,7 +120,25 @@ def last_frame_from_summary(summary: dict, *, latency_s: float | None = None) ->
         median_sigma_position_pm=_num(summary.get("median_sigma_position_pm")),
         analyze_s=_num((summary.get("timings_s") or {}).get("total")),
         latency_s=latency_s,
+        physics=wall_physics_brief(summary),
     )
+
+
+def wall_physics_brief(summary: dict) -> dict | None:
+    """The wall numbers of a frame's ``physics`` block for the display (None: no wall)."""
+    phys = summary.get("physics") or {}
+    wall = phys.get("wall")
+    if not wall:
+        return None
+    gl = phys.get("gl") or {}
+    rough = phys.get("roughness") or {}
+    mj = (lambda v: None if v is None else 1000.0 * float(v))
+    return {"width_pm": _num(wall.get("width")), "sigma_width_pm": _num(wall.get("sigma_width")),
+            "energy_mJ_per_m2": mj(gl.get("energy_J_per_m2")),
+            "sigma_energy_mJ_per_m2": mj(gl.get("sigma_energy_J_per_m2")),
+            "asymmetry_pm": _num(wall.get("asymmetry")),
+            "sigma_asymmetry_pm": _num(wall.get("sigma_asymmetry")),
+            "zeta": _num(rough.get("zeta")), "sigma_zeta": _num(rough.get("sigma_zeta"))}
 
 
 def snapshot_from_ledger(ledger: Ledger, *, session: str) -> Snapshot:

@@ -119,6 +119,8 @@ def render_status(snap: Snapshot, *, width: int = 80, ui=None):
         grid.add_row("", f"mean displacement {_pm(last.mean_displacement_pm)}   "
                          f"analysis {_seconds(last.analyze_s)}   "
                          f"latency {_seconds(last.latency_s)}")
+        for label, line in physics_rows(last.physics, (snap.decisions or {}).get("tracks")):
+            grid.add_row(label, line)
 
     has_decisions = bool(snap.proposals or snap.flags)
     if snap.decisions:
@@ -183,6 +185,46 @@ def confirm_panel(verb: str, pid: str, row: dict | None, *, width: int = 80,
     return Panel(body, title=f"{verb} {pid}?", title_align="left", box=box.HEAVY,
                  border_style="yellow" if verb == "accept" else "", width=width,
                  padding=(0, 1))
+
+
+def _pm_sigma(v, s, unit="pm", fmt=".0f") -> str:
+    if v is None:
+        return "-"
+    return f"{v:{fmt}}" + ("" if s is None else f" ± {s:{fmt}}") + f" {unit}"
+
+
+def physics_rows(physics: dict | None, tracks: dict | None) -> list[tuple[str, str]]:
+    """Rows ``wall`` (width, energy, roughness exponent) and ``track`` (velocity).
+
+    ``physics`` is :func:`livequant.daemon.status.wall_physics_brief` of the latest frame,
+    ``tracks`` the decision loop's track status (``latest_wall``); rows with nothing to say
+    are left out.
+    """
+    parts = []
+    if physics:
+        parts.append(f"w {_pm_sigma(physics.get('width_pm'), physics.get('sigma_width_pm'))}")
+        if physics.get("energy_mJ_per_m2") is not None:
+            e = _pm_sigma(physics["energy_mJ_per_m2"], physics.get("sigma_energy_mJ_per_m2"),
+                          "mJ/m²")
+            parts.append(f"E {e}")
+        if physics.get("zeta") is not None:
+            z = _pm_sigma(physics["zeta"], physics.get("sigma_zeta"), "", ".2f").rstrip()
+            parts.append(f"ζ {z}")
+    rows = [("wall", "   ".join(parts))] if parts else []
+    w = (tracks or {}).get("latest_wall") or {}
+    if w.get("velocity_nm_per_s") is not None:
+        v, sv = 1000.0 * w["velocity_nm_per_s"], 1000.0 * (w.get("sigma_velocity_nm_per_s") or 0)
+        rows.append(("track", f"{w.get('track_id')}: v {v:.1f} ± {sv:.1f} pm/s along its "
+                              f"normal, {w.get('n')} frames"))
+    means = w.get("means") or {}
+    mw, me = means.get("width_nm"), means.get("energy_J_per_m2")
+    if mw and mw.get("n", 0) > 1:
+        text = f"mean w {_pm_sigma(1000 * mw['mean'], 1000 * mw['sigma_scaled'])}"
+        if me and me.get("n", 0) > 1:
+            text += f", E {_pm_sigma(1000 * me['mean'], 1000 * me['sigma_scaled'], 'mJ/m²')}"
+        ok = mw.get("consistent") and (not me or me.get("consistent", True))
+        rows.append(("", text + ("  (χ² consistent)" if ok else "  (χ²: frames disagree)")))
+    return rows
 
 
 def _decisions_line(d: dict) -> Text:

@@ -32,6 +32,7 @@ from livequant.report.maps import DEFAULT_SMOOTH_CELLS, cell_grid, wall_profile,
 from livequant.report.maps import smooth_cells as smooth_cell_values
 from livequant.report.page import SAFETY_CAUTION, FigureRef, Section, Table, render_page
 from livequant.textfmt import plus_minus
+from livequant.report.physics import physics_sections
 
 __all__ = ["build_report", "DEFAULT_MAX_FRAMES", "DEFAULT_HISTOGRAM_FRAMES", "DEFAULT_DPI",
            "DEFAULT_VECTOR", "VECTOR_FORMATS", "ReportContext", "SECTIONS_BEFORE_FRAMES",
@@ -753,5 +754,6 @@ SECTIONS_AFTER_FRAMES: list[tuple[str, Callable[[ReportContext], list[Section]]]
         c.session, c.figs, c.histogram_frames,
         loaded={fd.frame_id: fd.cells for fd in c.frame_data})]),
     ("fit quality", lambda c: [_fit_quality_section(c.frame_data, c.figs, c.gain)]),
+    ("wall physics", lambda c: physics_sections(c.session, c.summaries, c.figs, c.t0)),
     ("throughput", lambda c: [_throughput_section(c.session, c.figs, c.t0)]),
 ]

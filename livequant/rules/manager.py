@@ -50,6 +50,7 @@ BUILTIN_RULES: dict[str, str] = {
     "vortex_cores": "livequant.rules.builtin.vortex_cores:VortexCoreRule",
     "interfaces": "livequant.rules.builtin.interfaces:InterfaceRule",
     "anomalies": "livequant.rules.builtin.anomalies:AnomalyRule",
+    "feature_tracks": "livequant.rules.builtin.feature_tracks:FeatureTrackRule",
 }
 
 #: Descriptors whose running statistics the session keeps (the names of cells.csv).
@@ -114,12 +115,18 @@ class SessionView:
     visited : tuple of mapping
         Stage regions already imaged or proposed: ``center_x_nm``,
         ``center_y_nm``, ``width_nm``, ``height_nm``, ``rotation_deg``.
+    tracks : mapping
+        The feature tracker's view of the current frame (set by the decision
+        loop before the rules run; empty without one): ``frame_id``,
+        ``walls`` (tracks observed in it, each with ``x_px, y_px`` in this
+        frame), ``appeared`` and ``vanished`` (core tracks, with ``x_px, y_px``).
     """
 
     n_frames: int = 0
     stats: Mapping[str, DescriptorStats] = field(default_factory=dict)
     flags: tuple[Flag, ...] = ()
     visited: tuple[Mapping, ...] = ()
+    tracks: Mapping = field(default_factory=dict)
 
 
 _VISITED_KEYS = ("center_x_nm", "center_y_nm", "width_nm", "height_nm")
@@ -156,6 +163,7 @@ class SessionContext:
             name: DescriptorStats(math.nan, math.nan, 0, 0) for name in TRACKED_DESCRIPTORS}
         self._n_frames = 0
         self._view: SessionView | None = None
+        self._tracks: Mapping = types.MappingProxyType({})
 
     @classmethod
     def from_settings(cls, settings: Settings) -> "SessionContext":
@@ -218,12 +226,18 @@ class SessionContext:
         self._visited.append(types.MappingProxyType(entry))
         self._view = None
 
+    def set_tracks(self, tracks: Mapping) -> None:
+        """The feature tracker's view of the frame about to be evaluated (JSON-like)."""
+        self._tracks = types.MappingProxyType(dict(tracks))
+        self._view = None
+
     def readonly(self) -> SessionView:
         """A frozen snapshot (cached until the next update)."""
         if self._view is None:
             self._view = SessionView(n_frames=self._n_frames,
                                      stats=types.MappingProxyType(dict(self._stats)),
-                                     flags=tuple(self._flags), visited=tuple(self._visited))
+                                     flags=tuple(self._flags), visited=tuple(self._visited),
+                                     tracks=self._tracks)
         return self._view
 
 

@@ -69,7 +69,7 @@ def test_builtins_load_in_order_and_status_is_json_ready():
 
 def test_builtins_are_blockable_by_name_and_unknown_names_are_errors():
     mgr = RuleManager.from_settings(_settings(blocked=["vortex_cores"]))
-    assert "vortex_cores" not in mgr.names and len(mgr.names) == 3
+    assert "vortex_cores" not in mgr.names and len(mgr.names) == len(BUILTIN_RULES) - 1
     mgr = RuleManager.from_settings(_settings(enabled=["interfaces"]))
     assert mgr.names == ["interfaces"]
     with pytest.raises(ConfigError, match="unknown built-in rule.*vortex_core\\b"):

@@ -12,5 +12,8 @@ domain_walls  ``domain-wall``              the frame's tanh wall fit, as a band 
 vortex_cores  ``vortex``, ``antivortex``   winding +1 / -1 of the displacement direction
 interfaces    ``interface``                a step of a descriptor across lattice rows
 anomalies     ``anomaly``                  cells far from the session's running statistics
+feature_      ``wall-moved``,              a wall that moved, a core that appeared or
+tracks        ``core-appeared``,           vanished, across frames of one specimen region
+              ``core-vanished``            (tracks in ``context.tracks``)
 ============  ==========================  ===========================================
 """
