@@ -53,6 +53,7 @@ class FrameDefaults(_Model):
     stage_x_nm: float = 0.0
     stage_y_nm: float = 0.0
     scan_rotation_deg: float = 0.0
+    beam_current_pa: float | None = Field(default=None, gt=0)
 
     def as_dict(self) -> dict:
         return self.model_dump()
@@ -241,6 +242,10 @@ class ProposalSettings(_Model):
     lead_time_s: float = Field(default=10.0, ge=0, le=3600)
     expire_after_s: float = Field(default=900.0, ge=0)
     auto_accept: bool = False
+    dose_budget_e_per_a2: float | None = Field(default=None, gt=0)
+    dose_map_cell_nm: float = Field(default=0.5, gt=0, le=100)
+    drift_margin_sigma: float = Field(default=3.0, ge=0, le=20)
+    auto_accept_min_drift_pairs: int = Field(default=2, ge=0, le=1000)
 
 
 class DriftSettings(_Model):
