@@ -219,6 +219,7 @@ class RulesSettings(_Model):
     max_consecutive_failures: int = Field(default=5, ge=1, le=100_000)
     history: int = Field(default=500, ge=1, le=1_000_000)
     stats_max_cells: int = Field(default=50_000, ge=100, le=10_000_000)
+    anomaly_attach_margin_cells: float = Field(default=2.0, ge=0, le=100)
     domain_walls: DomainWallRuleSettings = DomainWallRuleSettings()
     vortex_cores: VortexRuleSettings = VortexRuleSettings()
     interfaces: InterfaceRuleSettings = InterfaceRuleSettings()

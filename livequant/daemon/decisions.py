@@ -189,7 +189,9 @@ class DecisionLoop:
         self.warn(f"decisions: {text}")
 
     def _run_rules(self, view) -> list:
-        session_view = self.context.readonly()
+        from livequant.rules.manager import imaging_condition
+
+        session_view = self.context.readonly(imaging_condition(view.meta))
         flags = list(self.rules.evaluate(view, session_view) or [])
         self.context.update(view, flags)
         return flags
