@@ -126,17 +126,24 @@ _VISITED_KEYS = ("center_x_nm", "center_y_nm", "width_nm", "height_nm")
 
 
 def imaging_condition(meta) -> str:
-    """The imaging condition a frame's statistics belong to: detector, pixel size, dwell.
+    """The imaging condition a frame's statistics belong to: detector, pixel size, dwell,
+    scan rotation.
 
     Noise and fitting bias of every descriptor depend on the dose per column
     and the sampling, so a survey frame at 20 pm and 2 us and a revisit at
     10 pm and 4 us are judged against their own kind (3 significant digits).
+    The scan rotation matters too: drift during the slow scan stretches the
+    lattice along the slow axis (0.012 nm/s over a 6.3 s, 10.3 nm tall frame:
+    -0.7 %), so a revisit turned 90 degrees to follow a wall reads ``a_pm``
+    2.7 pm low against survey frames -- measured on the demo, where it raised
+    every ``a_pm`` anomaly beside the wall.
     """
     px = getattr(meta, "pixel_size_pm", None)
     dwell = getattr(meta, "dwell_time_us", None)
     det = getattr(meta, "detector", None) or "?"
+    rot = getattr(meta, "scan_rotation_deg", None) or 0.0
     return (f"{det} {px:.3g} pm" if px else f"{det} ? pm") + \
-        (f" {dwell:.3g} us" if dwell else " ? us")
+        (f" {dwell:.3g} us" if dwell else " ? us") + f" {round(rot) % 360:d} deg"
 
 
 class _Buffers:

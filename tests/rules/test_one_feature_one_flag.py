@@ -74,6 +74,9 @@ def test_statistics_are_kept_per_imaging_condition():
     r = ctx.readonly(imaging_condition(revisit.meta)).stats["a_pm"]
     assert s.median == pytest.approx(400, abs=0.3) and s.scale == pytest.approx(3, rel=0.1)
     assert r.median == pytest.approx(396, abs=0.1) and r.scale == pytest.approx(1, rel=0.1)
-    assert ctx.readonly("HAADF 5 pm 1 us").stats["a_pm"].n == 0
+    assert ctx.readonly("HAADF 5 pm 1 us 0 deg").stats["a_pm"].n == 0
     assert ctx.readonly().stats["a_pm"].median == r.median   # the latest condition
-    assert imaging_condition(survey.meta) == "HAADF 20 pm 2 us"
+    assert imaging_condition(survey.meta) == "HAADF 20 pm 2 us 0 deg"
+    turned = FrameMeta(frame_id="t", pixel_size_pm=20.0, dwell_time_us=2.0,
+                       scan_rotation_deg=89.8)
+    assert imaging_condition(turned) == "HAADF 20 pm 2 us 90 deg"
