@@ -80,3 +80,27 @@ def test_statistics_are_kept_per_imaging_condition():
     turned = FrameMeta(frame_id="t", pixel_size_pm=20.0, dwell_time_us=2.0,
                        scan_rotation_deg=89.8)
     assert imaging_condition(turned) == "HAADF 20 pm 2 us 90 deg"
+
+
+def test_one_interface_is_one_flag_when_descriptors_step_at_different_rows():
+    """An electrode-like interface: the column ratio steps sharply between rows j = 6 and 7,
+    the lattice parameter b relaxes over a few cells (tanh of 2 cells half-width, centred
+    2.5 rows further up) -- the two descriptors place the same interface 2-3 rows apart.
+    One flag, naming both; a second interface 12 rows away stays its own flag."""
+    from tests.rules.test_builtin_units import _cells, _view
+
+    rng = np.random.default_rng(8)
+    j = np.arange(30)[None, :]
+    ratio = np.where(j >= 7, 0.3, 1.3) + rng.normal(0, 0.03, (16, 30))
+    b = 390.0 + 8.0 * (np.tanh((j - 9.0) / 2.0) + 1) / 2 + rng.normal(0, 0.4, (16, 30))
+    ratio = np.where(j >= 21, 1.3, ratio) + 0 * b      # the layer ends 14 rows up
+    b = np.where(j >= 21, 390.0 + rng.normal(0, 0.4, (16, 30)), b)
+    cells = _cells(16, 30, ratio_b_a=ratio, sigma_ratio_b_a=0.03, b_pm=b,
+                   a_pm=390.0 + rng.normal(0, 0.4, (16, 30)))
+    mgr = RuleManager.from_settings(Settings.model_validate({"rules": {"enabled": ["interfaces"]}}))
+    flags = mgr.evaluate(_view(cells), SessionContext().readonly())
+    rows = sorted(f.evidence["row"] for f in flags)
+    assert len(flags) == 2, [(f.evidence["row"], f.evidence["descriptors"]) for f in flags]
+    assert rows[0] == pytest.approx(6.5, abs=1.0) and rows[1] == pytest.approx(20.5, abs=1.0)
+    low = min(flags, key=lambda f: f.evidence["row"])
+    assert set(low.evidence["descriptors"]) == {"ratio_b_a", "b_pm"}
