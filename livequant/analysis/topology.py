@@ -29,7 +29,7 @@ import numpy as np
 from scipy import ndimage
 
 __all__ = ["winding_numbers", "Core", "find_cores", "loop_windings", "LoopCore",
-           "find_loop_cores", "LOOP_DEFAULTS"]
+           "find_loop_cores", "nonpolar_layer", "LOOP_DEFAULTS"]
 
 #: Defaults of the loop-based core search, shared by the cells summary and the
 #: ``vortex_cores`` rule (``[rules.vortex_cores]``) so both give one answer.
@@ -289,6 +289,25 @@ def core_position(x_mean, y_mean, winding, radius_px, x, y, dx, dy):
 
 
 
+def nonpolar_layer(dx, dy, sigma_d, *, box_cells: int = 5) -> np.ndarray:
+    """Cells of a non-polar layer (an electrode, a paraelectric substrate) on a grid.
+
+    A cell is low when the mean ``|d|`` of the ``box_cells`` x ``box_cells``
+    cells around it is below twice their mean ``sigma_d`` (the noise of a
+    non-polar cell's ``|d|`` is about 1.25 sigma); a layer is a region of low
+    cells at least ``box_cells`` across (a morphological opening), so the
+    narrow low band along a domain wall, a core, or scattered noisy cells are
+    never one.  Returns a bool grid.
+    """
+    d = np.hypot(dx, dy)
+    ok = np.isfinite(d) & np.isfinite(sigma_d)
+    md, _ = box_mean(d, ok, box_cells)
+    ms, _ = box_mean(sigma_d, ok, box_cells)
+    with np.errstate(invalid="ignore"):
+        low = ok & ~(md > 2.0 * ms)
+    return ndimage.binary_opening(low, structure=np.ones((box_cells, box_cells)))
+
+
 @dataclass(frozen=True)
 class LoopCore:
     """A core seen by overlapping loops of one winding: position (same units as the
@@ -338,7 +357,9 @@ def find_loop_cores(x, y, dx, dy, sigma_d, *, cell_size: float, handedness: int 
     s_mean, _ = box_mean(sigma_d, ok, smooth_cells)
     with np.errstate(invalid="ignore", divide="ignore"):
         snr = np.hypot(ux, uy) / (s_mean / np.sqrt(np.maximum(n, 1.0)))
-    valid = np.isfinite(snr) & (snr >= min_snr)
+    # A loop through a non-polar layer is not around a core: where a wall ends on an
+    # electrode, the up and down domains and the layer's noise close a false winding.
+    valid = np.isfinite(snr) & (snr >= min_snr) & ~nonpolar_layer(dx, dy, sigma_d)
     w = loop_windings(ux, uy, loop_cells=L, valid=valid, max_step_rad=math.radians(max_step_deg),
                       handedness=handedness)
     cores: list[LoopCore] = []

@@ -295,8 +295,8 @@ def attach_anomalies(flags: Sequence[Flag], *, margin_px: float = 0.0,
     """Anomalies are what no typed rule explains: fold those on a typed flag into it.
 
     An ``anomaly`` flag whose centre lies inside a typed flag's region (any
-    other kind, grown by `margin_px` on every side), or of whose area that
-    grown region covers at least `min_covered`, is dropped; the typed flag
+    other kind, grown by `margin_px` on every side), or of whose area those
+    grown regions together cover at least `min_covered`, is dropped; the typed flag
     (the one covering most of it) records it in its evidence as
     ``attached_anomalies`` (descriptor and direction of each) and
     ``n_attached_anomalies``.  A wall flanked by a fitting artefact, or a
@@ -316,7 +316,7 @@ def attach_anomalies(flags: Sequence[Flag], *, margin_px: float = 0.0,
             continue
         box = _as_box(f.region)
         area = box["width_nm"] * box["height_nm"]
-        best, best_cover = None, 0.0
+        best, best_cover, total, inside_any = None, 0.0, 0.0, False
         for k in typed:
             g = grown[k]
             t = math.radians(g["rotation_deg"])
@@ -324,8 +324,14 @@ def attach_anomalies(flags: Sequence[Flag], *, margin_px: float = 0.0,
             u, v = dx * math.cos(t) + dy * math.sin(t), -dx * math.sin(t) + dy * math.cos(t)
             inside = abs(u) <= g["width_nm"] / 2 and abs(v) <= g["height_nm"] / 2
             cover = overlap_area(box, g) / area if area > 0 else 0.0
-            if (inside or cover >= min_covered) and (best is None or cover > best_cover):
-                best, best_cover = k, max(cover, 1e-12)
+            total += cover
+            inside_any |= inside
+            if (inside or cover > 0) and (best is None or (inside, cover) > best_cover):
+                best, best_cover = k, (inside, cover)
+        # Covered by one typed flag, or by several together (a layer between two
+        # interfaces: the electrode's missing polarization is the interfaces' finding).
+        if not (inside_any or total >= min_covered):
+            best = None
         if best is None:
             keep.append(f)
         else:

@@ -104,3 +104,14 @@ def test_one_interface_is_one_flag_when_descriptors_step_at_different_rows():
     assert rows[0] == pytest.approx(6.5, abs=1.0) and rows[1] == pytest.approx(20.5, abs=1.0)
     low = min(flags, key=lambda f: f.evidence["row"])
     assert set(low.evidence["descriptors"]) == {"ratio_b_a", "b_pm"}
+
+
+def test_an_anomaly_between_two_interfaces_is_theirs():
+    """The non-polar electrode between two interface bands (d_pm low over the layer): each
+    band covers a third of the anomaly, together two thirds -- folded into the first."""
+    top = Flag("interface", 0.9, Region(500.0, 340.0, 980.0, 40.0), "top", {})
+    bottom = Flag("interface", 0.9, Region(500.0, 120.0, 980.0, 40.0), "bottom", {})
+    layer = _anomaly(500.0, 230.0, "d_pm", size=200.0)
+    out = attach_anomalies([top, bottom, layer], margin_px=40.0)
+    assert [f.kind for f in out] == ["interface", "interface"]
+    assert sum(f.evidence.get("n_attached_anomalies", 0) for f in out) == 1

@@ -142,20 +142,11 @@ def _finite(v) -> bool:
 
 def _polar_cells(cells, grid) -> np.ndarray:
     """False for the cells of a non-polar layer (see the module docstring)."""
-    from livequant.analysis.topology import box_mean
+    from livequant.analysis.topology import nonpolar_layer
 
-    d, sd = grid.dense(np.asarray(cells["d_pm"], float)), grid.dense(
-        np.asarray(cells["sigma_d_pm"], float))
-    ok = np.isfinite(d) & np.isfinite(sd)
-    md, _ = box_mean(d, ok, 5)
-    ms, _ = box_mean(sd, ok, 5)
-    with np.errstate(invalid="ignore"):
-        low = ok & ~(md > 2.0 * ms)
-    # A non-polar layer is thick; the wall's own low-|d| band (and low-dose noise) is not:
-    # keep only low regions at least 5 cells across (a morphological opening).
-    from scipy import ndimage
-
-    layer = ndimage.binary_opening(low, structure=np.ones((5, 5)))
+    layer = nonpolar_layer(grid.dense(np.asarray(cells["dx_pm"], float)),
+                           grid.dense(np.asarray(cells["dy_pm"], float)),
+                           grid.dense(np.asarray(cells["sigma_d_pm"], float)))
     return ~layer[grid.gi, grid.gj]
 
 
