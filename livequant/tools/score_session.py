@@ -18,7 +18,10 @@ finds the features really in view and matches the ledger's flags to them:
   (about 4 nm) is in view; an ``interface`` flag centred within ``MATCH_NM``
   of it matches;
 * point defects (the scenario's ``defects``): in view at least ``EDGE_NM``
-  inside the frame; an ``anomaly`` within ``DEFECT_NM`` (2 nm) matches.
+  inside the frame; an ``anomaly`` within ``DEFECT_NM`` (2 nm) matches; an
+  anomaly within ``DEFECT_NM`` of a column with missing atoms (occupancy
+  below 1: the scenario's vacancies, random ones included) matches too, but
+  such columns neither count for recall nor make a frame featured.
 
 Then per kind: precision (flags matching a feature present in the frame /
 flags) and recall (features in view matched / features in view, summed over
@@ -156,7 +159,13 @@ def frame_features(truth) -> dict:
                 if edge_px <= pos[0] <= cols - 1 - edge_px and \
                         edge_px <= pos[1] <= rows - 1 - edge_px:
                     in_view.append(f)
-    return {"present": present, "in_view": in_view, "px_nm": px_nm}
+    # Columns with missing atoms (the scenario's vacancies and random vacancies): an
+    # anomaly on one is a finding, not a false alarm; they do not make a frame "featured".
+    occ = np.asarray(truth.arrays.get("occupancy", np.zeros(0)), float)
+    pos = np.asarray(truth.arrays.get("positions_px", np.zeros((0, 2))), float)[:, ::-1]
+    vac = [{"id": f"vacancy:{k}", "kind": "defect", "p": pos[k], "weak": True}
+           for k in np.flatnonzero(occ < 0.99)]
+    return {"present": present, "in_view": in_view, "px_nm": px_nm, "vacancies": vac}
 
 
 def _match(flag, features, px_nm) -> str | None:
@@ -228,12 +237,13 @@ def score_session(session) -> dict:
             anomalies_survey += n_anom
         if not feats["present"]:
             n_featureless += 1
-            n_false_alarm += len(fl)
+            n_false_alarm += sum(_match(f, feats["vacancies"], feats["px_nm"]) is None
+                                 for f in fl)
         for f in fl:
             if f["kind"] not in n_flags:
                 continue
             n_flags[f["kind"]] += 1
-            m = _match(f, feats["present"], feats["px_nm"])
+            m = _match(f, feats["present"] + feats["vacancies"], feats["px_nm"])
             if m is not None:
                 n_true[f["kind"]] += 1
                 flag_feature[f["id"]] = m
