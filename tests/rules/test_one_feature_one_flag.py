@@ -115,3 +115,21 @@ def test_an_anomaly_between_two_interfaces_is_theirs():
     out = attach_anomalies([top, bottom, layer], margin_px=40.0)
     assert [f.kind for f in out] == ["interface", "interface"]
     assert sum(f.evidence.get("n_attached_anomalies", 0) for f in out) == 1
+
+
+def test_cluster_scores_count_the_correlation_of_neighbouring_cells():
+    """Cells sharing an edge share two corner columns (correlation 0.5), a corner one (0.25):
+    a chain of 3 has variance 3 + 2 x 0.5 x 2 = 5, a 2 x 2 block 4 + 2 (4 x 0.5 + 2 x 0.25)
+    = 9, a lone cell 1 (derived here from the cell construction)."""
+    from scipy import ndimage
+
+    from livequant.rules.builtin.anomalies import _sum_variance
+
+    m = np.zeros((7, 7), bool)
+    m[1, 1:4] = True
+    m[4:6, 4:6] = True
+    m[0, 6] = True
+    lab, n = ndimage.label(m, structure=np.ones((3, 3)))
+    size = np.bincount(lab.ravel(), minlength=n + 1)[1:]
+    var = dict(zip(size.tolist(), _sum_variance(lab, n, size).tolist()))
+    assert var == {3: 5.0, 4: 9.0, 1: 1.0}
