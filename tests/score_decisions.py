@@ -166,7 +166,7 @@ def main(argv=None) -> int:
                                                              [labels[k] for k in idx]))
     if len(args.scenarios) > 1:
         tables.append("### all scenarios\n\n" + format_table(scores, labels).split("\n", 2)[0]
-                      + "\n" + "|" + "---|" * 11 + "\n" +
+                      + "\n" + "|" + "---|" * 12 + "\n" +
                       format_table(scores, labels).splitlines()[-1])
     text = "\n\n".join(tables)
     print(text)

@@ -19,7 +19,7 @@ finds the features really in view and matches the ledger's flags to them:
   of it matches;
 * point defects (the scenario's ``defects``): in view at least ``EDGE_NM``
   inside the frame; an ``anomaly`` within ``DEFECT_NM`` (2 nm) matches; an
-  anomaly within ``DEFECT_NM`` of a column with missing atoms (occupancy
+  anomaly within ``VACANCY_NM`` (1 nm) of a column with missing atoms (occupancy
   below 1: the scenario's vacancies, random ones included) matches too, but
   such columns neither count for recall nor make a frame featured.
 
@@ -49,6 +49,7 @@ __all__ = ["score_session", "format_table", "main"]
 MATCH_NM = 1.5
 EDGE_NM = 1.5
 DEFECT_NM = 2.0
+VACANCY_NM = 1.0
 WALL_MIN_NM = 4.0
 TYPED = ("domain-wall", "vortex", "antivortex", "interface")
 
@@ -178,7 +179,8 @@ def _match(flag, features, px_nm) -> str | None:
         if kind == "anomaly":
             if f["kind"] != "defect":
                 continue
-            d, tol = np.hypot(*(c - f["p"])) * px_nm, DEFECT_NM
+            d = np.hypot(*(c - f["p"])) * px_nm
+            tol = VACANCY_NM if f.get("weak") else DEFECT_NM
         elif kind != f["kind"]:
             continue
         elif kind in ("vortex", "antivortex"):
@@ -317,10 +319,10 @@ def _fmt(v, digits=2):
 def format_table(scores: list[dict], labels: list[str] | None = None) -> str:
     """A Markdown table, one row per session (and the pooled row when several)."""
     head = ("| run | frames (survey+revisit) | wall P/R | core P/R | interface P/R | "
-            "anomalies / frame | anomalies repeating a typed flag | false alarms / "
-            "featureless frame | proposals / feature | unmatched proposals | "
+            "anomalies / frame | anomaly P / defect R | anomalies repeating a typed flag | "
+            "false alarms / featureless frame | proposals / feature | unmatched proposals | "
             "area imaged twice (nm²) |")
-    lines = [head, "|" + "---|" * 11]
+    lines = [head, "|" + "---|" * 12]
     labels = labels or [Path(s["session"]).name for s in scores]
 
     def pr(s, kinds):
@@ -331,6 +333,15 @@ def format_table(scores: list[dict], labels: list[str] | None = None) -> str:
         return (nt, nf, nfo, nv)
 
     def row(label, s_list):
+        def anomalies():
+            nf = sum(s["flags"]["anomaly"] for s in s_list)
+            nt = sum(round((s["precision"]["anomaly"] or 0) * s["flags"]["anomaly"])
+                     for s in s_list)
+            nv = sum(s["in_view"]["defect"] for s in s_list)
+            nfo = sum(s["found"]["defect"] for s in s_list)
+            return (f"{_fmt(nt / nf) if nf else '-'} / {_fmt(nfo / nv) if nv else '-'} "
+                    f"({nfo}/{nv})")
+
         def both(kinds):
             t = [pr(s, kinds) for s in s_list]
             nt, nf, nfo, nv = (sum(x[i] for x in t) for i in range(4))
@@ -349,7 +360,8 @@ def format_table(scores: list[dict], labels: list[str] | None = None) -> str:
         unm = sum(s["proposals_unmatched"] for s in s_list)
         ov = sum(s["overlap_nm2"] for s in s_list)
         return (f"| {label} | {fr} ({sv}+{fr - sv}) | {both(('domain-wall',))} | "
-                f"{both(('vortex', 'antivortex'))} | {both(('interface',))} | {an:.2f} | {rep} | "
+                f"{both(('vortex', 'antivortex'))} | {both(('interface',))} | {an:.2f} | "
+                f"{anomalies()} | {rep} | "
                 f"{_fmt(fa / nfl) if nfl else '-'} ({nfl}) | "
                 f"{_fmt(props / feats) if feats else '-'} | {unm} | {ov:.1f} |")
 
