@@ -55,6 +55,7 @@ class FrameDefaults(_Model):
     stage_x_nm: float = 0.0
     stage_y_nm: float = 0.0
     scan_rotation_deg: float = 0.0
+    beam_current_pa: float | None = Field(default=None, gt=0)
 
     def as_dict(self) -> dict:
         return self.model_dump()
@@ -255,6 +256,7 @@ class RulesSettings(_Model):
     max_consecutive_failures: int = Field(default=5, ge=1, le=100_000)
     history: int = Field(default=500, ge=1, le=1_000_000)
     stats_max_cells: int = Field(default=50_000, ge=100, le=10_000_000)
+    anomaly_attach_margin_cells: float = Field(default=2.0, ge=0, le=100)
     domain_walls: DomainWallRuleSettings = DomainWallRuleSettings()
     vortex_cores: VortexRuleSettings = VortexRuleSettings()
     interfaces: InterfaceRuleSettings = InterfaceRuleSettings()
@@ -281,6 +283,10 @@ class ProposalSettings(_Model):
     auto_accept: bool = False
     #: probe current for the dose a proposal would deliver (display, accept); None = unknown
     beam_current_pa: float | None = Field(default=None, gt=0, le=1e6)
+    dose_budget_e_per_a2: float | None = Field(default=None, gt=0)
+    dose_map_cell_nm: float = Field(default=0.5, gt=0, le=100)
+    drift_margin_sigma: float = Field(default=3.0, ge=0, le=20)
+    auto_accept_min_drift_pairs: int = Field(default=2, ge=0, le=1000)
 
 
 class DriftSettings(_Model):

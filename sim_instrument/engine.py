@@ -625,12 +625,23 @@ class ScanEngine:
         centre_xy = raster.line_start_nm[rows // 2] + ((cols - 1) / 2) * raster.step_nm
         walls = []
         for w in self.specimen.walls_truth():
-            d = np.asarray(w["direction"])
             w = dict(w)
-            # The point of the wall line nearest the frame centre, and whether
-            # the wall crosses the frame (to within half its width).
-            p0 = np.asarray(w["point_nm"])
-            near = p0 + ((centre_xy - p0) @ d) * d
+            # The wall is a straight line in reference coordinates; the film's strain
+            # displaces it (a tetragonal film stretches it along y, so an inclined wall
+            # turns steeper).  Take the displaced line where it passes the frame: the
+            # reference point nearest the frame centre and its neighbours 1 nm either
+            # side, displaced.  Vertical walls are unchanged.
+            spec_wall = self.specimen.scenario.walls[w["index"]]
+            t = math.radians(spec_wall.angle_deg)
+            d_ref = np.array([math.cos(t), math.sin(t)])
+            p_ref = np.asarray(spec_wall.point_nm, float)
+            c_ref = centre_xy - self.specimen.displacement_nm(centre_xy[None, :])[0]
+            q = p_ref + ((c_ref - p_ref) @ d_ref) * d_ref
+            pts = np.stack([q - d_ref, q, q + d_ref])
+            pts = pts + self.specimen.displacement_nm(pts)
+            d = (pts[2] - pts[0]) / np.hypot(*(pts[2] - pts[0]))
+            near = pts[1] + ((centre_xy - pts[1]) @ d) * d
+            w["direction"] = d.tolist()
             w["point_nm"] = near.tolist()
             w["point_px"] = feature_px(near)
             half_diag_px = 0.5 * math.hypot(rows, cols)

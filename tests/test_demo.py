@@ -65,8 +65,10 @@ def test_demo_flags_the_vortex_revisits_it_and_reports(tmp_path):
     from matplotlib.image import imread
 
     cfg = tmp_path / "demo.toml"
-    # the operator's threshold for proposing, lowered so that one weak-dose frame suffices
-    cfg.write_text("[proposals]\nmin_score = 0.1\n")
+    # the operator's threshold for proposing, lowered so that one weak-dose frame suffices;
+    # two frames measure no drift pair, so a core would wait for the drift model before
+    # auto-accept (tests/daemon/test_decision_quality_units.py): this test is about placement
+    cfg.write_text("[proposals]\nmin_score = 0.1\nauto_accept_min_drift_pairs = 0\n")
     session = tmp_path / "s"
     opts = DemoOptions(session=str(session), duration_s=25.0, frames=2, shape_px=(768, 768),
                        cadence_s=2.0, auto_accept=True, workers=2, config_file=str(cfg))

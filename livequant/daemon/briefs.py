@@ -20,4 +20,8 @@ def proposal_brief(row: dict) -> dict:
             "reason": p.get("reason", ""), "kinds": p.get("kinds", []),
             "flag_ids": p.get("flag_ids", []), "pixel_size_pm": p.get("pixel_size_pm"),
             "dwell_time_us": p.get("dwell_time_us"), "shape_px": p.get("shape_px"),
+            "dose_e_per_a2": p.get("dose_e_per_a2"),
+            "dose_after_max_e_per_a2": p.get("dose_after_max_e_per_a2"),
+            "dose_budget_exceeded": p.get("dose_budget_exceeded"),
+            "priority": p.get("priority"), "auto_accept_blocked": p.get("auto_accept_blocked"),
             "created_at": row["created_at"]}

@@ -32,10 +32,11 @@ from typing import Callable
 import numpy as np
 
 from livequant.daemon.briefs import proposal_brief as _proposal_brief
+from livequant.proposals.dose import DoseMap, dose_e_per_a2
 from livequant.proposals.drift import DriftImage, DriftModel, DriftTracker, frame_times_s
 from livequant.proposals.geometry import FrameGeometry, shift_region
-from livequant.proposals.propose import (CAUTION, Planner, candidate_from_flag,
-                                         proposal_from_json, scan_request_fields)
+from livequant.proposals.propose import (CAUTION, POINT_KINDS, Planner, candidate_from_flag,
+                                         priority, proposal_from_json, scan_request_fields)
 from livequant.proposals.tracks import FeatureTracker, frame_features
 
 __all__ = ["DecisionLoop", "make_rules"]
@@ -118,6 +119,11 @@ class DecisionLoop:
         from livequant.rules.builtin.vortex_cores import VortexCoreRule
 
         self._core_finder = VortexCoreRule(settings.rules.vortex_cores)
+        self.dose = DoseMap(cell_nm=self.cfg.dose_map_cell_nm)
+        self.beam_current_pa: float | None = getattr(
+            getattr(settings, "frame_defaults", None), "beam_current_pa", None)
+        self.n_frames_without_dose = 0
+        self._held: list[str] = []   # auto-accept waits for the drift model
         self._lock = threading.RLock()
         self._shown_proposals: tuple | None = None  # display rows; None: read again
         self._next_number = 1
@@ -138,7 +144,7 @@ class DecisionLoop:
                 n += 1
                 payload = row.get("payload") or {}
                 spec = payload.get("specimen_region") or row["region"]
-                self.planner.add_proposed(spec)
+                self.planner.add_proposed(spec, payload.get("kinds") or ())
                 if row["state"] == "accepted":
                     self.planner.add_visited(spec)
                     self._context_visited(row["region"])
@@ -187,6 +193,9 @@ class DecisionLoop:
             if self.drift_cfg.enabled:
                 self._step("drift", self._update_drift, view, t_mid)
                 self._step("tracks-drift", self._redrift_tracks, view, t_mid)
+            self._step("dose", self._add_dose, view, geometry, t_mid)
+            if self._held and self._drift_ready():
+                self._step("held", self._accept_held, view)
             self._step("visited", self._note_visited, view, geometry, t_mid)
             if self.cfg.enabled and flags:
                 self._step("proposals", self._propose, view, geometry, flags, flag_ids, t_mid)
@@ -206,7 +215,9 @@ class DecisionLoop:
         self.warn(f"decisions: {text}")
 
     def _run_rules(self, view) -> list:
-        session_view = self.context.readonly()
+        from livequant.rules.manager import imaging_condition
+
+        session_view = self.context.readonly(imaging_condition(view.meta))
         flags = list(self.rules.evaluate(view, session_view) or [])
         self.context.update(view, flags)
         return flags
@@ -310,6 +321,75 @@ class DecisionLoop:
         """Every wall and core track of the session (JSON-ready)."""
         with self._lock:
             return self.features.summary()
+    def _add_dose(self, view, geometry: FrameGeometry, t_mid: float) -> None:
+        """Add the frame's dose to the map, in specimen coordinates (footprint minus drift)."""
+        current = view.meta.beam_current_pa or self.beam_current_pa
+        if view.meta.beam_current_pa:
+            self.beam_current_pa = float(view.meta.beam_current_pa)
+        if not current or not view.meta.dwell_time_us:
+            self.n_frames_without_dose += 1
+            return
+        d, _ = self.model.position_of(view.frame_id, t_mid)
+        self.dose.add(shift_region(geometry.footprint(), -d),
+                      dose_e_per_a2(current, view.meta.dwell_time_us, view.meta.pixel_size_pm))
+
+    def dose_fields(self, prop) -> dict:
+        """The dose numbers of a proposal (ledger payload, proposal event, operator views).
+
+        ``dose_e_per_a2``: the proposed scan's own dose at the latest beam
+        current; ``dose_prior_max_e_per_a2``: the most exposed part of its
+        region so far; ``dose_after_max_e_per_a2``: their sum;
+        ``dose_budget_exceeded``: True / False against
+        ``proposals.dose_budget_e_per_a2``, None with no budget or an unknown
+        current.  Estimates from nominal values, not a measurement.
+        """
+        budget = self.cfg.dose_budget_e_per_a2
+        prior = self.dose.max_in(shift_region(prop.region, [-v for v in prop.drift_nm]))
+        own = None
+        if self.beam_current_pa:
+            own = dose_e_per_a2(self.beam_current_pa, prop.dwell_time_us, prop.pixel_size_pm)
+        after = None if own is None else prior + own
+        exceeded = None if budget is None or after is None else bool(after > budget)
+        if budget is None:
+            note = "no dose budget set (proposals.dose_budget_e_per_a2)"
+        elif after is None:
+            note = ("dose unknown: no beam current (sidecar beam_current_pa or "
+                    "frame_defaults.beam_current_pa)")
+        elif exceeded:
+            note = (f"over the dose budget: {after:.3g} e/A^2 after this scan > "
+                    f"{budget:.3g} e/A^2 set in proposals.dose_budget_e_per_a2")
+        else:
+            note = f"within the dose budget: {after:.3g} of {budget:.3g} e/A^2"
+        return {"dose_e_per_a2": own, "dose_prior_max_e_per_a2": prior,
+                "dose_after_max_e_per_a2": after, "dose_budget_e_per_a2": budget,
+                "dose_budget_exceeded": exceeded, "beam_current_pa": self.beam_current_pa,
+                "dose_note": note}
+
+    def _drift_ready(self) -> bool:
+        return self.model.n_pairs >= self.cfg.auto_accept_min_drift_pairs
+
+    def _auto_accept_blocked(self, prop, dose: dict) -> str | None:
+        """Why a proposal must not be accepted automatically now (None: it may be)."""
+        if self.cfg.dose_budget_e_per_a2 is not None and dose["dose_budget_exceeded"] is not False:
+            return dose["dose_note"]
+        if set(prop.candidate.kinds) & set(POINT_KINDS) and not self._drift_ready():
+            return (f"waiting for the drift model ({self.model.n_pairs} of "
+                    f"{self.cfg.auto_accept_min_drift_pairs} frame pairs measured): a point "
+                    "feature placed now could be missed")
+        return None
+
+    def _accept_held(self, view) -> None:
+        held, self._held = self._held, []
+        for pid in held:
+            row = self.ledger.proposal(pid)
+            if row is None or row["state"] != "open":
+                continue
+            prop = proposal_from_json(row["payload"])
+            why = self._auto_accept_blocked(prop, self.dose_fields(prop))
+            if why is None:
+                self.accept(pid, decided_by="auto", note="proposals.auto_accept (drift model ready)")
+            elif "drift model" in why:
+                self._held.append(pid)
 
     def _note_visited(self, view, geometry: FrameGeometry, t_mid: float) -> None:
         """A frame acquired for a request covers its region: no proposal there again."""
@@ -332,17 +412,29 @@ class DecisionLoop:
         for cand in self.planner.plan(cands):
             target = self.now() + self.cfg.lead_time_s
             d, sigma = self.model.position(target)
+            novelty = self.planner.novelty(cand.specimen_region)
             prop = self.planner.place(self._new_id(), cand, drift_nm=d, sigma_drift_nm=sigma,
                                       placed_for_s=target)
-            payload = prop.to_json()
+            dose = self.dose_fields(prop)
+            rank = priority(prop.score, novelty, dose["dose_prior_max_e_per_a2"],
+                            dose["dose_e_per_a2"])
+            blocked = self._auto_accept_blocked(prop, dose) if self.cfg.auto_accept else None
+            payload = {**prop.to_json(), **dose, "strength": prop.score, "novelty": novelty,
+                       "priority": rank, "auto_accept_blocked": blocked}
             self._shown_proposals = None
             self.ledger.add_proposal(prop.id, region=prop.region, frame_id=view.frame_id,
-                                     score=prop.score, payload=payload)
+                                     score=rank, payload=payload)
             self.planner.commit(prop)
             self.publisher.publish("proposal", payload)
-            log.info("proposal %s: %s (score %.2f)", prop.id, prop.reason, prop.score)
+            log.info("proposal %s: %s (priority %.2f)", prop.id, prop.reason, rank)
             if self.cfg.auto_accept:
-                self.accept(prop.id, decided_by="auto", note="proposals.auto_accept")
+                if blocked is None:
+                    self.accept(prop.id, decided_by="auto", note="proposals.auto_accept")
+                else:
+                    log.info("proposal %s not accepted automatically: %s", prop.id, blocked)
+                    self.warn(f"proposal {prop.id} not accepted automatically: {blocked}")
+                    if "drift model" in blocked:
+                        self._held.append(prop.id)
 
     def _new_id(self) -> str:
         pid = f"p{self._next_number:04d}"
@@ -411,16 +503,22 @@ class DecisionLoop:
             prop = self.planner.replace_placement(prop, drift_nm=d, sigma_drift_nm=sigma,
                                                   placed_for_s=target)
             request = scan_request_fields(prop)
+            dose = self.dose_fields(prop)
+            if decided_by == "auto" and self._auto_accept_blocked(prop, dose):
+                raise ValueError(f"proposal {pid} is not accepted automatically: "
+                                 f"{self._auto_accept_blocked(prop, dose)}")
             self._shown_proposals = None
             self.ledger.decide(pid, "accept", decided_by=decided_by, note=note)
             self.planner.add_visited(prop.candidate.specimen_region)
             self._context_visited(prop.region)
             self.publisher.publish("proposal", {"id": pid, "state": "accepted",
                                                 "decided_by": decided_by, "note": note,
-                                                "region": prop.region, "caution": CAUTION})
+                                                "region": prop.region, **dose,
+                                                "caution": CAUTION})
             self.publisher.publish("scan-request", request)
             log.info("proposal %s accepted (%s): scan-request published", pid, decided_by)
-            return {"id": pid, "state": "accepted", "scan_request": request, "caution": CAUTION}
+            return {"id": pid, "state": "accepted", "scan_request": request, **dose,
+                    "caution": CAUTION}
 
     def reject(self, pid, *, why: str | None = None, decided_by: str = "operator") -> dict:
         with self._lock:
@@ -449,7 +547,10 @@ class DecisionLoop:
                               "ambiguous": self.tracker.n_ambiguous},
                     "proposals": self.planner.status(), "auto_accept": self.cfg.auto_accept,
                     "beam_current_pa": self.cfg.beam_current_pa,
-                    "tracks": self._tracks_status()}
+                    "tracks": self._tracks_status(),
+                    "dose": {**self.dose.summary(), "beam_current_pa": self.beam_current_pa,
+                             "frames_without_dose": self.n_frames_without_dose,
+                             "budget_e_per_a2": self.cfg.dose_budget_e_per_a2}}
 
     def snapshot_tables(self) -> tuple[tuple, tuple]:
         """``(proposals, flags)`` for the display: open first, then the latest decided.

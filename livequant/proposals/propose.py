@@ -7,6 +7,19 @@ coordinates at the session's drift origin) and as placed for the instrument
 instrument will get there).  Merging and the "already visited" test work on
 specimen regions, so drift never makes an old region look new.
 
+A straight feature (a domain wall, an interface) seen again on later frames is
+the same feature: one proposal, a strip along it, not one per frame (see
+:meth:`Planner.same_feature`).  A placed region grows on every side by
+``drift_margin_sigma`` times the drift uncertainty predicted for the time it
+will be scanned, so a revisit placed before the drift is well measured still
+holds its feature.
+
+Ranking (:func:`priority`): ``strength x novelty / dose cost`` --
+``strength`` is the flag's score (0..1), ``novelty`` the share of the region
+no earlier visit or proposal covers (0..1), ``dose cost`` ``1 + D_prior /
+D_scan``: 1 on fresh specimen, 2 where the most exposed part already had one
+such scan's dose (1 when the dose is not known).
+
 Proposals are suggestions to the operator (see :data:`CAUTION`).
 """
 
@@ -20,9 +33,23 @@ from livequant.proposals.caution import CAUTION  # shown wherever a proposal is 
 from livequant.proposals.geometry import (FrameGeometry, bounding_region, overlap_area,
                                           overlap_fraction, shift_region, stage_region)
 
-__all__ = ["CAUTION", "Candidate", "Proposal", "Planner", "candidate_from_flag",
-           "merge_candidates", "scan_request_fields", "scan_shape", "proposal_from_json"]
+__all__ = ["CAUTION", "LINE_KINDS", "POINT_KINDS", "priority", "Candidate", "Proposal", "Planner",
+           "candidate_from_flag", "merge_candidates", "scan_request_fields", "scan_shape", "proposal_from_json"]
 
+#: Kinds of flags that mark a straight, extended feature (one proposal per feature).
+LINE_KINDS = ("domain-wall", "interface")
+
+#: Kinds of flags that mark a point feature (placement must wait for a drift model).
+POINT_KINDS = ("vortex", "antivortex", "anomaly")
+
+
+def priority(strength: float, novelty: float, dose_prior_e_per_a2: float | None,
+             dose_scan_e_per_a2: float | None) -> float:
+    """Rank of a proposal: ``strength x novelty / (1 + D_prior / D_scan)`` (module docstring)."""
+    cost = 1.0
+    if dose_prior_e_per_a2 is not None and dose_scan_e_per_a2:
+        cost = 1.0 + max(float(dose_prior_e_per_a2), 0.0) / float(dose_scan_e_per_a2)
+    return float(strength) * float(np.clip(novelty, 0.0, 1.0)) / cost
 
 
 @dataclass(frozen=True)
@@ -193,9 +220,14 @@ class Planner:
     pixel_size_pm: float = 10.0
     dwell_time_us: float = 4.0
     max_side_px: int = 2048
+    drift_margin_sigma: float = 3.0
+    line_max_angle_deg: float = 15.0
+    line_max_offset_nm: float = 1.5
     visited: list = field(default_factory=list)
     proposed: list = field(default_factory=list)
+    proposed_kinds: list = field(default_factory=list)
     n_proposed: int = 0
+    n_same_feature: int = 0
     n_skipped_visited: int = 0
     n_over_budget: int = 0
     n_below_score: int = 0
@@ -204,16 +236,52 @@ class Planner:
     def from_settings(cls, cfg) -> "Planner":
         keys = ("min_score", "max_size_nm", "merge_overlap",
                 "visited_overlap", "max_per_frame", "max_per_session", "pixel_size_pm",
-                "dwell_time_us", "max_side_px")
+                "dwell_time_us", "max_side_px", "drift_margin_sigma")
         return cls(**{k: getattr(cfg, k) for k in keys})
 
     def add_visited(self, specimen_region: dict) -> None:
         self.visited.append(dict(specimen_region))
 
-    def add_proposed(self, specimen_region: dict) -> None:
+    def add_proposed(self, specimen_region: dict, kinds=()) -> None:
         """Remember an existing proposal (also on resume), counting it in the budget."""
         self.proposed.append(dict(specimen_region))
+        self.proposed_kinds.append(tuple(kinds))
         self.n_proposed += 1
+
+    def novelty(self, specimen_region: dict) -> float:
+        """Share of the region no visited or proposed region covers (largest single cover)."""
+        covers = [overlap_fraction(specimen_region, v) for v in self.visited + self.proposed]
+        return 1.0 - max(covers, default=0.0)
+
+    def same_feature(self, cand: Candidate) -> int | None:
+        """Index of an earlier proposal of the same straight feature, or None.
+
+        A line feature (:data:`LINE_KINDS`) is the same as an earlier proposal
+        of its kind when their long axes are parallel within
+        `line_max_angle_deg` and the new centre lies within
+        `line_max_offset_nm` (or half the wider band) of the earlier axis: a
+        straight wall or interface seen again further along.
+        """
+        kinds = set(cand.kinds) & set(LINE_KINDS)
+        if not kinds:
+            return None
+        a = _line(cand.specimen_region)
+        if a is None:
+            return None
+        for k, (region, pk) in enumerate(zip(self.proposed, self.proposed_kinds)):
+            if not kinds & set(pk):
+                continue
+            b = _line(region)
+            if b is None:
+                continue
+            cos = abs(float(a[1] @ b[1]))
+            if cos < np.cos(np.radians(self.line_max_angle_deg)):
+                continue
+            d = a[0] - b[0]
+            off = abs(float(d[0] * b[1][1] - d[1] * b[1][0]))
+            if off <= max(self.line_max_offset_nm, a[2], b[2]):
+                return k
+        return None
 
     def is_visited(self, specimen_region: dict) -> bool:
         """Covered (by `visited_overlap` of its area) by a visited or proposed region."""
@@ -235,6 +303,9 @@ class Planner:
             if self.is_visited(c.specimen_region):
                 self.n_skipped_visited += 1
                 continue
+            if self.same_feature(c) is not None:
+                self.n_same_feature += 1
+                continue
             if len(out) >= self.max_per_frame or self.n_proposed + len(out) >= \
                     self.max_per_session:
                 self.n_over_budget += 1
@@ -244,9 +315,18 @@ class Planner:
 
     def place(self, proposal_id: str, cand: Candidate, *, drift_nm, sigma_drift_nm: float,
               placed_for_s: float) -> Proposal:
-        """Give a candidate its id and place it where the drift will have moved it."""
+        """Give a candidate its id and place it where the drift will have moved it.
+
+        The region grows by ``drift_margin_sigma x sigma_drift_nm`` on every
+        side: the feature lies within it at that confidence.
+        """
         d = np.asarray(drift_nm, float).reshape(2)
         region = shift_region(cand.specimen_region, d)
+        grow = 2.0 * self.drift_margin_sigma * max(float(sigma_drift_nm), 0.0)
+        if grow > 0:   # never past max_size_nm (an unknown drift has an infinite sigma)
+            w, h = region["width_nm"], region["height_nm"]
+            region = {**region, "width_nm": min(w + grow, max(w, self.max_size_nm)),
+                      "height_nm": min(h + grow, max(h, self.max_size_nm))}
         shape, px = scan_shape(region, pixel_size_pm=self.pixel_size_pm,
                                max_side_px=self.max_side_px)
         return Proposal(id=proposal_id, candidate=cand, region=region,
@@ -255,7 +335,7 @@ class Planner:
                         dwell_time_us=float(self.dwell_time_us), shape_px=shape)
 
     def commit(self, proposal: Proposal) -> None:
-        self.add_proposed(proposal.candidate.specimen_region)
+        self.add_proposed(proposal.candidate.specimen_region, proposal.candidate.kinds)
 
     def replace_placement(self, proposal: Proposal, *, drift_nm, sigma_drift_nm: float,
                           placed_for_s: float) -> Proposal:
@@ -266,8 +346,19 @@ class Planner:
 
     def status(self) -> dict:
         return {"proposed": self.n_proposed, "skipped_visited": self.n_skipped_visited,
+                "same_feature": self.n_same_feature,
                 "over_budget": self.n_over_budget, "below_score": self.n_below_score,
                 "budget_left": max(0, self.max_per_session - self.n_proposed)}
+
+
+def _line(region: dict):
+    """``(centre, unit long axis, half width)`` of an elongated region (aspect >= 2), else None."""
+    w, h = region["width_nm"], region["height_nm"]
+    if max(w, h) < 2.0 * min(w, h):
+        return None
+    t = np.radians(region["rotation_deg"] + (0.0 if w >= h else 90.0))
+    return (np.array([region["center_x_nm"], region["center_y_nm"]]),
+            np.array([np.cos(t), np.sin(t)]), 0.5 * min(w, h))
 
 
 def proposal_from_json(d: dict) -> Proposal:

@@ -430,6 +430,45 @@ def _proposals_section(session: SessionData, t0) -> Section:
                    tables=[t, dt])
 
 
+def _dose_section(session: SessionData, summaries: dict[str, dict], figs: _Figures) -> Section:
+    """The cumulative dose map and each proposal's dose (livequant/report/dose.py)."""
+    from livequant.report.dose import dose_map_figure, session_dose_map
+
+    complete = {f.frame_id: f.complete_at for f in session.frames if f.frame_id}
+    dm, info = session_dose_map(summaries, session.drift, complete_at=complete)
+    budgets = [payload_get(p, "dose_budget_e_per_a2") for p in session.proposals]
+    budget = next((b for b in budgets if b), None)
+    fig = dose_map_figure(dm, session.proposals, budget_e_per_a2=budget)
+    caption = (f"Cumulative electron dose of the {info['frames']} frame(s) with a beam current "
+               "(sidecar beam_current_pa or frame_defaults.beam_current_pa) and dwell: I t / "
+               "(e p²) per frame over its footprint, moved into specimen coordinates by the "
+               "drift recorded for it; proposed regions drawn where they sit on the specimen. "
+               "Probe tails and scan overshoot are not counted: a lower bound near frame "
+               "edges, from nominal values.")
+    if info["without_dose"]:
+        caption += (f" {info['without_dose']} frame(s) had no beam current or dwell and are "
+                    "not counted.")
+    rows = [[str(p["id"]), p["state"], _num_or_blank(payload_get(p, "dose_e_per_a2")),
+             _num_or_blank(payload_get(p, "dose_prior_max_e_per_a2")),
+             _num_or_blank(payload_get(p, "dose_after_max_e_per_a2")),
+             {True: "yes", False: "no"}.get(payload_get(p, "dose_budget_exceeded"), "-"),
+             payload_get(p, "auto_accept_blocked", default="") or ""]
+            for p in session.proposals]
+    t = Table("proposal-doses", "Dose of each proposal (e/Å²; estimates from nominal current "
+              "and dwell)", ["id", "state", "this scan", "most exposed part before",
+                             "most exposed part after", "over budget", "not auto-accepted "
+                             "because"], rows, empty_text="no proposals were made")
+    paras = [f"Highest cumulative dose on the map: {dm.summary()['max_e_per_a2']:.3g} e/Å²; "
+             f"one frame at most {info['max_frame_e_per_a2']:.3g} e/Å²."
+             + (f" Dose budget set for proposals: {budget:.3g} e/Å²." if budget else
+                " No dose budget was set (proposals.dose_budget_e_per_a2).")]
+    return Section("dose", "Electron dose", paragraphs=paras, cautions=[
+        "Dose limits are the operator's and the facility's to set; the numbers here are "
+        "estimates from the nominal beam current and dwell, not a measurement, and the "
+        "instrument's own readings and interlocks come first."], tables=[t],
+        figures=[figs.save(fig, "session-dose", caption)])
+
+
 def _num_or_blank(v):
     try:
         f = float(v)
@@ -748,6 +787,7 @@ SECTIONS_BEFORE_FRAMES: list[tuple[str, Callable[[ReportContext], list[Section]]
     ("overview and drift", lambda c: [_overview_section(c.session, c.summaries, c.figs, c.t0)]),
     ("flags", lambda c: [_flags_section(c.session, c.t0)]),
     ("proposals", lambda c: [_proposals_section(c.session, c.t0)]),
+    ("electron dose", lambda c: [_dose_section(c.session, c.summaries, c.figs)]),
 ]
 SECTIONS_AFTER_FRAMES: list[tuple[str, Callable[[ReportContext], list[Section]]]] = [
     ("histograms", lambda c: [_histogram_section(

@@ -132,6 +132,40 @@ class SessionView:
 _VISITED_KEYS = ("center_x_nm", "center_y_nm", "width_nm", "height_nm")
 
 
+def imaging_condition(meta) -> str:
+    """The imaging condition a frame's statistics belong to: detector, pixel size, dwell,
+    scan rotation.
+
+    Noise and fitting bias of every descriptor depend on the dose per column
+    and the sampling, so a survey frame at 20 pm and 2 us and a revisit at
+    10 pm and 4 us are judged against their own kind (3 significant digits).
+    The scan rotation matters too: drift during the slow scan stretches the
+    lattice along the slow axis (0.012 nm/s over a 6.3 s, 10.3 nm tall frame:
+    -0.7 %), so a revisit turned 90 degrees to follow a wall reads ``a_pm``
+    2.7 pm low against survey frames -- measured on the demo, where it raised
+    every ``a_pm`` anomaly beside the wall.
+    """
+    px = getattr(meta, "pixel_size_pm", None)
+    dwell = getattr(meta, "dwell_time_us", None)
+    det = getattr(meta, "detector", None) or "?"
+    rot = getattr(meta, "scan_rotation_deg", None) or 0.0
+    return (f"{det} {px:.3g} pm" if px else f"{det} ? pm") + \
+        (f" {dwell:.3g} us" if dwell else " ? us") + f" {round(rot) % 360:d} deg"
+
+
+class _Buffers:
+    """Ring buffers of recent cell values of every tracked descriptor (one condition)."""
+
+    def __init__(self, max_cells: int):
+        self.max_cells = max_cells
+        self.values = {name: np.full(max_cells, np.nan) for name in _BUFFERED}
+        self.next = {name: 0 for name in _BUFFERED}
+        self.filled = {name: 0 for name in _BUFFERED}
+        self.total = {name: 0 for name in _BUFFERED}
+        self.stats: dict[str, DescriptorStats] = {
+            name: DescriptorStats(math.nan, math.nan, 0, 0) for name in TRACKED_DESCRIPTORS}
+
+
 class SessionContext:
     """The daemon's record of the session, updated after each frame's rules ran.
 
@@ -146,23 +180,23 @@ class SessionContext:
         (a ring buffer: memory stays bounded in a long session).
     history_visited : int
         Visited regions kept.
+    max_conditions : int
+        Imaging conditions (:func:`imaging_condition`) whose statistics are
+        kept apart; the least recently used is dropped beyond this.
     """
 
     def __init__(self, *, history: int = 500, max_cells: int = 50_000,
-                 history_visited: int = 10_000):
+                 history_visited: int = 10_000, max_conditions: int = 16):
         if history < 1 or max_cells < 1:
             raise ValueError(f"`history` and `max_cells` must be >= 1, got {history}, {max_cells}")
         self._flags: deque[Flag] = deque(maxlen=int(history))
         self._visited: deque[Mapping] = deque(maxlen=int(history_visited))
         self._max_cells = int(max_cells)
-        self._buffers = {name: np.full(self._max_cells, np.nan) for name in _BUFFERED}
-        self._next = {name: 0 for name in _BUFFERED}   # write position
-        self._filled = {name: 0 for name in _BUFFERED}
-        self._total = {name: 0 for name in _BUFFERED}
-        self._stats: dict[str, DescriptorStats] = {
-            name: DescriptorStats(math.nan, math.nan, 0, 0) for name in TRACKED_DESCRIPTORS}
+        self._max_conditions = int(max_conditions)
+        self._conditions: dict[str, _Buffers] = {}   # insertion order = least recent first
+        self._last_condition: str | None = None
         self._n_frames = 0
-        self._view: SessionView | None = None
+        self._views: dict[str | None, SessionView] = {}
         self._tracks: Mapping = types.MappingProxyType({})
 
     @classmethod
@@ -170,10 +204,16 @@ class SessionContext:
         return cls(history=settings.rules.history, max_cells=settings.rules.stats_max_cells)
 
     def update(self, view: FrameView, flags: Sequence[Flag]) -> None:
-        """Add one frame's cells to the statistics and its flags to the history."""
+        """Add one frame's cells to its imaging condition's statistics, its flags to the history."""
         self._n_frames += 1
         self._flags.extend(flags)
         cells = view.cells
+        key = imaging_condition(view.meta)
+        buf = self._conditions.pop(key, None) or _Buffers(self._max_cells)
+        self._conditions[key] = buf                      # most recent last
+        while len(self._conditions) > self._max_conditions:
+            self._conditions.pop(next(iter(self._conditions)))
+        self._last_condition = key
         if cells is not None:
             for name in TRACKED_DESCRIPTORS:
                 if name not in cells:
@@ -186,16 +226,16 @@ class SessionContext:
                     ok &= np.isfinite(sigma)
                 if not ok.any():
                     continue
-                self._add_values(name, values[ok])
+                self._add_values(buf, name, values[ok])
                 if sigma is not None:
-                    self._add_values("sigma_" + name, sigma[ok])
-                self._refresh(name)
-        self._view = None
+                    self._add_values(buf, "sigma_" + name, sigma[ok])
+                self._refresh(buf, name)
+        self._views = {}
 
-    def _add_values(self, name: str, v: np.ndarray) -> None:
-        self._total[name] += int(v.size)
+    def _add_values(self, b: _Buffers, name: str, v: np.ndarray) -> None:
+        b.total[name] += int(v.size)
         v = v[-self._max_cells:]
-        buf, pos = self._buffers[name], self._next[name]
+        buf, pos = b.values[name], b.next[name]
         end = pos + v.size
         if end <= self._max_cells:
             buf[pos:end] = v
@@ -203,17 +243,17 @@ class SessionContext:
             k = self._max_cells - pos
             buf[pos:] = v[:k]
             buf[:end - self._max_cells] = v[k:]
-        self._next[name] = end % self._max_cells
-        self._filled[name] = min(self._filled[name] + v.size, self._max_cells)
+        b.next[name] = end % self._max_cells
+        b.filled[name] = min(b.filled[name] + v.size, self._max_cells)
 
-    def _refresh(self, name: str) -> None:
-        data = self._buffers[name][:self._filled[name]]
+    def _refresh(self, b: _Buffers, name: str) -> None:
+        data = b.values[name][:b.filled[name]]
         med = float(np.median(data))
         scale = MAD_TO_SIGMA * float(np.median(np.abs(data - med)))
         sig = math.nan
         if name in _WITH_SIGMA:
-            sig = float(np.median(self._buffers["sigma_" + name][:self._filled[name]]))
-        self._stats[name] = DescriptorStats(med, scale, int(data.size), self._total[name], sig)
+            sig = float(np.median(b.values["sigma_" + name][:b.filled[name]]))
+        b.stats[name] = DescriptorStats(med, scale, int(data.size), b.total[name], sig)
 
     def add_visited(self, region_stage: Mapping) -> None:
         """Record a stage region already imaged or proposed (keys of :class:`SessionView`)."""
@@ -224,21 +264,102 @@ class SessionContext:
         entry = {k: float(region_stage[k]) for k in _VISITED_KEYS}
         entry["rotation_deg"] = float(region_stage.get("rotation_deg", 0.0))
         self._visited.append(types.MappingProxyType(entry))
-        self._view = None
+        self._views = {}
 
     def set_tracks(self, tracks: Mapping) -> None:
         """The feature tracker's view of the frame about to be evaluated (JSON-like)."""
         self._tracks = types.MappingProxyType(dict(tracks))
-        self._view = None
+        self._views = {}
 
-    def readonly(self) -> SessionView:
-        """A frozen snapshot (cached until the next update)."""
-        if self._view is None:
-            self._view = SessionView(n_frames=self._n_frames,
-                                     stats=types.MappingProxyType(dict(self._stats)),
-                                     flags=tuple(self._flags), visited=tuple(self._visited),
-                                     tracks=self._tracks)
-        return self._view
+    @property
+    def conditions(self) -> list[str]:
+        """Imaging conditions with statistics, least recently updated first."""
+        return list(self._conditions)
+
+    def readonly(self, condition: str | None = None) -> SessionView:
+        """A frozen snapshot (cached until the next update).
+
+        ``stats`` are those of `condition` (:func:`imaging_condition` of the
+        frame about to be judged; empty for a condition not seen before), or
+        of the most recently updated condition when None.
+        """
+        key = self._last_condition if condition is None else condition
+        view = self._views.get(key)
+        if view is None:
+            buf = self._conditions.get(key) if key is not None else None
+            stats = dict(buf.stats) if buf is not None else {
+                name: DescriptorStats(math.nan, math.nan, 0, 0) for name in TRACKED_DESCRIPTORS}
+            view = self._views[key] = SessionView(
+                n_frames=self._n_frames, stats=types.MappingProxyType(stats),
+                flags=tuple(self._flags), visited=tuple(self._visited), tracks=self._tracks)
+        return view
+
+
+# ---------------------------------------------------------------- one feature, one flag
+
+def _as_box(region, grow_px: float = 0.0) -> dict:
+    return {"center_x_nm": region.x_px, "center_y_nm": region.y_px,
+            "width_nm": region.width_px + 2 * grow_px, "height_nm": region.height_px + 2 * grow_px,
+            "rotation_deg": region.angle_deg}
+
+
+def attach_anomalies(flags: Sequence[Flag], *, margin_px: float = 0.0,
+                     min_covered: float = 0.5) -> list[Flag]:
+    """Anomalies are what no typed rule explains: fold those on a typed flag into it.
+
+    An ``anomaly`` flag whose centre lies inside a typed flag's region (any
+    other kind, grown by `margin_px` on every side), or of whose area those
+    grown regions together cover at least `min_covered`, is dropped; the typed flag
+    (the one covering most of it) records it in its evidence as
+    ``attached_anomalies`` (descriptor and direction of each) and
+    ``n_attached_anomalies``.  A wall flanked by a fitting artefact, or a
+    core with a suppressed displacement, is then one flag, not three.
+    """
+    from livequant.proposals.geometry import overlap_area
+
+    typed = [k for k, f in enumerate(flags) if f.kind != "anomaly"]
+    if not typed:
+        return list(flags)
+    grown = {k: _as_box(flags[k].region, margin_px) for k in typed}
+    attached: dict[int, list[str]] = {}
+    keep = []
+    for f in flags:
+        if f.kind != "anomaly":
+            keep.append(f)
+            continue
+        box = _as_box(f.region)
+        area = box["width_nm"] * box["height_nm"]
+        best, best_cover, total, inside_any = None, 0.0, 0.0, False
+        for k in typed:
+            g = grown[k]
+            t = math.radians(g["rotation_deg"])
+            dx, dy = f.region.x_px - g["center_x_nm"], f.region.y_px - g["center_y_nm"]
+            u, v = dx * math.cos(t) + dy * math.sin(t), -dx * math.sin(t) + dy * math.cos(t)
+            inside = abs(u) <= g["width_nm"] / 2 and abs(v) <= g["height_nm"] / 2
+            cover = overlap_area(box, g) / area if area > 0 else 0.0
+            total += cover
+            inside_any |= inside
+            if (inside or cover > 0) and (best is None or (inside, cover) > best_cover):
+                best, best_cover = k, (inside, cover)
+        # Covered by one typed flag, or by several together (a layer between two
+        # interfaces: the electrode's missing polarization is the interfaces' finding).
+        if not (inside_any or total >= min_covered):
+            best = None
+        if best is None:
+            keep.append(f)
+        else:
+            e = f.evidence
+            attached.setdefault(best, []).append(
+                f"{e.get('descriptor', '?')} {e.get('direction', '')}".strip())
+    out = []
+    for f in keep:
+        k = next((k for k in attached if flags[k] is f), None)
+        if k is not None:
+            f = dataclasses.replace(f, evidence={**f.evidence,
+                                                 "attached_anomalies": list(attached[k]),
+                                                 "n_attached_anomalies": len(attached[k])})
+        out.append(f)
+    return out
 
 
 # ---------------------------------------------------------------- the manager
@@ -486,7 +607,13 @@ class RuleManager:
             state.flags += len(flags)
             out.extend(dataclasses.replace(f, rule=state.name, frame_id=view.frame_id)
                        for f in flags)
-        return out
+        kinds = {f.kind == "anomaly" for f in out}
+        if kinds != {True, False}:
+            return out          # nothing to fold: no anomaly, or no typed flag
+        grid = view.cell_grid if view.cells is not None and "i" in view.cells else None
+        cell_px = float(grid.cell_px) if grid is not None and math.isfinite(grid.cell_px) else 0.0
+        return attach_anomalies(out, margin_px=self.settings.rules.anomaly_attach_margin_cells
+                                * cell_px)
 
     @staticmethod
     def _validate(result) -> list[Flag]:

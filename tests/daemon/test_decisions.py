@@ -94,7 +94,13 @@ def test_flags_proposals_accept_reject_through_ledger_events_and_socket(tmp_path
             assert st["center_y_nm"] == pytest.approx(20 + (40 - 127.5) * 0.078125)
             ep = d.endpoints["commands"]
             listed = send_command(ep, {"cmd": "proposals", "state": "open"})
-            assert listed["ok"] and [p["score"] for p in listed["proposals"]] == [0.9, 0.6]
+            assert listed["ok"] and [p["kinds"] for p in listed["proposals"]] == [["vortex"],
+                                                                                  ["anomaly"]]
+            # Ranked by strength x novelty / dose cost; this frame's own (low) dose costs little.
+            pri = [p["priority"] for p in listed["proposals"]]
+            assert pri == [p["score"] for p in listed["proposals"]]
+            assert 0.85 < pri[0] < 0.9 and 0.55 < pri[1] < 0.6
+            assert all(p["dose_e_per_a2"] > 0 for p in listed["proposals"])
             assert "dose budget" in listed["caution"]
             best, other = listed["proposals"][0]["id"], listed["proposals"][1]["id"]
 
@@ -237,7 +243,10 @@ def test_auto_accept_closes_the_loop_with_the_simulator_in_serve_mode(tmp_path, 
     eng = ScanEngine(specimen, seed=5, drift=SimDrift((0.01, 0.005), 0.0))
     d, watch = _daemon(tmp_path, settings=_settings(**{
         "drift.clock": "frames", "proposals.lead_time_s": 0.0, "proposals.auto_accept": True,
-        "proposals.pixel_size_pm": 40.0}))
+        "proposals.pixel_size_pm": 40.0,
+        # One frame, no drift pairs: a core would normally wait for the drift model
+        # (tests/daemon/test_decision_quality_units.py); here the drift is known to be slow.
+        "proposals.auto_accept_min_drift_pairs": 0}))
     sink = FolderSink(watch, truth_dir=tmp_path / "truth", fmt="npy")
     served: list = []
     stop = threading.Event()

@@ -75,7 +75,8 @@ def test_scan_request_follows_the_simulator_schema_and_round_trips():
     # The flag's centre on the stage, minus the drift then, plus the drift predicted.
     centre = g.px_to_stage(100, 200) - [0.5, -0.5] + [1.0, 0.0]
     assert (req.center_x_nm, req.center_y_nm) == pytest.approx(tuple(centre))
-    assert req.fov_nm == pytest.approx(50 * 0.02 + 2.0 if 50 * 0.02 + 2 > 4 else 4.0)
+    # The clamped 4 nm region grows by 3 drift sigmas on each side (drift_margin_sigma).
+    assert req.fov_nm == pytest.approx(4.0 + 2 * 3.0 * 0.1)
     assert req.extra["caution"] == CAUTION
     assert proposal_from_json(prop.to_json()) == prop
 

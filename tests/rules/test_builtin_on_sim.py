@@ -85,8 +85,12 @@ def test_flagged_wall_lies_on_the_true_wall(demo, settings, manager, center_nm, 
                       math.sin(math.radians(f.region.angle_deg))])
     assert abs(along @ d) > math.cos(math.radians(10.0))
     assert 0 < f.score <= 1 and f.region.height_px >= 2 * _cell_px(acq) * 0.9
-    # No core is claimed on a straight wall.
+    # No core is claimed on a straight wall: not by the rules, not by the analysis's own
+    # winding output (summary.json), which uses the rule's loop search (one topology).
     assert not _by_kind(flags, "vortex") and not _by_kind(flags, "antivortex")
+    topo = view.summary["cells"]["topology"]
+    assert topo["cores"] == [] and topo["by_kind"] == {}
+    assert topo["n_positive"] == topo["n_negative"] == topo["total_winding"] == 0
 
 
 @pytest.mark.parametrize("which, seed", [(0, 3), (1, 4)])

@@ -16,7 +16,8 @@ What it flags
     Boundaries are taken in order of significance, at least ``window_rows``
     rows apart; the interface lies where the row profile crosses half-way
     between the two levels (interpolated between rows).  The same interface
-    seen in several descriptors is one flag.
+    seen in several descriptors is one flag, also when they step at rows up to
+    ``2 window_rows - 1/2`` apart (the most significant places it).
 
 Region
     A band along the interface, over the cells either side of it,
@@ -163,9 +164,14 @@ class InterfaceRule:
         cfg = self.cfg
         found.sort(key=lambda f: -f[2])
         groups: list[list] = []
+        # Steps of any descriptors on one axis closer than 2 W - 1/2 rows share rows of their
+        # windows: this rule cannot tell them apart, and they are one interface whose
+        # descriptors change over different widths (a lattice parameter relaxing over a few
+        # cells beside a sharp change of column intensity was flagged twice).
+        near_rows = 2 * cfg.window_rows - 0.5
         for f in found:
             for g in groups:
-                if g[0][0] == f[0] and abs(g[0][1] - f[1]) < 1.5:
+                if g[0][0] == f[0] and abs(g[0][1] - f[1]) < near_rows:
                     g.append(f)
                     break
             else:

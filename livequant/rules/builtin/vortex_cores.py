@@ -46,113 +46,14 @@ Evidence
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
-from scipy import ndimage
 
-from livequant.analysis.topology import _wrap  # the same angle convention as the cells
+from livequant.analysis.topology import find_loop_cores, loop_windings  # shared with the cells
 from livequant.config import VortexRuleSettings
 from livequant.rules.hookspecs import hookimpl
 from livequant.rules.types import Flag, Region
 
 __all__ = ["VortexCoreRule", "loop_windings"]
-
-
-def _perimeter(L: int) -> np.ndarray:
-    """Offsets (di, dj) of a square loop of side L, counter-clockwise for a right-handed basis."""
-    k = np.arange(L)
-    return np.concatenate([np.column_stack([k, np.zeros(L, int)]),
-                           np.column_stack([np.full(L, L), k]),
-                           np.column_stack([L - k, np.full(L, L)]),
-                           np.column_stack([np.zeros(L, int), L - k])])
-
-
-def loop_windings(ux, uy, *, loop_cells: int = 1, valid=None, max_step_rad: float = np.pi,
-                  handedness: int = 1) -> np.ndarray:
-    """Winding number of every square loop of side `loop_cells` on a gridded field.
-
-    Parameters
-    ----------
-    ux, uy : ndarray, shape (ni, nj)
-        The field on the cell grid (NaN where no cell).
-    loop_cells : int
-        Side of the loops, cells.
-    valid : ndarray of bool, shape (ni, nj), optional
-        Cells whose direction counts.
-    max_step_rad : float
-        A loop whose direction turns by more than this between two
-        neighbouring cells on it is invalid (NaN).
-    handedness : {1, -1}
-
-    Returns
-    -------
-    ndarray, shape (ni - L, nj - L)
-        Integer-valued windings, NaN for invalid loops; element ``[a, b]`` is
-        the loop whose first corner is grid cell ``(a, b)``.
-    """
-    ux = np.asarray(ux, float)
-    uy = np.asarray(uy, float)
-    L = int(loop_cells)
-    ni, nj = ux.shape
-    if ni <= L or nj <= L:
-        return np.full((max(ni - L, 0), max(nj - L, 0)), np.nan)
-    ok = np.isfinite(ux) & np.isfinite(uy) & ((ux != 0) | (uy != 0))
-    if valid is not None:
-        ok &= np.asarray(valid, bool)
-    theta = np.arctan2(uy, ux)
-    a, b = np.meshgrid(np.arange(ni - L), np.arange(nj - L), indexing="ij")
-    offsets = _perimeter(L)
-    # Loop over the 4L perimeter steps only; every loop position is done at once.
-    th = np.stack([theta[a + di, b + dj] for di, dj in offsets], axis=-1)
-    good = np.logical_and.reduce([ok[a + di, b + dj] for di, dj in offsets])
-    steps = _wrap(np.diff(np.concatenate([th, th[..., :1]], axis=-1), axis=-1))
-    good &= np.all(np.abs(steps) <= max_step_rad, axis=-1)
-    w = np.round(steps.sum(axis=-1) / (2.0 * np.pi)) * handedness
-    return np.where(good, w, np.nan)
-
-
-def _box_mean(values, ok, size: int):
-    """Mean over a size x size box of the cells present, and how many there were.
-
-    Defined where at least half the box has cells, so an isolated missing
-    cell (a B column not found at low dose) is bridged by its neighbours
-    instead of breaking every loop through it.
-    """
-    if size <= 1:
-        return np.where(ok, values, np.nan), np.where(ok, 1.0, 0.0)
-    k = np.ones((size, size))
-    n = ndimage.convolve(ok.astype(float), k, mode="constant")
-    s = ndimage.convolve(np.where(ok, values, 0.0), k, mode="constant")
-    enough = n >= 0.5 * size * size
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(enough, s / n, np.nan), np.where(enough, n, 0.0)
-
-
-def _core_position(x_mean, y_mean, winding, radius_px, x, y, dx, dy):
-    """The zero of the affine fit ``u = A r + c`` to the cells near the loops' mean centre.
-
-    Near a core of winding +-1 the field is to first order ``A (r - r0)`` with
-    ``sign(det A)`` the winding, so ``r0 = -A^-1 c``.  The fit uses the
-    unsmoothed displacements within `radius_px`, symmetric about the core
-    whatever subset of the loops passed the validity gates (their mean centre
-    is pulled towards the valid side).  Falls back to the mean centre when the
-    fit is not a core of that winding or lands outside the neighbourhood.
-    """
-    near = np.hypot(x - x_mean, y - y_mean) <= radius_px
-    near &= np.isfinite(x) & np.isfinite(y) & np.isfinite(dx) & np.isfinite(dy)
-    if near.sum() < 6:
-        return x_mean, y_mean
-    design = np.column_stack([x[near] - x_mean, y[near] - y_mean, np.ones(near.sum())])
-    coef, *_ = np.linalg.lstsq(design, np.column_stack([dx[near], dy[near]]), rcond=None)
-    a = coef[:2].T                      # rows: (du_x/dx, du_x/dy), (du_y/dx, du_y/dy)
-    det = float(np.linalg.det(a))
-    if not np.isfinite(det) or np.sign(det) != winding:
-        return x_mean, y_mean
-    r0 = np.linalg.solve(a, -coef[2])
-    if not np.hypot(*r0) <= radius_px:
-        return x_mean, y_mean
-    return float(x_mean + r0[0]), float(y_mean + r0[1])
 
 
 class VortexCoreRule:
@@ -173,43 +74,13 @@ class VortexCoreRule:
         if cells is None or len(cells["i"]) < (L + 1) ** 2:
             return []
         grid = view.cell_grid
-        dx, dy = grid.dense(cells["dx_pm"]), grid.dense(cells["dy_pm"])
-        sd = grid.dense(cells["sigma_d_pm"])
-        ok = np.isfinite(dx) & np.isfinite(dy) & np.isfinite(sd) & (sd > 0)
-        ux, n = _box_mean(dx, ok, cfg.smooth_cells)
-        uy, _ = _box_mean(dy, ok, cfg.smooth_cells)
-        # The sigma of a box mean of n cells (neighbouring cells share corners, so this is a
-        # little optimistic; the threshold is a gate, not a significance).
-        s_mean, _ = _box_mean(sd, ok, cfg.smooth_cells)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            snr = np.hypot(ux, uy) / (s_mean / np.sqrt(np.maximum(n, 1.0)))
-        valid = np.isfinite(snr) & (snr >= cfg.min_snr)
-        w = loop_windings(ux, uy, loop_cells=L, valid=valid,
-                          max_step_rad=math.radians(cfg.max_step_deg),
-                          handedness=grid.handedness)
-        if w.size == 0:
-            return []
-        x, y = grid.dense(cells["x_px"]), grid.dense(cells["y_px"])
-        ni, nj = w.shape
-        cx = (x[:ni, :nj] + x[L:, :nj] + x[:ni, L:] + x[L:, L:]) / 4.0
-        cy = (y[:ni, :nj] + y[L:, :nj] + y[:ni, L:] + y[L:, L:]) / 4.0
-        flags = []
-        for winding, kind in ((1, "vortex"), (-1, "antivortex")):
-            hit = (w == winding) & np.isfinite(cx) & np.isfinite(cy)
-            labels, n_lab = ndimage.label(hit, structure=np.ones((3, 3)))
-            if n_lab == 0:
-                continue
-            idx = np.arange(1, n_lab + 1)
-            count = ndimage.sum_labels(hit, labels, idx)
-            mx = ndimage.mean(cx, labels, idx)
-            my = ndimage.mean(cy, labels, idx)
-            for k in np.flatnonzero(count >= cfg.min_loops):
-                # Handedness: the winding is measured in the (i, j) loop order; the affine
-                # fit's determinant is in (x, y), where it carries the winding's sign.
-                px_, py_ = _core_position(float(mx[k]), float(my[k]), winding,
-                                          (0.5 * L + 1.0) * grid.cell_px, x, y, dx, dy)
-                flags.append(self._flag(kind, winding, px_, py_, int(count[k]), grid, snr,
-                                        cells))
+        cores, snr = find_loop_cores(
+            grid.dense(cells["x_px"]), grid.dense(cells["y_px"]), grid.dense(cells["dx_pm"]),
+            grid.dense(cells["dy_pm"]), grid.dense(cells["sigma_d_pm"]), cell_size=grid.cell_px,
+            loop_cells=L, smooth_cells=cfg.smooth_cells, min_snr=cfg.min_snr,
+            max_step_deg=cfg.max_step_deg, min_loops=cfg.min_loops, handedness=grid.handedness)
+        flags = [self._flag(c.kind, c.winding, c.x, c.y, c.n_loops, grid, snr, cells)
+                 for c in cores]
         flags.sort(key=lambda f: -f.score)
         return flags[:cfg.max_flags]
 

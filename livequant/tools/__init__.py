@@ -1,0 +1,1 @@
+"""Developer tools: scoring sessions against the simulated instrument's truth."""
