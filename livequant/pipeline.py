@@ -227,7 +227,7 @@ def limit_threads(n_threads: int) -> int:
 
 
 def analyze_frame(frame: Frame, settings: Settings | None = None, *,
-                  scan_drift_nm_per_s=None) -> FrameResult:
+                  scan_drift_nm_per_s=None, min_noise_scale: float = 0.0) -> FrameResult:
     """Run lattice finding, column detection, site assignment and refinement.
 
     Parameters
@@ -242,6 +242,11 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
         (:mod:`livequant.analysis.scan_drift`) before the lattice and the cell
         descriptors are computed; ``summary()["scan_drift_correction"]`` says
         what was done.  The GPA strain works on the image and is not corrected.
+    min_noise_scale : float
+        Floor of the column fit's noise scale (see
+        :func:`~livequant.analysis.refine.refine_columns`): 1.0 for the
+        registered sum of a series, whose resampled noise is smoother than
+        Poisson noise of the same counts.
 
     Returns
     -------
@@ -312,6 +317,7 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
         joint_neighbours=cfg.refine.joint_neighbours,
         weighting=cfg.refine.weighting,
         gain=cfg.refine.gain_counts_per_electron,
+        min_noise_scale=min_noise_scale,
     )
     timings["refine"] = time.perf_counter() - t0
 

@@ -116,7 +116,8 @@ def gaussian_model(theta, rows, cols, *, elliptical=True, jacobian=False):
 
 def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px, window_fraction=0.3,
                    max_iterations=30, tolerance_px=1e-4, elliptical=True, joint_neighbours=True,
-                   weighting="poisson", gain=1.0, neighbour_passes=2) -> Columns:
+                   weighting="poisson", gain=1.0, neighbour_passes=2,
+                   min_noise_scale=0.0) -> Columns:
     """Fit every column with a 2D Gaussian plus a constant local background.
 
     Parameters
@@ -147,6 +148,12 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
         Detector counts per electron, used for the Poisson variance.  The
         reported uncertainties are further scaled by the frame's median
         reduced chi-square, so a wrong gain does not make them wrong.
+    min_noise_scale : float
+        Floor of that scale.  An image resampled and summed from a series has
+        its pixel noise smoothed (lower variance, correlated between pixels)
+        without gaining information; with 1.0 its uncertainties stay the
+        Poisson bound of the summed counts instead of shrinking with the
+        smoothing.
 
     Returns
     -------
@@ -201,7 +208,8 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
         theta[sub] = th_sub
         for key in state:
             state[key][sub] = st_sub[key]
-    return _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius)
+    return _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius,
+                       min_noise_scale)
 
 
 def starting_parameters(image, positions_px, *, spacing_px, window_fraction=0.3, sublattice=None,
@@ -385,7 +393,8 @@ def _collapsed(minor_width, labels, converged) -> np.ndarray:
     return out
 
 
-def _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius):
+def _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius,
+                min_noise_scale=0.0):
     n = len(theta)
     n_par = theta.shape[1]
     converged = state["converged"].copy()
@@ -400,7 +409,7 @@ def _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radiu
         # true gain / excess noise; it scales every covariance alike.
         scale_ok = converged & np.isfinite(chi2)
         scale = float(np.median(chi2[scale_ok])) if scale_ok.any() else 1.0
-        cov = cov * max(scale, 1e-12)
+        cov = cov * max(scale, min_noise_scale, 1e-12)
     else:
         cov = cov * chi2[:, None, None]
     diag = np.einsum("kii->ki", cov)

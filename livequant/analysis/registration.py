@@ -110,8 +110,8 @@ def _hann(shape) -> np.ndarray:
     return np.outer(np.hanning(shape[0]), np.hanning(shape[1]))
 
 
-def rigid_shift(reference, moving, *, upsample_factor: int = 20, bin_to_px: int | None = None
-                ) -> RigidShift:
+def rigid_shift(reference, moving, *, upsample_factor: int = 20, bin_to_px: int | None = None,
+                near_px=None, tie_fraction: float = 0.8) -> RigidShift:
     """Shift of `moving`'s content against `reference` by phase correlation.
 
     Both images have their mean removed and are multiplied by a Hann window
@@ -130,6 +130,13 @@ def rigid_shift(reference, moving, *, upsample_factor: int = 20, bin_to_px: int 
     bin_to_px : int, optional
         Sum blocks of pixels first so that the shorter side is at most this
         long (a coarse shift is all the per-line step needs).
+    near_px : (2,), optional
+        The shift expected (e.g. from the drift so far).  A crystal
+        correlates almost equally well at every lattice vector, so noise can
+        pick any of them; given `near_px`, the correlation peaks within
+        `tie_fraction` of the highest are candidates and the one nearest
+        `near_px` is taken (sub-pixel by a parabola; scikit-image's upsampled
+        refinement is used without `near_px`).
 
     Returns
     -------
@@ -151,10 +158,39 @@ def rigid_shift(reference, moving, *, upsample_factor: int = 20, bin_to_px: int 
     win = _hann(ref.shape)
     a = (ref - ref.mean()) * win
     m = (mov - mov.mean()) * win
-    shift, error, _ = phase_cross_correlation(a, m, upsample_factor=int(upsample_factor),
-                                              normalization=None)
-    # binning by b maps pixel centres c -> (c - (b - 1) / 2) / b; a shift scales by b
-    return RigidShift(shift_px=-np.asarray(shift, float) * b, error=float(error))
+    if near_px is None:
+        shift, error, _ = phase_cross_correlation(a, m, upsample_factor=int(upsample_factor),
+                                                  normalization=None)
+        # binning by b maps pixel centres c -> (c - (b - 1) / 2) / b; a shift scales by b
+        return RigidShift(shift_px=-np.asarray(shift, float) * b, error=float(error))
+    shift = _peak_near(a, m, np.asarray(near_px, float).reshape(2) / b, tie_fraction)
+    return RigidShift(shift_px=shift * b, error=float("nan"))
+
+
+def _peak_near(a, m, near, tie_fraction) -> np.ndarray:
+    """Of the cross-correlation peaks within `tie_fraction` of the highest, the one
+    nearest `near` (a lattice correlates almost equally well at every lattice
+    vector; the drift so far says which one is meant), to a fraction of a
+    pixel by a parabola through the peak and its neighbours along each axis."""
+    xc = np.fft.ifft2(np.fft.fft2(m) * np.conj(np.fft.fft2(a))).real
+    peaks = (xc == ndimage.maximum_filter(xc, size=3, mode="wrap")) & (
+        xc >= tie_fraction * xc.max())
+    idx = np.argwhere(peaks)
+    shape = np.array(xc.shape)
+    # wrap peak indices to signed shifts, then to the copy nearest `near`
+    sig = (idx + shape // 2) % shape - shape // 2
+    sig = sig + np.round((near - sig) / shape) * shape
+    k = int(np.argmin(np.hypot(*(sig - near).T)))
+    r, c = idx[k]
+    out = sig[k].astype(float)
+    for axis, (i0, j0) in enumerate(((r, c), (r, c))):
+        lo = xc[(i0 - 1) % shape[0], j0] if axis == 0 else xc[i0, (j0 - 1) % shape[1]]
+        hi = xc[(i0 + 1) % shape[0], j0] if axis == 0 else xc[i0, (j0 + 1) % shape[1]]
+        mid = xc[i0, j0]
+        den = lo - 2 * mid + hi
+        if den < 0:
+            out[axis] += 0.5 * (lo - hi) / den
+    return out
 
 
 def _bin(img: np.ndarray, b: int) -> np.ndarray:
@@ -382,29 +418,50 @@ def smooth_line_offsets(raw_px, variance_px2, *, smooth_lines: float = 32.0,
 
 
 def residual_chi2(reference, warped, valid, *, gain: float = 1.0, n_reference: int = 1,
-                  border_px: int = 4) -> float:
-    """Mean squared difference over the Poisson variance of the difference.
+                  border_px: int = 4, smooth_px: float = 2.0, n_bands: int = 8) -> float:
+    """How far the registered frame differs from the reference, in units of shot noise.
 
-    ``var = gain * reference * (1 + 1 / n_reference)``: the frame's shot noise
-    plus that of a reference averaged from `n_reference` frames (counts are
-    ``gain`` times electrons, as in the column fit).  Pixels within
-    `border_px` of the overlap's edge are left out.
+    Both are blurred by a Gaussian of `smooth_px` first: the shot noise drops
+    by ``4 pi smooth_px^2`` while a misplaced column, being as wide as the
+    probe, keeps most of its difference, so a moved specimen or a changed
+    focus stands out even at a few counts per pixel.  The noise variance of
+    the blurred difference is ``gain * level * (1 + 1 / n_reference) /
+    (4 pi smooth_px^2)`` (Poisson counts are ``gain`` times electrons, as in
+    the column fit; the reference averages `n_reference` frames).  The mean
+    ratio is taken in `n_bands` bands of scan lines and the largest is
+    returned, so a jump half-way through a frame is not diluted by its good
+    half.  About 1 for a frame of the same specimen (a little less: the
+    resampling smooths the frame's noise); well above 1 when the content
+    differs.  Pixels within `border_px` of the overlap's edge are left out.
     """
-    m = valid.copy()
+    m = np.asarray(valid, bool)
+    fill = float(np.nanmean(np.where(m, reference, np.nan))) if m.any() else 0.0
+    ref = np.where(m, reference, fill)
+    d = np.where(m, np.asarray(warped, float) - ref, 0.0)
+    factor = 1.0
+    if smooth_px > 0:
+        d = ndimage.gaussian_filter(d, smooth_px)
+        ref = ndimage.gaussian_filter(ref, smooth_px)
+        factor = 1.0 / (4.0 * math.pi * smooth_px**2)
+        border_px = max(int(border_px), int(math.ceil(3 * smooth_px)))
     if border_px > 0:
         m = ndimage.binary_erosion(m, iterations=int(border_px))
     if not m.any():
         return float("inf")
-    ref = np.asarray(reference, float)[m]
-    d = np.asarray(warped, float)[m] - ref
-    var = gain * np.maximum(ref, 1.0) * (1.0 + 1.0 / max(n_reference, 1))
-    return float(np.mean(d * d / var))
+    var = gain * np.maximum(ref, 1.0) * (1.0 + 1.0 / max(n_reference, 1)) * factor
+    ratio = np.where(m, d * d / var, 0.0)
+    rows = np.arange(ratio.shape[0])
+    band = np.minimum(rows * max(int(n_bands), 1) // ratio.shape[0], max(int(n_bands), 1) - 1)
+    num = np.bincount(band, weights=ratio.sum(axis=1))
+    den = np.bincount(band, weights=m.sum(axis=1).astype(float))
+    use = den >= max(16, 0.1 * den.max())
+    return float((num[use] / den[use]).max())
 
 
 def register_frame(reference, frame, *, n_reference: int = 1, gain: float = 1.0,
                    upsample_factor: int = 20, nonrigid: bool = True, iterations: int = 4,
                    smooth_lines: float = 32.0, smooth_px: float = 2.0,
-                   initial_shift_px=None) -> FrameRegistration:
+                   initial_shift_px=None, near_px=None) -> FrameRegistration:
     """Register `frame` to `reference`: rigid shift, then per-line offsets.
 
     Parameters
@@ -428,6 +485,9 @@ def register_frame(reference, frame, *, n_reference: int = 1, gain: float = 1.0,
         Gaussian blur (px) applied before measuring per-line offsets.
     initial_shift_px : (2,), optional
         Skip the phase correlation and start from this shift.
+    near_px : (2,), optional
+        The expected shift: of near-equal correlation peaks, the nearest is
+        taken (see :func:`rigid_shift`).
 
     Returns
     -------
@@ -442,7 +502,7 @@ def register_frame(reference, frame, *, n_reference: int = 1, gain: float = 1.0,
         # The per-line step refines the shift to a fraction of a pixel; the
         # rigid one only has to bring the frame within its reach.
         rigid = rigid_shift(ref, f, upsample_factor=2 if nonrigid else upsample_factor,
-                            bin_to_px=512 if nonrigid else None)
+                            bin_to_px=512 if nonrigid else None, near_px=near_px)
         shift, rigid_error = rigid.shift_px, rigid.error
     else:
         shift, rigid_error = np.asarray(initial_shift_px, float).reshape(2), float("nan")

@@ -138,6 +138,8 @@ class SeriesStack:
         self._times: list[float] = []
         self._shifts: list[np.ndarray] = []
         self._chi2: list[float] = []
+        self._jump_px = np.zeros(2)          # where the last settled jump put the specimen
+        self._pending_jump: np.ndarray | None = None
         self.records: list[MemberRecord] = []
 
     # ------------------------------------------------------------------ state
@@ -176,7 +178,7 @@ class SeriesStack:
             return None
         t = np.asarray(self._times)
         s = np.asarray(self._shifts)
-        return s.mean(axis=0) + v * (t_s - t.mean())
+        return s.mean(axis=0) + v * (t_s - t.mean()) + self._jump_px
 
     # ------------------------------------------------------------------ add
 
@@ -211,24 +213,37 @@ class SeriesStack:
             return rec
         ref = self.reference()
         ref = np.where(np.isfinite(ref), ref, np.nanmean(ref))
+        pred = self.predicted_shift_px(float(t_start_s))
+        near = pred if pred is not None else self._shifts[-1] + self._jump_px
         reg = register_frame(ref, img, n_reference=self.n_members, gain=self.gain,
-                             nonrigid=self.nonrigid, **self._reg)
+                             nonrigid=self.nonrigid, near_px=near, **self._reg)
         total = reg.total_shift_px
         line_rms = float(np.sqrt(((reg.line_offsets_px - reg.line_offsets_px.mean(axis=0))
                                   ** 2).sum(axis=1).mean()))
         reason, message = None, "registered"
-        pred = self.predicted_shift_px(float(t_start_s))
-        if pred is not None and np.hypot(*(total - pred)) > self.max_jump_px:
-            reason = REASON_JUMP
-            message = (f"shift ({total[0]:.1f}, {total[1]:.1f}) px is "
-                       f"{np.hypot(*(total - pred)):.1f} px from the drift's prediction "
-                       f"({pred[0]:.1f}, {pred[1]:.1f}); more than {self.max_jump_px:g} px: "
-                       "the specimen jumped")
-        elif reg.residual_chi2 > self.max_residual_chi2:
+        excess = None if pred is None else total - pred
+        if reg.residual_chi2 > self.max_residual_chi2:
             reason = REASON_RESIDUAL
             message = (f"residual {reg.residual_chi2:.2f} x the shot noise after registration, "
                        f"above {self.max_residual_chi2:g}: the image changed (specimen moved "
                        "within the frame, focus or dose changed)")
+        elif excess is not None and np.hypot(*excess) > self.max_jump_px:
+            if (self._pending_jump is not None
+                    and np.hypot(*(excess - self._pending_jump)) <= self.max_jump_px / 2):
+                # Two frames in a row agree on the new place: the specimen
+                # jumped and settled there.  Follow it.
+                self._jump_px = self._jump_px + excess
+                message = (f"the specimen settled {np.hypot(*excess):.1f} px from the drift's "
+                           "track after a jump; the track follows it from this frame on")
+                excess = np.zeros(2)
+            else:
+                reason = REASON_JUMP
+                message = (f"shift ({total[0]:.1f}, {total[1]:.1f}) px is "
+                           f"{np.hypot(*excess):.1f} px from the drift's prediction "
+                           f"({pred[0]:.1f}, {pred[1]:.1f}); more than {self.max_jump_px:g} px: "
+                           "the specimen jumped")
+        if reason is not None:
+            pass
         elif len(self._chi2) >= 2 and reg.residual_chi2 > self.max_residual_ratio * float(
                 np.median(self._chi2)):
             med = float(np.median(self._chi2))
@@ -237,13 +252,14 @@ class SeriesStack:
                        f"series' median {med:.2f}, above {self.max_residual_ratio:g}: the image "
                        "changed (specimen moved within the frame, focus or dose changed)")
         accepted = reason is None
+        self._pending_jump = excess if reason == REASON_JUMP else None
         if accepted:
             good = reg.valid
             self._sum[good] += reg.warped[good]
             self._count[good] += 1
             self._offsets.append(reg.line_offsets_px + reg.shift_px[None, :])
             self._times.append(float(t_start_s))
-            self._shifts.append(total)
+            self._shifts.append(total - self._jump_px)   # the drift track, jumps taken out
             self._chi2.append(reg.residual_chi2)
         rec = MemberRecord(frame_id, index, accepted, reason, message, float(t_start_s),
                            [float(v) for v in total], float(reg.residual_chi2), line_rms,
@@ -304,7 +320,8 @@ class SeriesStack:
                 info["drift_over_frame_px"] = [float(x) * rows * self.line_time_s for x in v]
             else:
                 v = None
-        rr, cc = np.broadcast_arrays(rr, cc)
+        rr = np.broadcast_to(rr, (rows, cols))
+        cc = np.broadcast_to(cc, (rows, cols))
         disp = max(float(np.abs(rr).max()), float(np.abs(cc).max()))
         if disp > 1e-9:
             filled = np.where(full, mean, mean[full].mean() if full.any() else 0.0)
