@@ -239,7 +239,13 @@ def warp_frame(frame, *, shift_px=(0.0, 0.0), line_offsets_px=None, extra_px=Non
 
 
 class _SmoothedReference:
-    """The reference blurred once, with its gradients (reused by every Gauss-Newton round)."""
+    """The reference blurred once along the lines, with its gradients (reused by every
+    Gauss-Newton round).
+
+    The blur runs along the scan lines only: across them it would mix the
+    offsets of neighbouring lines, and white line jitter would average away
+    before it is measured.
+    """
 
     def __init__(self, reference: np.ndarray, smooth_px: float, *, gain: float = 1.0,
                  n_reference: int = 1):
@@ -248,16 +254,24 @@ class _SmoothedReference:
         self.fill = float(np.nanmean(ref)) if np.isfinite(ref).any() else 0.0
         self.valid = np.isfinite(ref)
         r = np.where(self.valid, ref, self.fill)
-        self.r = ndimage.gaussian_filter(r, self.smooth_px) if self.smooth_px > 0 else r
+        self.r = self.blur(r)
         self.gy, self.gx = np.gradient(self.r)
         # Shot noise of the reference inflates sum(g g^T) and so shrinks every
         # Gauss-Newton step towards zero (errors in the variables).  Its
         # expected share per pixel: Poisson variance gain * level / n, through
-        # the blur (variance / (4 pi s^2), correlation exp(-d^2 / 4 s^2)) and
-        # the central difference: var * (1 - exp(-1 / s^2)) / (8 pi s^2).
+        # the blur along the line (variance / (2 sqrt(pi) s), correlation
+        # exp(-d^2 / 4 s^2)) and the central differences: along the line
+        # var_b (1 - exp(-1 / s^2)) / 2, across the lines var_b / 2.
         s_b = max(self.smooth_px, 0.5)
-        k = (1.0 - math.exp(-1.0 / s_b**2)) / (8.0 * math.pi * s_b**2)
-        self.noise_g2 = k * gain * np.maximum(self.r, 0.0) / max(int(n_reference), 1)
+        var = gain * np.maximum(self.r, 0.0) / max(int(n_reference), 1)
+        var_b = var / (2.0 * math.sqrt(math.pi) * s_b) if self.smooth_px > 0 else var
+        self.noise_gx2 = var_b * (1.0 - math.exp(-1.0 / s_b**2)) / 2.0
+        self.noise_gy2 = var_b / 2.0
+
+    def blur(self, img: np.ndarray) -> np.ndarray:
+        if self.smooth_px <= 0:
+            return img
+        return ndimage.gaussian_filter1d(img, self.smooth_px, axis=1)
 
 
 def _warp_rows_linear(f: np.ndarray, shift_px, offsets_px) -> tuple[np.ndarray, np.ndarray]:
@@ -294,8 +308,9 @@ def measure_line_offsets(reference, warped, valid, *, smooth_px: float = 2.0,
 
     With ``warped(q) ~ reference(q - d)`` the linearised least squares per line
     is ``d = -(sum g g^T)^-1 sum g e``, ``e = warped - reference``, ``g`` the
-    gradient of the reference.  Both images are smoothed by a Gaussian of
-    `smooth_px` first (a shift commutes with the blur, the noise does not).
+    gradient of the reference.  Both images are smoothed along the lines by
+    a Gaussian of `smooth_px` first (a shift commutes with the blur, the
+    noise does not).
     The variance of ``d`` is ``c s^2 (sum g g^T)^-1`` with ``s^2`` the line's
     residual variance and ``c = 2 sqrt(pi) smooth_px`` the correlation length
     the blur gives the noise along the line.
@@ -307,22 +322,19 @@ def measure_line_offsets(reference, warped, valid, *, smooth_px: float = 2.0,
     """
     R = _ref if _ref is not None else _SmoothedReference(reference, smooth_px)
     valid = valid & R.valid
-    w = np.where(valid, warped, R.fill)
-    if R.smooth_px > 0:
-        w = ndimage.gaussian_filter(w, R.smooth_px)
+    w = R.blur(np.where(valid, warped, R.fill))
     m = valid
     # Pixels whose blur reached outside the overlap are unreliable.
     if R.smooth_px > 0:
-        m = ndimage.minimum_filter(m.astype(np.uint8),
-                                   size=2 * int(math.ceil(2 * R.smooth_px)) + 1) > 0
+        m = ndimage.minimum_filter1d(m.astype(np.uint8),
+                                     size=2 * int(math.ceil(2 * R.smooth_px)) + 1, axis=1) > 0
     m = m.astype(float)
     gx, gy = R.gx * m, R.gy * m
     e = (w - R.r) * m
-    noise = (R.noise_g2 * m).sum(axis=1)
     gxx_raw = (gx * gx).sum(axis=1)
     gyy_raw = (gy * gy).sum(axis=1)
-    gxx = np.maximum(gxx_raw - noise, 0.1 * gxx_raw)
-    gyy = np.maximum(gyy_raw - noise, 0.1 * gyy_raw)
+    gxx = np.maximum(gxx_raw - (R.noise_gx2 * m).sum(axis=1), 0.1 * gxx_raw)
+    gyy = np.maximum(gyy_raw - (R.noise_gy2 * m).sum(axis=1), 0.1 * gyy_raw)
     gxy = (gx * gy).sum(axis=1)
     bx = (gx * e).sum(axis=1)
     by = (gy * e).sum(axis=1)
