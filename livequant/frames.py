@@ -74,8 +74,9 @@ class Sidecar(BaseModel):
     scan_rotation_deg: float | None = Field(default=None, allow_inf_nan=False)
     acquired_at: datetime | None = None
     detector: str | None = None
+    series_id: str | None = None
 
-    @field_validator("frame_id", "detector", mode="before")
+    @field_validator("frame_id", "detector", "series_id", mode="before")
     @classmethod
     def _must_be_text(cls, value):
         if value is not None and not isinstance(value, str):
@@ -128,11 +129,12 @@ class FrameMeta:
     acquired_at: str | None = None
     detector: str = "HAADF"
     extra: dict = field(default_factory=dict)
+    series_id: str | None = None
 
     def to_json(self) -> dict:
         d = {k: getattr(self, k) for k in (
             "frame_id", "pixel_size_pm", "dwell_time_us", "stage_x_nm", "stage_y_nm",
-            "scan_rotation_deg", "acquired_at", "detector")}
+            "scan_rotation_deg", "acquired_at", "detector", "series_id")}
         d["extra"] = dict(self.extra)
         return d
 
@@ -358,7 +360,7 @@ def resolve_meta(sidecar: Sidecar | None, *, default_id: str, defaults: dict | N
     defaults = dict(defaults or {})
     values: dict[str, Any] = {}
     known = ("frame_id", "pixel_size_pm", "dwell_time_us", "stage_x_nm", "stage_y_nm",
-             "scan_rotation_deg", "acquired_at", "detector")
+             "scan_rotation_deg", "acquired_at", "detector", "series_id")
     extra: dict = {}
     if sidecar is not None:
         for key in known:

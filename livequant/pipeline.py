@@ -257,6 +257,12 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
     """
     settings = settings or Settings()
     cfg = settings.analysis
+    series_block = (frame.meta.extra or {}).get("series")
+    if (frame.meta.extra or {}).get("series_role") == "aggregate":
+        # The registered sum of a series (livequant.series): its drift is already
+        # undone, and its resampled noise must not shrink the uncertainties.
+        scan_drift_nm_per_s = None
+        min_noise_scale = max(min_noise_scale, 1.0)
     image = np.asarray(frame.pixels, dtype=np.float64)
     timings: dict[str, float] = {}
     base = dict(frame_id=frame.frame_id, meta=frame.meta, shape=frame.shape)
@@ -359,6 +365,8 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
     timings["cells"] = time.perf_counter() - t0
     timings["total"] = float(sum(timings.values()))
     extra = {} if drift_info is None else {"scan_drift_correction": drift_info}
+    if series_block is not None:
+        extra["series"] = series_block
     return FrameResult(**base, status=STATUS_OK, lattice=lattice, columns=columns, cells=cells,
                        calibration=calibration, timings_s=timings, extra=extra,
                        message="; ".join(m for m in (sites.message, columns.message,

@@ -78,6 +78,7 @@ class Snapshot:
     rejected_messages: int = 0
     proposals: tuple = ()
     flags: tuple = ()
+    series: tuple = ()
     decisions: dict = field(default_factory=dict)
     taken_at: float = field(default_factory=time.time)
 

@@ -1,0 +1,116 @@
+"""The daemon with series: members registered as they are done, aggregates analysed as
+frames, the ledger, the events and summary.json marked; truth from the simulator."""
+
+import json
+import sqlite3
+
+import numpy as np
+import pytest
+
+from livequant.daemon import Daemon
+from livequant.daemon.ledger import SCHEMA_VERSION, Ledger
+from sim_instrument.quick import perovskite_engine
+from tests.daemon._helpers import fast_settings, read_events, running_daemon, wait_for
+from tests.daemon._loop import write_sim
+
+N = 256
+PIXEL_PM = 10.0
+
+
+def test_series_and_pair_through_the_daemon(tmp_path):
+    """Five fast frames of one series (a specimen jump before the fourth) and an
+    orthogonal pair land in the watched folder.  The jumped frame is left out
+    with its reason; the running average is analysed at 2, 3 and 4 members and
+    its precision gain over a single member grows about as sqrt(N) (shot-noise
+    averaging, Yankovich et al., Nat. Commun. 5, 4155 (2014)); the pair is
+    combined into one corrected frame; every step is in the ledger, the events,
+    summary.json and the status snapshot."""
+    watch = tmp_path / "watch"
+    watch.mkdir()
+    session = tmp_path / "session"
+    eng = perovskite_engine(dwell_time_us=2.0, beam_current_pa=20.0,
+                            drift_nm_per_s=(0.008, 0.01), line_jitter_pm=2.0, seed=4)
+    series = eng.acquire_series(5, (0.0, 0.0), N * PIXEL_PM / 1000, (N, N), series_id="run-a",
+                                jump_before={3: (0.17, -0.11)})
+    eng.wait(2.0)
+    pair = eng.acquire_orthogonal_pair((0.0, 0.0), N * PIXEL_PM / 1000, (N, N),
+                                       series_id="pair-b")
+    settings = fast_settings()
+    daemon = Daemon(settings, session=session, watch=watch)
+    with running_daemon(daemon):
+        for acq in [*series, *pair]:
+            write_sim(watch, acq)
+        ledger = daemon.ledger
+
+        def all_done():
+            aggs = ledger.series_aggregates()
+            return (len(aggs) == 4 and all(a["analysed_at"] for a in aggs)
+                    and len(ledger.series_members()) == 7)
+        wait_for(all_done, timeout_s=240, what="series aggregates analysed")
+        wait_for(lambda: len(daemon.snapshot.series) == 2, what="series in the snapshot")
+        snap = {s["series_id"]: s for s in daemon.snapshot.series}
+
+    led = Ledger(session / "ledger.sqlite", readonly=True)
+    members = led.series_members("run-a")
+    assert [m["accepted"] for m in members] == [True, True, True, False, True]
+    assert members[3]["reason"] == "jump" and "jumped" in members[3]["message"]
+    aggs = {a["aggregate_id"]: a for a in led.series_aggregates(series_id="run-a")}
+    assert sorted(aggs) == ["run-a~avg002", "run-a~avg003", "run-a~avg004"]
+    gains = [aggs[f"run-a~avg00{n}"]["precision_gain"] for n in (2, 3, 4)]
+    # shot-noise averaging: gain ~ sqrt(N), here within 25 %
+    for n, g in zip((2, 3, 4), gains):
+        assert g == pytest.approx(np.sqrt(n), rel=0.25), gains
+    pair_agg = led.series_aggregates(series_id="pair-b")
+    assert [a["kind"] for a in pair_agg] == ["orthogonal"]
+    # the aggregates are frames of the session, marked as series
+    rows = {r.frame_id: r for r in led.rows(state="done")}
+    assert {"run-a~avg004", "pair-b~pair"} <= set(rows)
+    db = sqlite3.connect(session / "ledger.sqlite")
+    marked = dict(db.execute("SELECT frame_id, series_id FROM frames WHERE series_id IS NOT NULL"))
+    assert marked[series[0].frame_id] == "run-a" and marked["run-a~avg004"] == "run-a"
+    assert marked[pair[1].frame_id] == "pair-b"
+    # summary.json of the aggregate and of a member
+    summ = json.loads((session / "frames" / "run-a~avg004" / "summary.json").read_text())
+    assert summ["series"]["n_members"] == 4 and summ["series"]["n_excluded"] == 1
+    assert summ["series"]["kind"] == "average"
+    assert summ["lattice"]["a_pm"] == pytest.approx(390.53, rel=2e-3)
+    member = json.loads((session / "frames" / series[0].frame_id / "summary.json").read_text())
+    assert member["meta"]["series_id"] == "run-a"
+    # events: every member's verdict, every aggregate's precision
+    status = [e["data"] for e in read_events(session, "status")]
+    verdicts = [e for e in status if e.get("event") == "series-member"]
+    assert len(verdicts) == 7
+    assert any(e["reason"] == "jump" for e in verdicts)
+    done = [e for e in status if e.get("event") == "series"]
+    assert {e["aggregate_id"] for e in done} == {"run-a~avg002", "run-a~avg003",
+                                                 "run-a~avg004", "pair-b~pair"}
+    frames = {e["data"]["frame_id"]: e["data"] for e in read_events(session, "frame")}
+    assert frames["pair-b~pair"]["series"]["kind"] == "orthogonal"
+    # the display's snapshot
+    assert snap["run-a"]["depth"] == 4 and snap["run-a"]["n_excluded"] == 1
+    assert snap["run-a"]["precision_gain"] == pytest.approx(gains[-1])
+
+
+def test_a_schema_1_ledger_is_migrated_in_place(tmp_path):
+    """A session made before the series tables opens: frames kept, tables added."""
+    path = tmp_path / "ledger.sqlite"
+    Ledger(path).close()
+    db = sqlite3.connect(path)
+    db.execute("DROP TABLE series_members")
+    db.execute("DROP TABLE series_aggregates")
+    db.execute("ALTER TABLE frames DROP COLUMN series_id")
+    db.execute("INSERT INTO frames (path, origin, sha256, size_bytes, mtime_ns, state, "
+               "complete_at, queued_at) VALUES ('a.tif', 'folder', 'x', 1, 1, 'queued', 0, 0)")
+    db.execute("UPDATE meta SET value='1' WHERE key='schema_version'")
+    db.commit()
+    db.close()
+    ro = Ledger(path, readonly=True)          # read as it is
+    assert ro.series_members() == [] and len(ro.rows()) == 1
+    ro.close()
+    led = Ledger(path)
+    assert led.counts()["queued"] == 1
+    led.add_series_member(series_id="s", frame_id="a", index=0, accepted=True)
+    assert led.series_members("s")[0]["accepted"] is True
+    led.close()
+    db = sqlite3.connect(path)
+    assert db.execute("SELECT value FROM meta").fetchone()[0] == str(SCHEMA_VERSION)
