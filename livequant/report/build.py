@@ -149,6 +149,11 @@ def build_report(session_dir: str | Path, *, out_dir: str | Path | None = None,
                                        loaded={fd.frame_id: fd.cells for fd in frame_data}))
     sections.append(_fit_quality_section(frame_data, figs, gain))
     sections.append(_throughput_section(session, figs, t0))
+    from livequant.report.series import series_section
+
+    series = series_section(session.root, figs.save)
+    if series is not None:
+        sections.append(series)
     if notes:
         sections.append(Section("notes", "Notes", paragraphs=notes))
 

@@ -17,6 +17,7 @@ N = 256
 PIXEL_PM = 10.0
 
 
+@pytest.mark.slow
 def test_series_and_pair_through_the_daemon(tmp_path):
     """Five fast frames of one series (a specimen jump before the fourth) and an
     orthogonal pair land in the watched folder.  The jumped frame is left out
@@ -89,6 +90,14 @@ def test_series_and_pair_through_the_daemon(tmp_path):
     # the display's snapshot
     assert snap["run-a"]["depth"] == 4 and snap["run-a"]["n_excluded"] == 1
     assert snap["run-a"]["precision_gain"] == pytest.approx(gains[-1])
+    # the report plots precision against N and lists the frame left out
+    from livequant.report.build import build_report
+
+    build_report(session, max_frames=1, histogram_frames=2)
+    html = (session / "report" / "index.html").read_text()
+    assert "series-precision-vs-n.png" in html and (session / "report" / "figures" /
+                                                    "series-precision-vs-n.png").exists()
+    assert "series-left-out" in html and series[3].frame_id in html
 
 
 def test_a_schema_1_ledger_is_migrated_in_place(tmp_path):
