@@ -15,6 +15,7 @@ from pathlib import Path
 
 import numpy as np
 from matplotlib.figure import Figure
+from matplotlib.ticker import LogLocator, NullFormatter, ScalarFormatter
 
 from livequant.daemon.ledger import LEDGER_NAME, Ledger
 from livequant.report.page import Section, Table
@@ -60,6 +61,11 @@ def precision_vs_n_figure(series: dict[str, list[tuple[int, float]]],
         n_max = max(n_max, int(n.max()))
     ax.set_xscale("log")
     ax.set_yscale("log")
+    for axis in (ax.xaxis, ax.yaxis):
+        axis.set_major_formatter(ScalarFormatter())
+        axis.set_minor_formatter(NullFormatter())
+    ax.yaxis.set_major_locator(LogLocator(subs=(1.0, 1.5, 2.0, 3.0, 5.0, 7.0)))
+    ax.set_xticks([t for t in (1, 2, 4, 8, 16, 32, 64, 128, 256) if t <= n_max * 1.3])
     ax.set_xlabel("frames averaged, N")
     ax.set_ylabel("median column-position uncertainty (pm)")
     ax.set_xlim(0.8, n_max * 1.3)
