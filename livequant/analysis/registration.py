@@ -6,7 +6,8 @@ inside each frame every line carries its own small error (scan jitter, the
 drift's irregular part).  The trade's answer, followed here, is to register
 each frame to a reference in two steps (Yankovich et al., Nat. Commun. 5, 4155
 (2014); Berkels et al., Ultramicroscopy 138, 46 (2014); Jones et al., Adv.
-Struct. Chem. Imaging 1, 8 (2015)):
+Struct. Chem. Imaging 1, 8 (2015), the last from memory: CHECK-VALUES
+sections 4 and 9).  The model below is our own formulation in that spirit:
 
 1. **rigid**: the frame's shift against the reference by phase correlation
    (:func:`skimage.registration.phase_cross_correlation`, upsampled to a
@@ -20,6 +21,11 @@ Struct. Chem. Imaging 1, 8 (2015)):
    the proportion that the line-to-line scatter exceeds the measurement
    noise (a shrinkage with the jitter variance estimated from the data).  The
    warp is re-made with the new offsets and the step repeated.
+
+The offsets are solved on the frame's own scan lines (the reference is
+resampled onto them), so each line's jitter is measured alone; the frame is
+then put on the reference grid in two passes, each line moved back along
+itself first, so neighbouring lines' jitters never mix (:func:`_per_line`).
 
 Conventions: images are ``(row, col)``; a frame ``F`` registered to the
 reference ``R`` satisfies ``F(q + shift + o(q_row)) ~ R(q)``, i.e. ``shift``
@@ -57,6 +63,7 @@ class LineOffsets:
     offsets_px: np.ndarray
     variance_px2: np.ndarray
     jitter_px: np.ndarray  # (2,) estimated rms of the per-line part not explained by the smooth
+    smooth_part_px: np.ndarray | None = None  # (rows, 2) the smooth part alone
 
 
 @dataclass(frozen=True)
@@ -405,6 +412,7 @@ def smooth_line_offsets(raw_px, variance_px2, *, smooth_lines: float = 32.0,
     if smooth_lines <= 0:
         raise ValueError(f"`smooth_lines` must be > 0, got {smooth_lines}")
     out = np.zeros_like(raw)
+    smooth = np.zeros_like(raw)
     jit = np.zeros(2)
     for k in range(2):
         m = raw[:, k]
@@ -425,8 +433,9 @@ def smooth_line_offsets(raw_px, variance_px2, *, smooth_lines: float = 32.0,
             t2 = max(0.0, float(excess)) if k in jitter_axes else 0.0
         j = np.where(have, (m0 - s) * t2 / (t2 + v0), 0.0)
         out[:, k] = s + j
+        smooth[:, k] = s
         jit[k] = math.sqrt(t2)
-    return LineOffsets(offsets_px=out, variance_px2=var, jitter_px=jit)
+    return LineOffsets(offsets_px=out, variance_px2=var, jitter_px=jit, smooth_part_px=smooth)
 
 
 def residual_chi2(reference, warped, valid, *, gain: float = 1.0, n_reference: int = 1,
@@ -524,14 +533,65 @@ def register_frame(reference, frame, *, n_reference: int = 1, gain: float = 1.0,
     offsets = np.zeros((rows, 2))
     jitter = np.zeros(2)
     if nonrigid:
-        sref = _SmoothedReference(ref, smooth_px, gain=gain, n_reference=n_reference)
-        for _ in range(max(1, int(iterations))):
-            warped, valid = _warp_rows_linear(f, shift, offsets)
-            delta, var = measure_line_offsets(ref, warped, valid, _ref=sref)
-            lo = smooth_line_offsets(offsets + delta, var, smooth_lines=smooth_lines)
-            offsets, jitter = lo.offsets_px, lo.jitter_px
-    warped, valid = warp_frame(f, shift_px=shift, line_offsets_px=offsets, order=3)
+        warped, valid, offsets, jitter = _per_line(ref, f, shift, gain=gain,
+                                                   n_reference=n_reference,
+                                                   iterations=iterations,
+                                                   smooth_lines=smooth_lines,
+                                                   smooth_px=smooth_px)
+    else:
+        warped, valid = warp_frame(f, shift_px=shift, order=3)
     chi2 = residual_chi2(ref, warped, valid, gain=gain, n_reference=n_reference)
     return FrameRegistration(shift_px=np.asarray(shift, float), line_offsets_px=offsets,
                              warped=warped, valid=valid, residual_chi2=chi2, rigid_error=rigid_error,
                              jitter_px=jitter)
+
+
+def _per_line(ref, f, shift, *, gain, n_reference, iterations, smooth_lines, smooth_px):
+    """The per-line model, solved on the frame's own scan lines.
+
+    ``F(l, c) = R(l - Y_l, c - X_l)``: line ``l`` of the frame shows the
+    reference displaced by ``(Y_l, X_l)`` = the rigid shift + a smooth part
+    + fast-axis jitter.  Each round resamples the (less noisy) reference onto
+    the frame's lines and measures every line against it, so each scan line's
+    jitter is measured alone, never mixed with its neighbour's.  The frame is
+    then put on the reference grid in two passes: each line is moved back
+    along itself by its jitter (a 1D cubic spline along the line), then the
+    smooth part is undone by a 2D cubic resampling.
+
+    Returns ``warped, valid, offsets (per grid row, minus the shift), jitter rms``.
+    """
+    rows, cols = f.shape
+    Y = np.tile(np.asarray(shift, float), (rows, 1))
+    smooth = Y.copy()
+    jitter = np.zeros(2)
+    for _ in range(max(1, int(iterations))):
+        r_f, valid = _warp_rows_linear(ref, (0.0, 0.0), -Y)
+        sref = _SmoothedReference(np.where(valid, r_f, np.nan), smooth_px, gain=gain,
+                                  n_reference=n_reference)
+        delta, var = measure_line_offsets(r_f, f, valid, _ref=sref)
+        lo = smooth_line_offsets(Y + delta, var, smooth_lines=smooth_lines)
+        Y, smooth, jitter = lo.offsets_px, lo.smooth_part_px, lo.jitter_px
+    jit_c = Y[:, 1] - smooth[:, 1]
+    # pass 1: each scan line moved back along itself (rows stay whole: a 1D spline)
+    l_idx = np.arange(rows, dtype=float)[:, None]
+    c_idx = np.arange(cols, dtype=float)[None, :]
+    cc = c_idx + jit_c[:, None]
+    d = ndimage.map_coordinates(f, [np.broadcast_to(l_idx, cc.shape), cc], order=3,
+                                mode="nearest")
+    ok_d = (cc >= 0) & (cc <= cols - 1)
+    # pass 2: grid row q shows line l with l - S_r(l) = q (S smooth, so two fixed-point steps)
+    q = np.arange(rows, dtype=float)
+    lines = np.arange(rows, dtype=float)
+    l_of_q = q + np.interp(q, lines, smooth[:, 0])
+    l_of_q = q + np.interp(l_of_q, lines, smooth[:, 0])
+    s_c = np.interp(l_of_q, lines, smooth[:, 1])
+    rr = np.broadcast_to(l_of_q[:, None], (rows, cols))
+    cc2 = c_idx + s_c[:, None]
+    warped = ndimage.map_coordinates(d, [rr, cc2], order=3, mode="nearest")
+    ok_src = ndimage.map_coordinates(ok_d.astype(float), [rr, cc2], order=1, mode="constant",
+                                     cval=0.0) > 0.999
+    valid = (rr >= 0) & (rr <= rows - 1) & (cc2 >= 0) & (cc2 <= cols - 1) & ok_src
+    warped = np.where(valid, warped, np.nan)
+    offsets = np.stack([np.interp(l_of_q, lines, Y[:, 0]), np.interp(l_of_q, lines, Y[:, 1])],
+                       axis=1) - np.asarray(shift, float)[None, :]
+    return warped, valid, offsets, jitter

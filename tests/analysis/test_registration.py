@@ -67,12 +67,9 @@ def test_register_frame_removes_per_line_jitter():
     """A frame whose scan lines are shifted along the fast axis (0.8 px rms,
     white) and whose content moved by (2, 1.4) px: the per-line model recovers
     the line offsets to a quarter of the jitter and the residual falls to
-    the shot noise, where the rigid step alone leaves it well above.
-
-    (The line offsets are kept per row of the reference grid: with a
-    fractional shift across the lines each grid row mixes two scan lines, and
-    their independent jitters are then corrected only on average; here the
-    shift across the lines is whole.)"""
+    the shot noise, where the rigid step alone leaves it well above.  A
+    fractional shift across the lines (2.5 rows) is undone as well: each scan
+    line is moved back along itself before the lines are resampled."""
     rng = np.random.default_rng(7)
     n = 256
     offs = np.c_[np.zeros(n), rng.normal(0, 0.8, n)]
@@ -91,6 +88,10 @@ def test_register_frame_removes_per_line_jitter():
     assert np.sqrt(np.mean(err[:, 0] ** 2)) < 0.05
     assert reg.jitter_px[1] == pytest.approx(0.8, rel=0.15)
     assert reg.residual_chi2 < 1.3 and rigid.residual_chi2 > 3.0
+    clean, _ = warp_frame(_lattice((2.5, 1.4), amp=200.0, noise=False), line_offsets_px=-offs)
+    half = register_frame(ref, rng.poisson(np.nan_to_num(clean, nan=5.0)).astype(float))
+    assert half.residual_chi2 < 1.3
+    assert half.jitter_px[1] == pytest.approx(0.8, rel=0.15)
 
 
 def test_residual_is_about_one_for_pure_shot_noise():
