@@ -122,14 +122,18 @@ def _agreement(a, b, valid) -> float:
     return float((x * y).sum() / den) if den > 0 else -1.0
 
 
+def _inner(valid, border: int = 2):
+    return ndimage.minimum_filter(valid.astype(np.uint8), size=2 * border + 1, mode="constant",
+                                  cval=0) > 0
+
+
 def _score(img0, img1, v, t0, t1, zeros):
     a, _, va = _corrected(img0, img0, v, t0, t0, (0.0, 0.0), zeros, zeros, 1)
     b, _, vb = _corrected(img1, img1, v, t1, t1, (0.0, 0.0), zeros, zeros, 1)
     fill_a, fill_b = a[va].mean(), b[vb].mean()
     s = rigid_shift(np.where(va, a, fill_a), np.where(vb, b, fill_b), upsample_factor=4).shift_px
     a, b, valid = _corrected(img0, img1, v, t0, t1, s, zeros, zeros, 1)
-    valid &= ndimage.binary_erosion(valid, iterations=2)
-    return _agreement(a, b, valid), s
+    return _agreement(a, b, _inner(valid)), s
 
 
 def correct_orthogonal_pair(image, image_90, *, line_time_s: float, dwell_s: float = 0.0,
@@ -233,12 +237,11 @@ def correct_orthogonal_pair(image, image_90, *, line_time_s: float, dwell_s: flo
     slope1 = -(idx @ o1) / float(idx @ idx)         # px per column, sign of the time map
     v_total = v + 0.5 * (slope0 + slope1) / line_time_s
     c0, c1, valid = _corrected(a, b, v, t0, t1, shift, o0, o1, 3)
-    inner = ndimage.binary_erosion(valid, iterations=2)
-    agree = _agreement(c0, c1, inner)
+    agree = _agreement(c0, c1, _inner(valid))
     zeros = np.zeros((n, 2))
-    s_raw = rigid_shift(a, b, upsample_factor=10).shift_px
+    s_raw = rigid_shift(a, b, upsample_factor=4, bin_to_px=512).shift_px
     u0, u1, uvalid = _corrected(a, b, np.zeros(2), t0, t1, s_raw, zeros, zeros, 3)
-    agree_raw = _agreement(u0, u1, ndimage.binary_erosion(uvalid, iterations=2))
+    agree_raw = _agreement(u0, u1, _inner(uvalid))
     from livequant.analysis.series import _full_box
 
     box = _full_box(valid)

@@ -323,14 +323,16 @@ class SeriesStack:
         rr = np.broadcast_to(rr, (rows, cols))
         cc = np.broadcast_to(cc, (rows, cols))
         disp = max(float(np.abs(rr).max()), float(np.abs(cc).max()))
+        margin = 0
         if disp > 1e-9:
             filled = np.where(full, mean, mean[full].mean() if full.any() else 0.0)
             grid_r = np.arange(rows, dtype=float)[:, None] + rr
             grid_c = np.arange(cols, dtype=float)[None, :] + cc
             mean = ndimage.map_coordinates(filled, [grid_r, grid_c], order=3, mode="nearest")
-            full = ndimage.map_coordinates(full.astype(float), [grid_r, grid_c], order=1,
-                                           mode="constant", cval=0.0) > 0.999
-        box = _full_box(full, margin=int(math.ceil(disp)) if disp > 1e-9 else 0)
+            # no pixel moves by more than `disp`: shrinking the full-coverage box by
+            # that (plus the spline's reach) keeps only pixels made of full coverage
+            margin = int(math.ceil(disp)) + 2
+        box = _full_box(full, margin=margin)
         r0, r1, c0, c1 = box
         summed = mean[r0:r1, c0:c1] * n
         info["box"] = list(box)
