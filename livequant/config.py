@@ -274,6 +274,7 @@ class SeriesSettings(_Model):
     min_members: int = Field(default=2, ge=1, le=10_000)
     analyse_every: int = Field(default=1, ge=1, le=10_000)
     max_series: int = Field(default=4, ge=1, le=100)
+    reorder_s: float = Field(default=10.0, ge=0, le=3600)
 
 
 class Settings(_Model):

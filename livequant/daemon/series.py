@@ -26,6 +26,7 @@ from __future__ import annotations
 import logging
 import queue
 import threading
+import time
 from collections import OrderedDict
 from pathlib import Path
 from typing import Callable
@@ -36,6 +37,17 @@ from livequant.frames import FrameError, read_frame, write_frame
 from livequant.series import SeriesBuilder, is_aggregate, series_key
 
 __all__ = ["SeriesAggregator"]
+
+
+def _acquired_s(text) -> float | None:
+    if not text:
+        return None
+    from datetime import datetime
+
+    try:
+        return datetime.fromisoformat(str(text)).timestamp()
+    except ValueError:
+        return None
 
 log = logging.getLogger("livequant.daemon.series")
 
@@ -119,7 +131,8 @@ class SeriesAggregator:
         sigma = out.summary.get("median_sigma_position_pm")
         if sigma:
             self._member_sigma.setdefault(key, []).append(float(sigma))
-        self._queue.put((key, out.path, fid))
+        t_acq = _acquired_s(meta.get("acquired_at"))
+        self._queue.put((key, out.path, fid, t_acq, time.monotonic()))
 
     def _aggregate_done(self, out, block: dict) -> None:
         key = block.get("series_id")
@@ -155,17 +168,53 @@ class SeriesAggregator:
     # ------------------------------------------------------------ the thread
 
     def _run(self) -> None:
-        while not self._stop.is_set():
-            item = self._queue.get()
-            if item is None:
-                return
-            key, path, fid = item
+        """Members in acquisition order, as far as they can be known.
+
+        The daemon may analyse the newest frame first (``daemon.newest_first``),
+        so members can be done out of order; a series registers them in the
+        order they were acquired.  A member waits in a small buffer until no
+        frame is queued or in analysis (whatever is pending may be an earlier
+        member), or at most ``series.reorder_s``; then the earliest waiting
+        member goes first.
+        """
+        pending: list[tuple] = []
+        closing = False
+        while not (self._stop.is_set() and not closing):
             try:
-                self._member(key, path, fid)
-            except Exception as exc:  # noqa: BLE001 - one bad member must not end the series
-                self.n_errors += 1
-                log.exception("series %s: member %s failed", key, fid)
-                self._warn(f"series {key}: {fid}: {type(exc).__name__}: {exc}")
+                item = self._queue.get(timeout=0.2)
+            except queue.Empty:
+                item = False
+            if item is None:
+                closing = True
+            elif item:
+                pending.append(item)
+            while pending:
+                pending.sort(key=lambda it: (it[3] if it[3] is not None else float("inf"),
+                                             it[4]))
+                head = pending[0]
+                if not (closing or self._idle() or
+                        time.monotonic() - min(it[4] for it in pending) >= self.cfg.reorder_s):
+                    break
+                pending.pop(0)
+                key, path, fid = head[:3]
+                try:
+                    self._member(key, path, fid)
+                except Exception as exc:  # noqa: BLE001 - one bad member must not end the series
+                    self.n_errors += 1
+                    log.exception("series %s: member %s failed", key, fid)
+                    self._warn(f"series {key}: {fid}: {type(exc).__name__}: {exc}")
+                if self._stop.is_set():
+                    return
+            if closing and not pending:
+                return
+
+    def _idle(self) -> bool:
+        """No frame queued or in analysis (a waiting member has no earlier one coming)."""
+        try:
+            c = self.ledger.counts()
+        except Exception:  # noqa: BLE001 - a busy ledger: treat as not idle, retry soon
+            return False
+        return c.get("queued", 0) + c.get("processing", 0) == 0
 
     def _builder(self, key: str) -> SeriesBuilder:
         b = self._builders.get(key)
