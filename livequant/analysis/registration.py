@@ -255,7 +255,7 @@ class _SmoothedReference:
     """
 
     def __init__(self, reference: np.ndarray, smooth_px: float, *, gain: float = 1.0,
-                 n_reference: int = 1):
+                 n_reference: int = 1, noise_factor=None):
         self.smooth_px = float(smooth_px)
         ref = np.asarray(reference, float)
         self.fill = float(np.nanmean(ref)) if np.isfinite(ref).any() else 0.0
@@ -271,6 +271,8 @@ class _SmoothedReference:
         # var_b (1 - exp(-1 / s^2)) / 2, across the lines var_b / 2.
         s_b = max(self.smooth_px, 0.5)
         var = gain * np.maximum(self.r, 0.0) / max(int(n_reference), 1)
+        if noise_factor is not None:   # a resampled reference: less noise per pixel
+            var = var * np.asarray(noise_factor, float).reshape(-1, 1)
         var_b = var / (2.0 * math.sqrt(math.pi) * s_b) if self.smooth_px > 0 else var
         self.noise_gx2 = var_b * (1.0 - math.exp(-1.0 / s_b**2)) / 2.0
         self.noise_gy2 = var_b / 2.0
@@ -556,7 +558,8 @@ def _per_line(ref, f, shift, *, gain, n_reference, iterations, smooth_lines, smo
     jitter is measured alone, never mixed with its neighbour's.  The frame is
     then put on the reference grid in two passes: each line is moved back
     along itself by its jitter (a 1D cubic spline along the line), then the
-    smooth part is undone by a 2D cubic resampling.
+    smooth part is undone by a 2D cubic resampling.  (Line jitter is a fraction of
+    a pixel: the first pass interpolates linearly.)
 
     Returns ``warped, valid, offsets (per grid row, minus the shift), jitter rms``.
     """
@@ -566,19 +569,20 @@ def _per_line(ref, f, shift, *, gain, n_reference, iterations, smooth_lines, smo
     jitter = np.zeros(2)
     for _ in range(max(1, int(iterations))):
         r_f, valid = _warp_rows_linear(ref, (0.0, 0.0), -Y)
+        # linear interpolation at fractions (fr, fc) leaves (1-f)^2 + f^2 of the variance
+        fr, fc = np.mod(-Y[:, 0], 1.0), np.mod(-Y[:, 1], 1.0)
+        factor = ((1 - fr) ** 2 + fr**2) * ((1 - fc) ** 2 + fc**2)
         sref = _SmoothedReference(np.where(valid, r_f, np.nan), smooth_px, gain=gain,
-                                  n_reference=n_reference)
+                                  n_reference=n_reference, noise_factor=factor)
         delta, var = measure_line_offsets(r_f, f, valid, _ref=sref)
         lo = smooth_line_offsets(Y + delta, var, smooth_lines=smooth_lines)
         Y, smooth, jitter = lo.offsets_px, lo.smooth_part_px, lo.jitter_px
     jit_c = Y[:, 1] - smooth[:, 1]
-    # pass 1: each scan line moved back along itself (rows stay whole: a 1D spline)
-    l_idx = np.arange(rows, dtype=float)[:, None]
+    # pass 1: each scan line moved back along itself by its jitter (a fraction of a
+    # pixel: linear interpolation along the line; rows stay whole)
     c_idx = np.arange(cols, dtype=float)[None, :]
-    cc = c_idx + jit_c[:, None]
-    d = ndimage.map_coordinates(f, [np.broadcast_to(l_idx, cc.shape), cc], order=3,
-                                mode="nearest")
-    ok_d = (cc >= 0) & (cc <= cols - 1)
+    d, _ = _warp_rows_linear(f, (0.0, 0.0), np.stack([np.zeros(rows), jit_c], axis=1))
+    d = np.where(np.isfinite(d), d, f)
     # pass 2: grid row q shows line l with l - S_r(l) = q (S smooth, so two fixed-point steps)
     q = np.arange(rows, dtype=float)
     lines = np.arange(rows, dtype=float)
@@ -588,9 +592,10 @@ def _per_line(ref, f, shift, *, gain, n_reference, iterations, smooth_lines, smo
     rr = np.broadcast_to(l_of_q[:, None], (rows, cols))
     cc2 = c_idx + s_c[:, None]
     warped = ndimage.map_coordinates(d, [rr, cc2], order=3, mode="nearest")
-    ok_src = ndimage.map_coordinates(ok_d.astype(float), [rr, cc2], order=1, mode="constant",
-                                     cval=0.0) > 0.999
-    valid = (rr >= 0) & (rr <= rows - 1) & (cc2 >= 0) & (cc2 <= cols - 1) & ok_src
+    # the frame's own pixels behind each grid pixel: the line's jitter moved them too
+    jit_q = np.interp(l_of_q, lines, jit_c)[:, None]
+    valid = ((rr >= 0) & (rr <= rows - 1) & (cc2 >= 0) & (cc2 <= cols - 1)
+             & (cc2 + jit_q >= 0) & (cc2 + jit_q <= cols - 1))
     warped = np.where(valid, warped, np.nan)
     offsets = np.stack([np.interp(l_of_q, lines, Y[:, 0]), np.interp(l_of_q, lines, Y[:, 1])],
                        axis=1) - np.asarray(shift, float)[None, :]
