@@ -16,8 +16,9 @@ a single member (``series_aggregates``, ``status`` event ``series``).
 Registration runs in a thread, not in the tick loop, so a 2048 x 2048
 member never delays the claim of the next frame.  Series are kept in memory
 (the running sum: about two frames each); beyond ``series.max_series`` the
-least recently fed is closed.  A restart begins each series anew from the
-members that arrive after it (members already recorded are not offered
+least recently fed is closed.  After a restart, or when a closed series gets
+a new member, the members the ledger says were averaged are registered
+again from their files first (members already recorded are not offered
 again).
 """
 
@@ -220,6 +221,7 @@ class SeriesAggregator:
         b = self._builders.get(key)
         if b is None:
             b = SeriesBuilder(key, self.settings)
+            self._rebuild(b)
             self._builders[key] = b
             while len(self._builders) > self.cfg.max_series:
                 old, _ = self._builders.popitem(last=False)
@@ -231,7 +233,7 @@ class SeriesAggregator:
         if any(m["frame_id"] == fid for m in self.ledger.series_members(key)):
             return  # offered before (a restart, or the same frame done again)
         try:
-            frame = read_frame(path, defaults=self._defaults, confine_to=Path(path).parent)
+            frame = self._read_member(path, fid)
         except FrameError as exc:
             log.warning("series %s: %s cannot be read again (%s)", key, path, exc)
             self._warn(f"series {key}: {Path(path).name}: {exc.reason}")
@@ -262,6 +264,38 @@ class SeriesAggregator:
                        "last_member": rec.frame_id})
         if step.aggregate is not None:
             self._write_aggregate(key, step)
+
+    def _rebuild(self, builder: SeriesBuilder) -> None:
+        """Bring a series back after a restart (or after it was closed to save memory).
+
+        The members the ledger says were averaged are registered again, in
+        their order, from their files: the same frames give the same sum.
+        Nothing is recorded or published again.
+        """
+        done = [m for m in self.ledger.series_members(builder.key) if m["accepted"]]
+        if not done:
+            return
+        paths = {r.frame_id: r.path for r in self.ledger.rows(state="done") if r.frame_id}
+        n = 0
+        for m in sorted(done, key=lambda m: m["index"]):
+            path = paths.get(m["frame_id"])
+            if path is None:
+                continue
+            try:
+                builder.add(self._read_member(path, m["frame_id"]))
+                n += 1
+            except FrameError as exc:
+                log.warning("series %s: %s cannot be read again (%s); the series goes on "
+                            "without it", builder.key, path, exc)
+        log.info("series %s: %d earlier member(s) registered again", builder.key, n)
+
+    def _read_member(self, path: str, fid: str):
+        """The member's frame, read again from the session's files.
+
+        One image per file today; a page ``NAME#INDEX`` of a container file
+        needs the container's page reader here (by `fid`).
+        """
+        return read_frame(path, defaults=self._defaults, confine_to=Path(path).parent)
 
     def _write_aggregate(self, key: str, step) -> None:
         agg = step.aggregate

@@ -123,3 +123,57 @@ def test_a_schema_1_ledger_is_migrated_in_place(tmp_path):
     led.close()
     db = sqlite3.connect(path)
     assert db.execute("SELECT value FROM meta").fetchone()[0] == str(SCHEMA_VERSION)
+
+
+class _Publisher:
+    def __init__(self):
+        self.events = []
+
+    def publish(self, topic, data):
+        self.events.append((topic, data))
+
+
+def test_a_series_goes_on_after_a_restart(tmp_path):
+    """Three members averaged, the daemon restarted (a new aggregator on the same
+    ledger), a fourth member: the series is rebuilt from the ledger and its files,
+    and the next aggregate holds all four."""
+    from livequant.config import Settings
+    from livequant.daemon.series import SeriesAggregator
+    from livequant.daemon.worker import Outcome
+    from livequant.frames import read_frame
+
+    watch = tmp_path / "watch"
+    eng = perovskite_engine(dwell_time_us=1.0, drift_nm_per_s=(0.01, 0.01), seed=9)
+    acqs = eng.acquire_series(4, (0.0, 0.0), 1.92, (192, 192), series_id="r")
+    ledger = Ledger(tmp_path / "ledger.sqlite")
+    for a in acqs:
+        write_sim(watch, a)
+        path = watch / f"{a.frame_id}.npy"
+        reg = ledger.register(str(path), origin="folder", sha256=a.frame_id, sidecar_sha256=None,
+                              size_bytes=1, mtime_ns=1, complete_at=0.0)
+        ledger.claim(newest_first=False, newer_than_seq=0)
+        ledger.finish(reg.seq, frame_id=a.frame_id)
+
+    def outcome(a):
+        meta = read_frame(watch / f"{a.frame_id}.npy").meta.to_json()
+        return Outcome(str(watch / f"{a.frame_id}.npy"), "done", frame_id=a.frame_id,
+                       summary={"meta": meta, "median_sigma_position_pm": 3.0})
+
+    written = []
+    settings = Settings()
+    first = SeriesAggregator(settings, ledger, _Publisher(), tmp_path / "series",
+                             register=written.append)
+    for a in acqs[:3]:
+        first.on_done(outcome(a))
+        key, path, fid, _t, _m = first._queue.get_nowait()
+        first._member(key, path, fid)
+    assert [p.stem for p in written] == ["r~avg002", "r~avg003"]
+    again = SeriesAggregator(settings, ledger, _Publisher(), tmp_path / "series",
+                             register=written.append)
+    again.on_done(outcome(acqs[3]))
+    key, path, fid, _t, _m = again._queue.get_nowait()
+    again._member(key, path, fid)
+    assert written[-1].stem == "r~avg004"
+    assert again._builders["r"].n_members == 4
+    assert [m["frame_id"] for m in ledger.series_members("r")] == [a.frame_id for a in acqs]
+    ledger.close()
