@@ -176,4 +176,10 @@ def test_a_series_goes_on_after_a_restart(tmp_path):
     assert written[-1].stem == "r~avg004"
     assert again._builders["r"].n_members == 4
     assert [m["frame_id"] for m in ledger.series_members("r")] == [a.frame_id for a in acqs]
+    # `livequant status` with no daemon running reads the same from the ledger
+    from livequant.daemon.status import snapshot_from_ledger
+
+    snap = snapshot_from_ledger(ledger, session=str(tmp_path))
+    assert snap.series[0]["series_id"] == "r" and snap.series[0]["depth"] == 4
+    assert snap.series[0]["aggregate_id"] == "r~avg004"
     ledger.close()
