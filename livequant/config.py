@@ -270,7 +270,7 @@ class SeriesSettings(_Model):
     max_residual_ratio: float = Field(default=1.5, gt=1)
     smooth_lines: float = Field(default=32.0, gt=0, le=100_000)
     smooth_px: float = Field(default=2.0, ge=0, le=20)
-    iterations: int = Field(default=4, ge=1, le=50)
+    iterations: int = Field(default=3, ge=1, le=50)
     min_members: int = Field(default=2, ge=1, le=10_000)
     analyse_every: int = Field(default=1, ge=1, le=10_000)
     max_series: int = Field(default=4, ge=1, le=100)

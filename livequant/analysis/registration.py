@@ -484,7 +484,7 @@ def residual_chi2(reference, warped, valid, *, gain: float = 1.0, n_reference: i
 
 
 def register_frame(reference, frame, *, n_reference: int = 1, gain: float = 1.0,
-                   upsample_factor: int = 20, nonrigid: bool = True, iterations: int = 4,
+                   upsample_factor: int = 20, nonrigid: bool = True, iterations: int = 3,
                    smooth_lines: float = 32.0, smooth_px: float = 2.0,
                    initial_shift_px=None, near_px=None) -> FrameRegistration:
     """Register `frame` to `reference`: rigid shift, then per-line offsets.

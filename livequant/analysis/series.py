@@ -116,7 +116,7 @@ class SeriesStack:
                  dwell_s: float | None = None, nonrigid: bool = True,
                  max_jump_px: float = 10.0, max_residual_chi2: float = 3.0,
                  max_residual_ratio: float = 1.5, upsample_factor: int = 20,
-                 iterations: int = 4, smooth_lines: float = 32.0, smooth_px: float = 2.0):
+                 iterations: int = 3, smooth_lines: float = 32.0, smooth_px: float = 2.0):
         for name, v in (("gain", gain), ("max_jump_px", max_jump_px),
                         ("max_residual_chi2", max_residual_chi2),
                         ("max_residual_ratio", max_residual_ratio)):
