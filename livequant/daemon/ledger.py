@@ -618,13 +618,14 @@ class Ledger:
         if not self._has_table("series_members"):
             return []
         sql = ("SELECT series_id, frame_id, idx, accepted, reason, message, shift_row_px, "
-               "shift_col_px, residual_chi2, line_rms_px, payload_json FROM series_members")
+               "shift_col_px, residual_chi2, line_rms_px, payload_json, created_at "
+               "FROM series_members")
         rows = (self._all(sql + " WHERE series_id=? ORDER BY idx", (series_id,)) if series_id
                 else self._all(sql + " ORDER BY series_id, idx"))
         return [{"series_id": s, "frame_id": f, "index": i, "accepted": bool(a), "reason": r,
                  "message": m, "shift_px": [sr, sc], "residual_chi2": c, "line_rms_px": lr,
-                 "payload": None if p is None else json.loads(p)}
-                for s, f, i, a, r, m, sr, sc, c, lr, p in rows]
+                 "payload": None if p is None else json.loads(p), "created_at": t}
+                for s, f, i, a, r, m, sr, sc, c, lr, p, t in rows]
 
     def series_aggregates(self, *, series_id: str | None = None,
                           aggregate_id: str | None = None) -> list[dict]:

@@ -94,8 +94,39 @@ class SeriesAggregator:
     def start(self) -> None:
         if not self.cfg.enabled:
             return
+        self._catch_up()
         self._thread = threading.Thread(target=self._run, name="series", daemon=True)
         self._thread.start()
+
+    def _catch_up(self, limit: int = 500) -> None:
+        """Members done before a restart but never offered to their series (they were
+        still waiting when the daemon stopped): hand them over now.  Only frames
+        finished after the last recorded member are looked at (at most `limit`)."""
+        import json
+
+        members = self.ledger.series_members()
+        offered = {m["frame_id"] for m in members}
+        since = 0.0
+        if members:
+            since = max(float(m["created_at"] or 0.0) for m in members) - 60.0
+        done = [r for r in self.ledger.rows(state="done")
+                if r.frame_id and r.finished_at and r.finished_at >= since
+                and r.frame_id not in offered][-limit:]
+        frames_dir = self.series_dir.parent / "frames"
+        for r in done:
+            try:
+                summary = json.loads((frames_dir / r.frame_id / "summary.json")
+                                     .read_text(encoding="utf-8"))
+            except (OSError, ValueError):
+                continue
+            meta = summary.get("meta") or {}
+            if (meta.get("extra") or {}).get("series_role") == "aggregate":
+                continue
+            fid = meta.get("frame_id") or r.frame_id
+            key = meta.get("series_id") or (fid.rpartition("#")[0] if "#" in fid else None)
+            if key:
+                self._queue.put((key, r.path, fid, _acquired_s(meta.get("acquired_at")),
+                                 time.monotonic()))
 
     def stop(self, timeout_s: float = 30.0) -> None:
         """Finish the members handed over so far (up to `timeout_s`), then stop."""

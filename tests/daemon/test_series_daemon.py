@@ -183,3 +183,34 @@ def test_a_series_goes_on_after_a_restart(tmp_path):
     assert snap.series[0]["series_id"] == "r" and snap.series[0]["depth"] == 4
     assert snap.series[0]["aggregate_id"] == "r~avg004"
     ledger.close()
+
+
+def test_members_done_before_a_restart_but_never_offered_are_caught_up(tmp_path):
+    """Frames of a series done (summary.json written) while no aggregator ran, e.g.
+    still waiting when the daemon stopped: the next start offers them, in order."""
+    from livequant.config import Settings
+    from livequant.daemon.series import SeriesAggregator
+    from livequant.frames import read_frame, write_json_atomic
+
+    watch = tmp_path / "watch"
+    eng = perovskite_engine(dwell_time_us=1.0, seed=12)
+    acqs = eng.acquire_series(3, (0.0, 0.0), 1.28, (128, 128), series_id="late")
+    ledger = Ledger(tmp_path / "ledger.sqlite")
+    for a in acqs:
+        write_sim(watch, a)
+        path = watch / f"{a.frame_id}.npy"
+        reg = ledger.register(str(path), origin="folder", sha256=a.frame_id, sidecar_sha256=None,
+                              size_bytes=1, mtime_ns=1, complete_at=0.0)
+        ledger.claim(newest_first=False, newer_than_seq=0)
+        ledger.finish(reg.seq, frame_id=a.frame_id)
+        (tmp_path / "frames" / a.frame_id).mkdir(parents=True)
+        write_json_atomic(tmp_path / "frames" / a.frame_id / "summary.json",
+                          {"frame_id": a.frame_id, "meta": read_frame(path).meta.to_json()})
+    written = []
+    agg = SeriesAggregator(Settings(), ledger, _Publisher(), tmp_path / "series",
+                           register=written.append)
+    agg.start()
+    agg.stop(timeout_s=120)
+    assert [m["frame_id"] for m in ledger.series_members("late")] == [a.frame_id for a in acqs]
+    assert [p.stem for p in written] == ["late~avg002", "late~avg003"]
+    ledger.close()
