@@ -306,6 +306,23 @@ class DriftSettings(_Model):
     clock: Literal["wall", "frames"] = "wall"
 
 
+class SeriesSettings(_Model):
+    """Fast-scan series and orthogonal pairs (livequant.analysis.series, .orthogonal)."""
+
+    enabled: bool = True
+    nonrigid: bool = True
+    max_jump_px: float = Field(default=10.0, gt=0, le=10_000)
+    max_residual_chi2: float = Field(default=3.0, gt=0)
+    max_residual_ratio: float = Field(default=1.5, gt=1)
+    smooth_lines: float = Field(default=32.0, gt=0, le=100_000)
+    smooth_px: float = Field(default=2.0, ge=0, le=20)
+    iterations: int = Field(default=3, ge=1, le=50)
+    min_members: int = Field(default=2, ge=1, le=10_000)
+    analyse_every: int = Field(default=1, ge=1, le=10_000)
+    max_series: int = Field(default=4, ge=1, le=100)
+    reorder_s: float = Field(default=10.0, ge=0, le=3600)
+
+
 class Settings(_Model):
     """Every setting of livequant, with its default."""
 
@@ -316,6 +333,7 @@ class Settings(_Model):
     rules: RulesSettings = RulesSettings()
     proposals: ProposalSettings = ProposalSettings()
     drift: DriftSettings = DriftSettings()
+    series: SeriesSettings = SeriesSettings()
 
 
 # ---------------------------------------------------------------- loading

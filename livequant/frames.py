@@ -75,8 +75,9 @@ class Sidecar(BaseModel):
     acquired_at: datetime | None = None
     detector: str | None = None
     beam_current_pa: float | None = Field(default=None, gt=0, allow_inf_nan=False)
+    series_id: str | None = None
 
-    @field_validator("frame_id", "detector", mode="before")
+    @field_validator("frame_id", "detector", "series_id", mode="before")
     @classmethod
     def _must_be_text(cls, value):
         if value is not None and not isinstance(value, str):
@@ -130,11 +131,13 @@ class FrameMeta:
     detector: str = "HAADF"
     extra: dict = field(default_factory=dict)
     beam_current_pa: float | None = None
+    series_id: str | None = None
 
     def to_json(self) -> dict:
         d = {k: getattr(self, k) for k in (
             "frame_id", "pixel_size_pm", "dwell_time_us", "stage_x_nm", "stage_y_nm",
-            "scan_rotation_deg", "acquired_at", "detector", "beam_current_pa")}
+            "scan_rotation_deg", "acquired_at", "detector", "beam_current_pa",
+             "series_id")}
         d["extra"] = dict(self.extra)
         return d
 
@@ -360,7 +363,8 @@ def resolve_meta(sidecar: Sidecar | None, *, default_id: str, defaults: dict | N
     defaults = dict(defaults or {})
     values: dict[str, Any] = {}
     known = ("frame_id", "pixel_size_pm", "dwell_time_us", "stage_x_nm", "stage_y_nm",
-             "scan_rotation_deg", "acquired_at", "detector", "beam_current_pa")
+             "scan_rotation_deg", "acquired_at", "detector", "beam_current_pa",
+             "series_id")
     extra: dict = {}
     if sidecar is not None:
         for key in known:

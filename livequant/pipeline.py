@@ -265,7 +265,7 @@ def limit_threads(n_threads: int) -> int:
 
 
 def analyze_frame(frame: Frame, settings: Settings | None = None, *,
-                  scan_drift_nm_per_s=None) -> FrameResult:
+                  scan_drift_nm_per_s=None, min_noise_scale: float = 0.0) -> FrameResult:
     """Run lattice finding, column detection, site assignment and refinement.
 
     Parameters
@@ -280,6 +280,11 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
         (:mod:`livequant.analysis.scan_drift`) before the lattice and the cell
         descriptors are computed; ``summary()["scan_drift_correction"]`` says
         what was done.  The GPA strain works on the image and is not corrected.
+    min_noise_scale : float
+        Floor of the column fit's noise scale (see
+        :func:`~livequant.analysis.refine.refine_columns`): 1.0 for the
+        registered sum of a series, whose resampled noise is smoother than
+        Poisson noise of the same counts.
 
     Returns
     -------
@@ -290,6 +295,12 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
     """
     settings = settings or Settings()
     cfg = settings.analysis
+    series_block = (frame.meta.extra or {}).get("series")
+    if (frame.meta.extra or {}).get("series_role") == "aggregate":
+        # The registered sum of a series (livequant.series): its drift is already
+        # undone, and its resampled noise must not shrink the uncertainties.
+        scan_drift_nm_per_s = None
+        min_noise_scale = max(min_noise_scale, 1.0)
     image = np.asarray(frame.pixels, dtype=np.float64)
     timings: dict[str, float] = {}
     base = dict(frame_id=frame.frame_id, meta=frame.meta, shape=frame.shape)
@@ -361,6 +372,7 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
         halo_rounds=cfg.refine.halo_rounds,
         min_significance=cfg.refine.min_significance,
         fixed_shape_fallback=cfg.refine.fixed_shape_fallback,
+        min_noise_scale=min_noise_scale,
     )
     timings["refine"] = time.perf_counter() - t0
 
@@ -406,6 +418,8 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
         t0 = time.perf_counter()
         extra["physics"] = _wall_physics(cells, material, cfg.physics)
         timings["physics"] = time.perf_counter() - t0
+    if series_block is not None:
+        extra["series"] = series_block
     timings["total"] = float(sum(timings.values()))
     return FrameResult(**base, status=STATUS_OK, lattice=lattice, columns=columns, cells=cells,
                        calibration=calibration, timings_s=timings, extra=extra,

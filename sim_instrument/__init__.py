@@ -21,7 +21,7 @@ from sim_instrument.engine import (
     electrons_per_pixel,
 )
 from sim_instrument.outputs import FolderSink, ZmqSink, default_truth_dir
-from sim_instrument.quick import perovskite_frame
+from sim_instrument.quick import perovskite_engine, perovskite_frame
 from sim_instrument.requests import (
     SCAN_REQUEST_TOPIC,
     ScanRequest,
@@ -42,6 +42,7 @@ __all__ = [
     "ZmqSink",
     "default_truth_dir",
     "perovskite_frame",
+    "perovskite_engine",
     "SCAN_REQUEST_TOPIC",
     "ScanRequest",
     "ScanRequestError",

@@ -23,6 +23,8 @@ examples:
   python -m sim_instrument survey --out /tmp/frames --zmq tcp://127.0.0.1:5557
   python -m sim_instrument replay --from /tmp/frames --out /tmp/watched --interval-s 1
   python -m sim_instrument serve --events tcp://127.0.0.1:5556 --out /tmp/frames --duration-s 600
+  python -m sim_instrument series --out /tmp/frames --frames 16 --dwell-us 1 --shape 512 --fov-nm 5
+  python -m sim_instrument series --out /tmp/frames --pair --shape 512 --fov-nm 5
   python -m sim_instrument scenarios
 
 Frames land in --out as NAME.tif plus NAME.json (written image first, sidecar
@@ -142,6 +144,31 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--step-nm", type=_positive,
                    help="distance between frame centres, nm (default: one field of view)")
 
+    q = sub.add_parser("series", help="a fast-scan series, or an orthogonal pair, of one region",
+                       description="Scan one region again and again with a fast dwell (a "
+                                   "series sharing one series_id), or twice with the scan "
+                                   "rotated by 90 degrees (--pair).  Drift, line jitter and "
+                                   "shot noise act on every frame; each frame's truth is "
+                                   "written beside it.")
+    _add_instrument(q)
+    _add_scan(q)
+    _add_outputs(q)
+    g = q.add_argument_group("series")
+    g.add_argument("--frames", type=int, default=16, help="frames in the series (default: 16)")
+    g.add_argument("--pair", action="store_true",
+                   help="an orthogonal pair (scan rotations R and R + 90) instead of a series")
+    g.add_argument("--at-nm", type=float, nargs=2, default=(-30.0, -70.0), metavar=("X", "Y"),
+                   help="stage position of the region, nm (default: -30 -70)")
+    g.add_argument("--series-id", help="the sidecar series_id (default: from the first frame)")
+    g.add_argument("--jitter-pm", type=_nonneg,
+                   help="rms jitter of each scan line along the fast axis, pm (default: the "
+                        "scenario's)")
+    g.add_argument("--gap-s", type=_nonneg, default=0.0,
+                   help="dead time between frames, s (default: 0)")
+    g.add_argument("--jump-before", type=int, metavar="K",
+                   help="the specimen jumps by 0.2 nm just before frame K (a frame the "
+                        "series must leave out)")
+
     r = sub.add_parser("replay", help="re-send an existing folder of frames",
                        description="Re-send the frames of a folder (image plus sidecar) to a "
                                    "watched folder and/or a socket at a fixed rate.")
@@ -229,7 +256,9 @@ def _run(args) -> int:
             kw = {k: v for k, v in (("dwell_time_us", args.dwell_us),
                                     ("beam_current_pa", args.current_pa)) if v is not None}
             kw["dtype"] = args.dtype
-            if args.mode == "survey":
+            if args.mode == "series":
+                ids = _run_series(engine, sinks, args, kw)
+            elif args.mode == "survey":
                 ids = modes.run_survey(engine, sinks, frames=args.frames, fov_nm=args.fov_nm,
                                        shape_px=args.shape, start_nm=args.start_nm,
                                        step_nm=args.step_nm, cadence_s=args.cadence_s,
@@ -249,6 +278,26 @@ def _run(args) -> int:
             sink.close()
     print(f"sim_instrument: {len(ids)} frame(s) sent", file=sys.stderr)
     return EXIT_OK
+
+
+def _run_series(engine, sinks, args, kw) -> list[str]:
+    if args.jitter_pm is not None:
+        inst = engine.instrument
+        engine.instrument = inst.model_copy(update={"distortion": inst.distortion.model_copy(
+            update={"line_jitter_pm": args.jitter_pm})})
+    common = dict(scan_rotation_deg=args.rotation_deg, series_id=args.series_id,
+                  gap_s=args.gap_s, **kw)
+    if args.pair:
+        acqs = engine.acquire_orthogonal_pair(tuple(args.at_nm), args.fov_nm, args.shape,
+                                              **common)
+    else:
+        jumps = {args.jump_before: (0.2, 0.0)} if args.jump_before is not None else None
+        acqs = engine.acquire_series(args.frames, tuple(args.at_nm), args.fov_nm, args.shape,
+                                     jump_before=jumps, **common)
+    for acq in acqs:
+        for sink in sinks:
+            sink.send(acq.pixels, acq.sidecar, acq.truth)
+    return [a.frame_id for a in acqs]
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -80,6 +80,7 @@ class DriftModel:
         self._rng = np.random.default_rng(seed)
         self._t_s = 0.0
         self._walk_nm = np.zeros(2)
+        self._pending: list = []  # (time_s, offset_nm) of scheduled jumps
 
     @classmethod
     def from_spec(cls, spec: DriftSpec, seed: int = 0) -> "DriftModel":
@@ -106,6 +107,10 @@ class DriftModel:
         steps = self._rng.standard_normal((times.size, 2)) * (
             self.random_walk_nm_per_sqrt_s * np.sqrt(dt))[:, None]
         walk = self._walk_nm + np.cumsum(steps, axis=0)
+        due = [j for j in self._pending if j[0] <= times[-1]]
+        self._pending = [j for j in self._pending if j[0] > times[-1]]
+        for t_j, off in due:
+            walk[times >= t_j] += off
         self._walk_nm = walk[-1].copy()
         self._t_s = float(times[-1])
         return times[:, None] * self.velocity_nm_per_s[None, :] + walk
@@ -113,6 +118,18 @@ class DriftModel:
     def peek_nm(self) -> np.ndarray:
         """Drift at the current time without advancing."""
         return self._t_s * self.velocity_nm_per_s + self._walk_nm
+
+    def jump(self, offset_nm, *, at_s: float | None = None) -> None:
+        """A sudden specimen displacement (a holder settling, a charging jump).
+
+        From now on, or from the simulated time `at_s` on (which may fall
+        inside the next frame: the lines scanned after it see the jump).
+        """
+        offset = np.asarray(offset_nm, float).reshape(2)
+        if at_s is None or at_s <= self._t_s:
+            self._walk_nm = self._walk_nm + offset
+        else:
+            self._pending.append((float(at_s), offset))
 
 
 @dataclass(frozen=True)
@@ -573,6 +590,87 @@ class ScanEngine:
         truth = self._truth(fid, raster, (rows, cols), pixel_nm, columns, e_f, e_s, sidecar,
                             drift_lines, drift_end, t0, t_line)
         return Acquisition(pixels=pixels, sidecar=sidecar, truth=truth)
+
+    def acquire_series(self, n_frames: int, center_nm=(0.0, 0.0), fov_nm: float = 5.12,
+                       shape_px=(512, 512), *, series_id: str | None = None,
+                       dwell_time_us: float | None = None, gap_s: float = 0.0,
+                       scan_rotation_deg: float = 0.0, jump_before: dict | None = None,
+                       jump_during: dict | None = None, **kwargs) -> list[Acquisition]:
+        """A fast-scan series: `n_frames` frames of one region, one after the other.
+
+        Every frame carries ``series_id`` in its sidecar (DESIGN.md) and its own
+        truth; the drift, the per-line jitter and the flyback of the instrument
+        act on every frame as on any other.
+
+        Parameters
+        ----------
+        n_frames : int
+        center_nm, fov_nm, shape_px, scan_rotation_deg, dwell_time_us :
+            As in :meth:`acquire` (a fast dwell is the point of a series).
+        series_id : str, optional
+            Default ``PREFIX_series_NNNNN`` after the first frame's number.
+        gap_s : float
+            Dead time between frames (the scan's return), seconds.
+        jump_before : dict, optional
+            ``{frame_index: (dx_nm, dy_nm)}``: the specimen jumps by that much
+            just before that frame starts (a frame that must not be averaged).
+        jump_during : dict, optional
+            ``{frame_index: (dx_nm, dy_nm)}``: the jump happens half-way
+            through that frame's scan.
+        **kwargs
+            Passed to :meth:`acquire`.
+        """
+        if n_frames < 1:
+            raise ValueError(f"`n_frames` must be >= 1, got {n_frames}")
+        if gap_s < 0:
+            raise ValueError(f"`gap_s` must be >= 0, got {gap_s}")
+        sid = series_id or f"{self.frame_prefix}_series_{self.frame_count + 1:05d}"
+        jumps = dict(jump_before or {})
+        mid_jumps = dict(jump_during or {})
+        user_extra = dict(kwargs.pop("extra", None) or {})
+        out = []
+        for k in range(int(n_frames)):
+            if k in jumps:
+                self.drift.jump(jumps[k])
+            if k in mid_jumps:
+                dwell = float(dwell_time_us if dwell_time_us is not None
+                              else self.instrument.dwell_time_us)
+                half = 0.5 * self.frame_time_s(shape_px, dwell)
+                self.drift.jump(mid_jumps[k], at_s=self.time_s + half)
+            extra = {**user_extra, "series_id": sid, "series_index": k}
+            acq = self.acquire(center_nm, fov_nm, shape_px, scan_rotation_deg=scan_rotation_deg,
+                               dwell_time_us=dwell_time_us, extra=extra, **kwargs)
+            if k in jumps or k in mid_jumps:
+                acq.truth.meta["jump_nm"] = [float(v) for v in jumps.get(k, mid_jumps.get(k))]
+                acq.truth.meta["jump_when"] = "before" if k in jumps else "half-way"
+            out.append(acq)
+            if gap_s > 0 and k < n_frames - 1:
+                self.wait(gap_s)
+        return out
+
+    def acquire_orthogonal_pair(self, center_nm=(0.0, 0.0), fov_nm: float = 5.12,
+                                shape_px=(512, 512), *, series_id: str | None = None,
+                                scan_rotation_deg: float = 0.0, gap_s: float = 0.0,
+                                **kwargs) -> tuple[Acquisition, Acquisition]:
+        """Two frames of one region with scan rotations 90 degrees apart, one after the other.
+
+        Both share ``series_id``; the second has ``scan_rotation_deg + 90``.
+        Drift distorts each along its own slow-scan direction, which is what
+        the orthogonal-pair correction of Ophus, Ciston & Nelson
+        (Ultramicroscopy 162, 1 (2016)) exploits.
+        """
+        rows, cols = (int(v) for v in shape_px)
+        if rows != cols:
+            raise ValueError(f"an orthogonal pair needs a square frame, got {shape_px}")
+        sid = series_id or f"{self.frame_prefix}_pair_{self.frame_count + 1:05d}"
+        first = self.acquire(center_nm, fov_nm, shape_px, scan_rotation_deg=scan_rotation_deg,
+                             extra={"series_id": sid, "series_index": 0}, **kwargs)
+        if gap_s > 0:
+            self.wait(gap_s)
+        second = self.acquire(center_nm, fov_nm, shape_px,
+                              scan_rotation_deg=scan_rotation_deg + 90.0,
+                              extra={"series_id": sid, "series_index": 1}, **kwargs)
+        return first, second
 
     # ------------------------------------------------------------ truth
 

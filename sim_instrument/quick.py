@@ -15,7 +15,7 @@ from sim_instrument.engine import Acquisition, DriftModel, ScanEngine
 from sim_instrument.scenario import scenario_from_dict
 from sim_instrument.specimen import Specimen
 
-__all__ = ["perovskite_frame"]
+__all__ = ["perovskite_frame", "perovskite_engine"]
 
 
 def perovskite_frame(material: str = "SrTiO3", shape=(256, 256), *, pixel_size_pm: float = 10.0,
@@ -96,8 +96,50 @@ def perovskite_frame(material: str = "SrTiO3", shape=(256, 256), *, pixel_size_p
             "detector": {"mode": detector.upper()},
         },
     }
-    specimen = Specimen(scenario_from_dict(raw, where="perovskite_frame", materials=materials),
-                        materials=materials)
-    engine = ScanEngine(specimen, drift=DriftModel(drift_nm_per_s, 0.0), seed=seed)
+    engine = _engine(raw, drift_nm_per_s=drift_nm_per_s, seed=seed, materials=materials)
     return engine.acquire(center_nm, cols * pixel_size_pm / 1000.0, (rows, cols),
                           scan_rotation_deg=rotation_deg, noise=noise, frame_id=frame_id)
+
+
+def _engine(raw, *, drift_nm_per_s, seed, materials, random_walk=0.0) -> ScanEngine:
+    specimen = Specimen(scenario_from_dict(raw, where="perovskite_frame", materials=materials),
+                        materials=materials)
+    return ScanEngine(specimen, drift=DriftModel(drift_nm_per_s, random_walk, seed=seed + 1),
+                      seed=seed)
+
+
+def perovskite_engine(material: str = "SrTiO3", *, extent_nm: float = 40.0,
+                      dwell_time_us: float = 1.0, beam_current_pa: float = 20.0,
+                      probe_sigma_pm: float = 40.0, detector: str = "HAADF",
+                      drift_nm_per_s=(0.0, 0.0), random_walk_nm_per_sqrt_s: float = 0.0,
+                      line_jitter_pm: float = 0.0, flyback_s: float = 0.0,
+                      flyback_amplitude_pm: float = 0.0, seed: int = 0,
+                      frame_prefix: str = "quick", materials=None) -> ScanEngine:
+    """A scan engine over a perfect single-material lattice, for series and pairs.
+
+    Unlike :func:`perovskite_frame` the engine (its clock, drift and noise)
+    lives on, so :meth:`ScanEngine.acquire_series` and
+    :meth:`ScanEngine.acquire_orthogonal_pair` see one continuous drift.
+    `line_jitter_pm` is the rms jitter of each scan line along the fast axis.
+    """
+    raw = {
+        "name": f"quick-{material}",
+        "size_nm": [extent_nm, extent_nm],
+        "reference_material": material,
+        "layers": [{"material": material}],
+        "seed": seed,
+        "instrument": {
+            "beam_current_pa": beam_current_pa,
+            "dwell_time_us": dwell_time_us,
+            "probe": {"sigma_pm": probe_sigma_pm, "tail_fraction": 0.0},
+            "drift": {"velocity_nm_per_s": list(drift_nm_per_s),
+                      "random_walk_nm_per_sqrt_s": random_walk_nm_per_sqrt_s},
+            "distortion": {"line_jitter_pm": line_jitter_pm, "flyback_s": flyback_s,
+                           "flyback_amplitude_pm": flyback_amplitude_pm},
+            "detector": {"mode": detector.upper()},
+        },
+    }
+    engine = _engine(raw, drift_nm_per_s=drift_nm_per_s, seed=seed, materials=materials,
+                     random_walk=random_walk_nm_per_sqrt_s)
+    engine.frame_prefix = frame_prefix
+    return engine

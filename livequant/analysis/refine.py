@@ -118,7 +118,7 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
                    max_iterations=30, tolerance_px=1e-4, elliptical=True, joint_neighbours=True,
                    weighting="poisson", gain=1.0, neighbour_passes=2, profile="gaussian",
                    halo_radius_fraction=1.5, halo_rounds=2, min_significance=3.0,
-                   fixed_shape_fallback=False) -> Columns:
+                   fixed_shape_fallback=False, min_noise_scale=0.0) -> Columns:
     """Fit every column with a 2D Gaussian plus a constant local background.
 
     Parameters
@@ -167,6 +167,12 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
         Detector counts per electron, used for the Poisson variance.  The
         reported uncertainties are further scaled by the frame's median
         reduced chi-square, so a wrong gain does not make them wrong.
+    min_noise_scale : float
+        Floor of that scale.  An image resampled and summed from a series has
+        its pixel noise smoothed (lower variance, correlated between pixels)
+        without gaining information; with 1.0 its uncertainties stay the
+        Poisson bound of the summed counts instead of shrinking with the
+        smoothing.
 
     Returns
     -------
@@ -236,7 +242,7 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
         theta, state, n_fallback = _fixed_shape_refit(fit, theta, theta_init, state, neighbour_model,
                                                       sublattice, ij, elliptical, min_significance)
     columns = _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius,
-                          min_significance)
+                          min_significance, min_noise_scale)
     extra = dict(columns.extra)
     extra["profile"] = profile
     if halo is not None:
@@ -632,7 +638,7 @@ def _collapsed(minor_width, labels, converged, fraction=_COLLAPSE_FRACTION) -> n
 
 
 def _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius,
-                min_significance=3.0):
+                min_significance=3.0, min_noise_scale=0.0):
     n = len(theta)
     n_par = theta.shape[1]
     converged = state["converged"].copy()
@@ -647,7 +653,7 @@ def _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radiu
         # true gain / excess noise; it scales every covariance alike.
         scale_ok = converged & np.isfinite(chi2)
         scale = float(np.median(chi2[scale_ok])) if scale_ok.any() else 1.0
-        cov = cov * max(scale, 1e-12)
+        cov = cov * max(scale, min_noise_scale, 1e-12)
     else:
         cov = cov * chi2[:, None, None]
     diag = np.einsum("kii->ki", cov)

@@ -43,6 +43,7 @@ from livequant.daemon.ledger import Ledger
 from livequant.daemon.publisher import EventPublisher
 from livequant.daemon.register import file_sha256, register_file
 from livequant.daemon.security import bind_policy, start_authenticator
+from livequant.daemon.series import SeriesAggregator
 from livequant.daemon.session import (SessionLock, SetupError, check_session_folder,
                                       check_watch_folder, write_daemon_file)
 from livequant.daemon.sources import (Candidate, FolderSource, SocketSource,
@@ -129,6 +130,7 @@ class Daemon:
         self._rules_arg = rules
         self._session_context_arg = session_context
         self.decisions: DecisionLoop | None = None
+        self.series: SeriesAggregator | None = None
         self._view_errors: set[str] = set()
         self.add_command("proposals", self._cmd_proposals, schema=DECISION_SCHEMAS["proposals"])
         self.add_command("accept", self._cmd_accept, schema=DECISION_SCHEMAS["accept"])
@@ -201,6 +203,9 @@ class Daemon:
             except ConfigError as exc:  # a broken rule plugin stops start-up, not frame 1
                 raise SetupError(f"rules: {exc}") from None
             self.decisions.resume()
+            self.series = SeriesAggregator(self.settings, self.ledger, self.publisher,
+                                           self.paths.root / "series",
+                                           register=self._register_aggregate, warn=self._warn)
             self.commands = CommandServer(self._zmq, f"tcp://{host}:{self.cfg.commands_port}",
                                           self._command_handlers(), curve=curve,
                                           schemas=self._extra_schemas)
@@ -219,6 +224,7 @@ class Daemon:
         self._intake_thread = threading.Thread(target=self._intake_loop, name="intake",
                                                daemon=True)
         self._intake_thread.start()
+        self.series.start()
         # Socket frames saved before a crash but never registered.
         for cand in incoming_candidates(self.paths.incoming):
             put_until(self._intake, cand, self._intake_stop)
@@ -323,6 +329,10 @@ class Daemon:
                 log.info("%s changed since it was analysed; queued again", ref_name(ref))
             if reg.action in ("queued", "requeued"):
                 self._wake.set()
+
+    def _register_aggregate(self, path: Path) -> None:
+        """A series aggregate written to the session: queue it like a frame (series thread)."""
+        put_until(self._intake, Candidate(str(path), "series", time.time()), self._intake_stop)
 
     def _on_rejected_message(self, reason: str, message: str) -> None:
         self._warn(f"socket: {message}")
@@ -463,6 +473,8 @@ class Daemon:
                 self._warn(f"{out.frame_id}: {summary.get('status')}: "
                            f"{summary.get('message', '')}")
             self._decide(out, None if row is None else row.complete_at)
+            if self.series is not None:
+                self.series.on_done(out)
         else:
             self._one_at_a_time = False
             if not self.ledger.quarantine(seq, reason=out.reason or "unknown",
@@ -595,6 +607,7 @@ class Daemon:
             proposals=proposals,
             flags=flags,
             decisions=decisions,
+            series=self.series.status() if self.series is not None else (),
         )
 
     def _heartbeat(self) -> None:
@@ -744,6 +757,8 @@ class Daemon:
             self.folder_source.stop()
         if self.socket_source is not None:
             self.socket_source.stop()
+        if self.series is not None:
+            self.series.stop(timeout_s=self.cfg.grace_s)
         self._intake_stop.set()
         if self._intake_thread is not None:
             self._intake_thread.join(10)

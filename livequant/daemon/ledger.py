@@ -41,6 +41,14 @@ drift
     One row per drift measurement: the specimen drift ``d(t)`` (stage
     coordinates, nm, relative to the session's first frame) at a frame's
     acquisition time, with the earlier frame it was measured against.
+series_members, series_aggregates (schema 2)
+    One row per frame offered to a series (fast-scan series or orthogonal
+    pair): whether it went into the average, or why not, its shift and
+    registration residual; one row per aggregate analysed (the running
+    average at N members, or a corrected pair) with its precision and the
+    gain over a single member.  ``frames.series_id`` marks members (and the
+    aggregates, which are frames of the session too).  A schema-1 ledger is
+    migrated in place when a daemon opens it.
 """
 
 from __future__ import annotations
@@ -57,7 +65,7 @@ from typing import Iterator
 __all__ = ["Ledger", "LedgerRow", "STATES", "SCHEMA_VERSION", "LEDGER_NAME", "Registration"]
 
 LEDGER_NAME = "ledger.sqlite"
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 _CHANGED = "changed-while-processing"  # transient `reason` of a processing frame
 STATES = ("queued", "processing", "done", "quarantined")
 
@@ -88,7 +96,8 @@ CREATE TABLE IF NOT EXISTS frames (
     read_s REAL,
     analyze_s REAL,
     write_s REAL,
-    published_at REAL
+    published_at REAL,
+    series_id TEXT                              -- member (or aggregate) of this series
 );
 CREATE INDEX IF NOT EXISTS frames_by_state ON frames (state, seq);
 CREATE INDEX IF NOT EXISTS frames_by_sha ON frames (sha256);
@@ -120,6 +129,35 @@ CREATE TABLE IF NOT EXISTS decisions (
     decided_by TEXT NOT NULL,                   -- 'operator', 'auto', ...
     note TEXT,
     decided_at REAL NOT NULL
+);
+CREATE TABLE IF NOT EXISTS series_members (
+    series_id TEXT NOT NULL,
+    frame_id TEXT NOT NULL,
+    idx INTEGER NOT NULL,                       -- order offered to the series
+    accepted INTEGER NOT NULL,                  -- 1: in the average
+    reason TEXT,                                -- why not: jump, residual, rotation, ...
+    message TEXT,
+    shift_row_px REAL,
+    shift_col_px REAL,
+    residual_chi2 REAL,
+    line_rms_px REAL,
+    payload_json TEXT,
+    created_at REAL NOT NULL,
+    PRIMARY KEY (series_id, frame_id)
+);
+CREATE TABLE IF NOT EXISTS series_aggregates (
+    aggregate_id TEXT PRIMARY KEY,              -- the aggregate's frame id
+    series_id TEXT NOT NULL,
+    kind TEXT NOT NULL,                         -- 'average' or 'orthogonal'
+    n_members INTEGER NOT NULL,
+    n_excluded INTEGER NOT NULL,
+    path TEXT,                                  -- the aggregate image in the session
+    median_sigma_position_pm REAL,              -- once analysed
+    member_sigma_position_pm REAL,              -- median over its members' own frames
+    precision_gain REAL,                        -- member / aggregate
+    payload_json TEXT,
+    created_at REAL NOT NULL,
+    analysed_at REAL
 );
 CREATE TABLE IF NOT EXISTS drift (
     id INTEGER PRIMARY KEY AUTOINCREMENT,
@@ -203,10 +241,36 @@ class Ledger:
             self._db.executescript(_SCHEMA)
             self._db.execute("INSERT OR IGNORE INTO meta VALUES ('schema_version', ?)",
                              (str(SCHEMA_VERSION),))
+            self._migrate()
         found = self._db.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()
+        if readonly and found is not None and int(found[0]) == 1:
+            found = (str(SCHEMA_VERSION),)  # read as is; the series tables are simply absent
         if found is None or int(found[0]) != SCHEMA_VERSION:
             raise RuntimeError(f"{self.path}: ledger schema version {found and found[0]} is not "
                                f"{SCHEMA_VERSION}; use a new session folder for this version")
+
+    def _migrate(self) -> None:
+        """Bring an older ledger up to :data:`SCHEMA_VERSION` (additive changes only)."""
+        found = self._db.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()
+        if found is None or int(found[0]) >= SCHEMA_VERSION:
+            return
+        if int(found[0]) == 1:
+            # 1 -> 2: the series tables (created above, IF NOT EXISTS) and frames.series_id
+            cols = {r[1] for r in self._db.execute("PRAGMA table_info(frames)")}
+            self._db.execute("BEGIN IMMEDIATE")
+            try:
+                if "series_id" not in cols:
+                    self._db.execute("ALTER TABLE frames ADD COLUMN series_id TEXT")
+                self._db.execute("UPDATE meta SET value=? WHERE key='schema_version'",
+                                 (str(SCHEMA_VERSION),))
+            except BaseException:
+                self._db.execute("ROLLBACK")
+                raise
+            self._db.execute("COMMIT")
+
+    def _has_table(self, name: str) -> bool:
+        return self._one("SELECT 1 FROM sqlite_master WHERE type='table' AND name=?",
+                         (name,)) is not None
 
     # ------------------------------------------------------------- plumbing
 
@@ -532,6 +596,87 @@ class Ledger:
         """One proposal by its id (the primary key), or None."""
         row = self._one(self._PROPOSAL_SQL + " WHERE id=?", (proposal_id,))
         return None if row is None else _proposal_dict(row)
+
+
+    # ------------------------------------------------------------- series
+
+    def add_series_member(self, *, series_id: str, frame_id: str, index: int, accepted: bool,
+                          reason: str | None = None, message: str | None = None,
+                          shift_px=None, residual_chi2: float | None = None,
+                          line_rms_px: float | None = None, payload: dict | None = None) -> None:
+        """Record what a series did with one frame (and mark the frame as its member)."""
+        shift = (None, None) if shift_px is None else (float(shift_px[0]), float(shift_px[1]))
+        self._tx([
+            ("INSERT OR REPLACE INTO series_members (series_id, frame_id, idx, accepted, reason, "
+             "message, shift_row_px, shift_col_px, residual_chi2, line_rms_px, payload_json, "
+             "created_at) VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
+             (series_id, frame_id, int(index), 1 if accepted else 0, reason, message, *shift,
+              residual_chi2, line_rms_px, _json_or_none(payload), time.time())),
+            ("UPDATE frames SET series_id=? WHERE frame_id=?", (series_id, frame_id)),
+        ])
+
+    def add_series_aggregate(self, *, aggregate_id: str, series_id: str, kind: str,
+                             n_members: int, n_excluded: int, path: str | None = None,
+                             member_sigma_position_pm: float | None = None,
+                             payload: dict | None = None) -> None:
+        self._tx([("INSERT OR REPLACE INTO series_aggregates (aggregate_id, series_id, kind, "
+                   "n_members, n_excluded, path, member_sigma_position_pm, payload_json, "
+                   "created_at) VALUES (?,?,?,?,?,?,?,?,?)",
+                   (aggregate_id, series_id, kind, int(n_members), int(n_excluded), path,
+                    member_sigma_position_pm, _json_or_none(payload), time.time()))])
+
+    def series_analysed(self, aggregate_id: str, *, median_sigma_position_pm: float | None,
+                        series_id: str) -> dict | None:
+        """Record an aggregate's precision once analysed; return its row (with the gain)."""
+        with self._transaction() as db:
+            row = db.execute("SELECT member_sigma_position_pm FROM series_aggregates WHERE "
+                             "aggregate_id=?", (aggregate_id,)).fetchone()
+            if row is None:
+                return None
+            gain = None
+            if median_sigma_position_pm and row[0]:
+                gain = float(row[0]) / float(median_sigma_position_pm)
+            db.execute("UPDATE series_aggregates SET median_sigma_position_pm=?, "
+                       "precision_gain=?, analysed_at=? WHERE aggregate_id=?",
+                       (median_sigma_position_pm, gain, time.time(), aggregate_id))
+            db.execute("UPDATE frames SET series_id=? WHERE frame_id=?",
+                       (series_id, aggregate_id))
+        return self.series_aggregates(aggregate_id=aggregate_id)[0]
+
+    def series_members(self, series_id: str | None = None) -> list[dict]:
+        """Members offered to series (one or all), in order."""
+        if not self._has_table("series_members"):
+            return []
+        sql = ("SELECT series_id, frame_id, idx, accepted, reason, message, shift_row_px, "
+               "shift_col_px, residual_chi2, line_rms_px, payload_json, created_at "
+               "FROM series_members")
+        rows = (self._all(sql + " WHERE series_id=? ORDER BY idx", (series_id,)) if series_id
+                else self._all(sql + " ORDER BY series_id, idx"))
+        return [{"series_id": s, "frame_id": f, "index": i, "accepted": bool(a), "reason": r,
+                 "message": m, "shift_px": [sr, sc], "residual_chi2": c, "line_rms_px": lr,
+                 "payload": None if p is None else json.loads(p), "created_at": t}
+                for s, f, i, a, r, m, sr, sc, c, lr, p, t in rows]
+
+    def series_aggregates(self, *, series_id: str | None = None,
+                          aggregate_id: str | None = None) -> list[dict]:
+        """Aggregates (of one series, one by id, or all) in the order they were made."""
+        if not self._has_table("series_aggregates"):
+            return []
+        sql = ("SELECT aggregate_id, series_id, kind, n_members, n_excluded, path, "
+               "median_sigma_position_pm, member_sigma_position_pm, precision_gain, "
+               "payload_json, created_at, analysed_at FROM series_aggregates")
+        if aggregate_id is not None:
+            rows = self._all(sql + " WHERE aggregate_id=?", (aggregate_id,))
+        elif series_id is not None:
+            rows = self._all(sql + " WHERE series_id=? ORDER BY created_at", (series_id,))
+        else:
+            rows = self._all(sql + " ORDER BY created_at")
+        return [{"aggregate_id": a, "series_id": s, "kind": k, "n_members": n,
+                 "n_excluded": x, "path": pth, "median_sigma_position_pm": ms,
+                 "member_sigma_position_pm": mm, "precision_gain": g,
+                 "payload": None if p is None else json.loads(p), "created_at": c,
+                 "analysed_at": an}
+                for a, s, k, n, x, pth, ms, mm, g, p, c, an in rows]
 
 
 def _proposal_dict(row) -> dict:

@@ -13,7 +13,8 @@ from dataclasses import asdict, dataclass, field
 
 from livequant.daemon.ledger import Ledger
 
-__all__ = ["Snapshot", "LastFrame", "last_frame_from_summary", "snapshot_from_ledger"]
+__all__ = ["Snapshot", "LastFrame", "last_frame_from_summary", "snapshot_from_ledger",
+           "series_from_ledger"]
 
 
 @dataclass(frozen=True)
@@ -79,6 +80,7 @@ class Snapshot:
     rejected_messages: int = 0
     proposals: tuple = ()
     flags: tuple = ()
+    series: tuple = ()
     decisions: dict = field(default_factory=dict)
     taken_at: float = field(default_factory=time.time)
 
@@ -147,7 +149,26 @@ def snapshot_from_ledger(ledger: Ledger, *, session: str) -> Snapshot:
     warnings = tuple(f"{reason}: {message}" for _path, reason, message
                      in ledger.recent_quarantined(5))
     return Snapshot(state="offline", session=session, counts=counts, warnings=warnings,
-                    frames_per_s=0.0, lag_s=0.0, last=_last_done(ledger, session))
+                    frames_per_s=0.0, lag_s=0.0, last=_last_done(ledger, session),
+                    series=series_from_ledger(ledger))
+
+
+def series_from_ledger(ledger: Ledger) -> tuple:
+    """Per series (as the live daemon shows them): depth, frames left out, latest
+    aggregate and its precision gain, from the ledger's series tables."""
+    out: dict[str, dict] = {}
+    for m in ledger.series_members():
+        st = out.setdefault(m["series_id"], {"series_id": m["series_id"], "depth": 0,
+                                             "n_excluded": 0, "kind": "average"})
+        st["depth" if m["accepted"] else "n_excluded"] += 1
+        st["last_member"] = m["frame_id"]
+    for a in ledger.series_aggregates():
+        st = out.setdefault(a["series_id"], {"series_id": a["series_id"]})
+        st.update({"kind": a["kind"], "aggregate_id": a["aggregate_id"],
+                   "n_members": a["n_members"],
+                   "median_sigma_position_pm": a["median_sigma_position_pm"],
+                   "precision_gain": a["precision_gain"]})
+    return tuple(out.values())
 
 
 def _last_done(ledger: Ledger, session: str) -> LastFrame | None:

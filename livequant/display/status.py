@@ -24,7 +24,8 @@ from livequant.daemon.status import Snapshot
 from livequant.textfmt import plus_minus
 
 __all__ = ["render_status", "format_duration", "shorten_path", "proposals_table", "flags_table",
-           "proposal_dose", "proposal_cells", "confirm_panel"]
+           "proposal_dose", "proposal_cells", "confirm_panel",
+           "series_line"]
 
 _STATE_STYLE = {"running": "bold green", "paused": "bold yellow", "draining": "bold yellow",
                 "starting": "bold cyan", "stopped": "bold red", "offline": "bold red"}
@@ -123,6 +124,8 @@ def render_status(snap: Snapshot, *, width: int = 80, ui=None):
             grid.add_row(label, line)
 
     has_decisions = bool(snap.proposals or snap.flags)
+    if getattr(snap, "series", ()):
+        grid.add_row("series", series_line(snap.series))
     if snap.decisions:
         grid.add_row("decisions", _decisions_line(snap.decisions))
     warnings = list(snap.warnings)[-(_MAX_WARNINGS_WITH_DECISIONS if has_decisions
@@ -225,6 +228,31 @@ def physics_rows(physics: dict | None, tracks: dict | None) -> list[tuple[str, s
         ok = mw.get("consistent") and (not me or me.get("consistent", True))
         rows.append(("", text + ("  (χ² consistent)" if ok else "  (χ²: frames disagree)")))
     return rows
+
+
+def series_line(rows, *, limit: int = 2) -> Text:
+    """The newest series: depth (frames averaged), frames left out, precision gain.
+
+    ``run-a 4 frames, 1 out, precision x2.0`` (the gain is the median
+    column-position uncertainty of one member over that of the average; about
+    sqrt(N) when shot noise limits).  An orthogonal pair reads ``pair``.
+    """
+    out = Text()
+    for k, r in enumerate(list(rows)[-limit:]):
+        if k:
+            out.append("  |  ", style="dim")
+        out.append(str(r.get("series_id")), style="bold")
+        if r.get("kind") == "orthogonal":
+            out.append(" pair")
+        else:
+            out.append(f" {r.get('depth', r.get('n_members', 0))} frames")
+        n_out = r.get("n_excluded") or 0
+        if n_out:
+            out.append(f", {n_out} out", style="yellow")
+        gain = r.get("precision_gain")
+        if gain:
+            out.append(f", precision x{gain:.1f}", style="green")
+    return out
 
 
 def _decisions_line(d: dict) -> Text:

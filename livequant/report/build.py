@@ -796,4 +796,13 @@ SECTIONS_AFTER_FRAMES: list[tuple[str, Callable[[ReportContext], list[Section]]]
     ("fit quality", lambda c: [_fit_quality_section(c.frame_data, c.figs, c.gain)]),
     ("wall physics", lambda c: physics_sections(c.session, c.summaries, c.figs, c.t0)),
     ("throughput", lambda c: [_throughput_section(c.session, c.figs, c.t0)]),
+    ("series", lambda c: _series_sections(c)),
 ]
+
+
+def _series_sections(ctx: ReportContext) -> list[Section]:
+    """Precision against the number of frames averaged, for sessions with series."""
+    from livequant.report.series import series_section
+
+    section = series_section(ctx.session.root, ctx.figs.save)
+    return [] if section is None else [section]
