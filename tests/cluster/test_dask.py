@@ -117,6 +117,11 @@ def test_mixed_archive_once_equal_to_analyze_then_nothing_to_do(tmp_path, client
     expect = _mixed_folder(archive)
     s = reprocess([archive], session, fast_settings(), client=client)
     assert (s.done, s.quarantined, s.failed) == (7, 4, 0), s.to_json()
+    # the worker setup capped each worker's compute threads: 2 workers share the cores
+    from livequant.pipeline import threads_per_worker
+    from tests.cluster._analyses import numba_threads
+
+    assert set(client.run(numba_threads).values()) == {threads_per_worker(2)}
 
     rows = _rows(session)
     done = {r.frame_id: r for r in rows if r.state == "done"}
