@@ -195,11 +195,10 @@ def test_worker_killed_mid_task_leaves_every_frame_done_exactly_once(tmp_path, c
     # and one frame that kills every worker it meets: given up, quarantined, never done
     write_frame(archive, "poison", lattice_image(SHAPE, seed=49),
                 sidecar("poison", always_die=True))
-    pids_before = set(client.run(os.getpid).values())
     s = reprocess([archive], session, fast_settings(), client=client,
                   analyze="tests.cluster._analyses:dying_analyze", progress=True)
     assert marker.exists(), "the worker was not killed"
-    assert int(marker.read_text()) in pids_before
+    assert int(marker.read_text()) != os.getpid()  # a worker process died, not this one
     assert (s.done, s.quarantined, s.failed) == (6, 1, 0), s.to_json()
     rows = _rows(session)
     assert len(rows) == 7
