@@ -15,7 +15,6 @@ import h5py
 import mrcfile
 import numpy as np
 import pytest
-import tifffile
 
 from livequant.cli import main
 from livequant.daemon import Daemon, Ledger
