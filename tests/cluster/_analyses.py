@@ -26,3 +26,10 @@ def dying_analyze(frame, settings):
         Path(marker).write_text(str(os.getpid()))
         os._exit(17)
     return analyze_frame(frame, settings)
+
+
+def numba_threads() -> int:
+    """Compute threads the analysis may use in this worker process."""
+    import numba
+
+    return numba.get_num_threads()
