@@ -117,7 +117,7 @@ def dose_map_figure(dm: DoseMap, proposals: list[dict], *, budget_e_per_a2: floa
                 color="#D55E00" if over else "#009E73", ha="center", va="center")
     ax.plot([], [], "-", color="#009E73", label="proposal (accepted: solid, open: dashed)")
     ax.plot([], [], "-", color="#D55E00", label="proposal over the dose budget")
-    ax.legend(fontsize=7, loc="upper right")
+    ax.legend(fontsize=7, loc="upper center", bbox_to_anchor=(0.5, -0.12), ncol=2)
     ax.set_xlabel("specimen x (nm, stage at the session's drift origin)")
     ax.set_ylabel("specimen y (nm)")
     ax.set_aspect("equal")
