@@ -1,0 +1,168 @@
+"""Accuracy on physics-based frames nobody on the project drew.
+
+The frames are multislice simulations (abTEM: Madsen & Susi, Open Research
+Europe 1, 24 (2021); method: Kirkland, *Advanced Computing in Electron
+Microscopy*, 2nd ed., Springer 2010) made by ``tests/data/multislice/make_frames.py``
+with frozen phonons; the truth is the atom positions put in (see the README
+there).  Noise is added here with fixed seeds at about 1,250 electrons per pixel
+(the dose the project's targets name, DESIGN.md "Targets").
+
+What each check is held to:
+
+* SrTiO3 lattice parameter: 390.53 pm (CHECK-VALUES section 1, IUCr sh5025), the
+  value the frame was built with; target within 0.1 pm.
+* PbTiO3 180 degree domains: the imposed +/-30 pm B-column shift along c
+  (tests/data/multislice/README.md); target: domain means within 0.2 pm,
+  per-cell scatter at most 1.5 pm at 1,250 e/px (DESIGN.md "Targets").
+* BaTiO3: B shift +10 pm along c; the polarization must point along the B
+  shift (CHECK-VALUES section 3 sign check: parallel in BaTiO3, antiparallel
+  in PbTiO3).
+* ABF octahedral rotation: 4.0 deg imposed, a0a0c+ (in-phase along the beam):
+  per-cell |tilt| within 0.3 deg, the checkerboard sign right in at least
+  95 % of cells; the a0a0c- frame has no net projected rotation (CHECK-VALUES
+  section 12, projection caveat).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.spatial import cKDTree
+
+from livequant.config import load_settings
+from livequant.frames import FrameMeta, frame_from_array
+from livequant.pipeline import analyze_frame
+from tests.helpers_multislice import load_frame, noisy
+
+DOSE_E_PER_PX = 1250.0
+
+
+def _analyse(image, meta, material, **overrides):
+    settings = load_settings(overrides={"analysis.material": material, **overrides})
+    frame = frame_from_array(image, FrameMeta(frame_id=meta["name"],
+                                              pixel_size_pm=meta["pixel_size_pm"],
+                                              detector=meta["detector"]))
+    return analyze_frame(frame, settings)
+
+
+def _counts(image):
+    """The noiseless frame in counts at the test dose (no noise)."""
+    return image * (DOSE_E_PER_PX / image.mean())
+
+
+def _cells_on_truth(result, truth, px, *, shift_key):
+    """Each cell matched to the B column of the truth whose cage centre it is."""
+    b = [t for t in truth if t["site"] == "B"]
+    # the cell centre is the B position minus its imposed shift (the A-cage centre)
+    centre = np.array([[t["x_px"] * px - t.get("imposed_dx_pm", 0.0),
+                        t["y_px"] * px - t.get(shift_key, 0.0)] for t in b])
+    c = result.cells
+    d, k = cKDTree(centre).query(np.stack([c.x_pm, c.y_pm], axis=1))
+    return [b[q] for q in k], d
+
+
+def _pto_domain_errors(result, truth, px):
+    rows, d = _cells_on_truth(result, truth, px, shift_key="imposed_dy_pm")
+    dy = np.asarray(result.cells.dy_pm)
+    sig = np.asarray(result.cells.sigma_dy_pm)
+    imposed = np.array([t["imposed_dy_pm"] for t in rows])
+    i_mod = np.array([t["i"] for t in rows]) % 12
+    # domain interiors: at least one cell from either wall (README of the frames)
+    interior = np.isin(i_mod, [1, 2, 3, 4, 7, 8, 9, 10]) & (d < 60) & np.isfinite(dy)
+    out = {}
+    for sign in (1, -1):
+        sel = interior & (np.sign(imposed) == sign)
+        out[sign] = (dy[sel] - imposed[sel], sig[sel])
+    return out
+
+
+@pytest.fixture(scope="module")
+def pto():
+    return load_frame("pto_domains_haadf")
+
+
+def test_pbtio3_domain_means_noiseless(pto):
+    image, meta, truth = pto
+    res = _analyse(_counts(image), meta, "PbTiO3")
+    for sign, (err, _) in _pto_domain_errors(res, truth, meta["pixel_size_pm"]).items():
+        assert len(err) >= 30
+        assert abs(err.mean()) < 0.2, f"domain {sign:+d}: mean error {err.mean():+.3f} pm"
+
+
+@pytest.mark.slow
+def test_pbtio3_domain_means_and_scatter_at_1250_e_per_px(pto):
+    image, meta, truth = pto
+    errors = {1: [], -1: []}
+    pulls = []
+    for seed in range(4):
+        res = _analyse(noisy(image, DOSE_E_PER_PX, seed), meta, "PbTiO3")
+        for sign, (err, sig) in _pto_domain_errors(res, truth, meta["pixel_size_pm"]).items():
+            errors[sign].append(err)
+            pulls.append(err / sig)
+    for sign, errs in errors.items():
+        means = np.array([e.mean() for e in errs])
+        scatter = np.array([e.std() for e in errs])
+        assert abs(means.mean()) < 0.2, f"domain {sign:+d}: mean error {means.mean():+.3f} pm"
+        assert scatter.max() <= 1.5, f"domain {sign:+d}: per-cell scatter {scatter.max():.2f} pm"
+    # honest uncertainty: the cell-to-cell scatter about the domain mean agrees
+    # with the propagated sigma (the frame's own fixed pattern, repeated by its
+    # tiling, is part of what the pull sees, so only a loose band is asked)
+    p = np.concatenate([x - x.mean() for x in pulls])
+    assert 0.7 < p.std() < 1.4
+
+
+def test_srtio3_lattice_parameter():
+    image, meta, _ = load_frame("sto_haadf")
+    for img in (_counts(image), noisy(image, DOSE_E_PER_PX, 3)):
+        res = _analyse(img, meta, "SrTiO3")
+        lat = res.lattice_summary()
+        assert lat["a_pm"] == pytest.approx(390.53, abs=0.1)
+        assert lat["b_pm"] == pytest.approx(390.53, abs=0.1)
+        assert lat["angle_deg"] == pytest.approx(90.0, abs=0.05)
+
+
+def test_barium_titanate_polarization_follows_the_b_shift():
+    image, meta, truth = load_frame("bto_haadf")
+    res = _analyse(noisy(image, DOSE_E_PER_PX, 5), meta, "BaTiO3")
+    c = res.cells
+    dy = np.nanmedian(c.dy_pm)
+    # +10 pm imposed along +y (rows); sign and size (the phonon configurations of
+    # this frame leave a fixed per-column pattern of about a picometre)
+    assert 7.0 < dy < 12.0
+    # CHECK-VALUES section 3: in BaTiO3 P is parallel to the B shift against the A cage
+    assert np.nanmedian(c.pol_y_C_per_m2) > 0
+    lat = res.lattice_summary()
+    assert sorted([lat["a_pm"], lat["b_pm"]]) == pytest.approx([399.98, 401.80], abs=0.15)
+
+
+def _tilts(name, image):
+    _, meta, truth = load_frame(name)
+    res = _analyse(image, meta, "SrTiO3")
+    px = meta["pixel_size_pm"]
+    b = [t for t in truth if t["site"] == "B"]
+    centre = np.array([[t["x_px"] * px, t["y_px"] * px] for t in b])
+    c = res.cells
+    d, k = cKDTree(centre).query(np.stack([c.x_pm, c.y_pm], axis=1))
+    tilt = np.asarray(c.tilt_deg)
+    ok = np.isfinite(tilt) & (d < 60)
+    imposed = np.array([b[q].get("imposed_angle_deg", 0.0) for q in k])
+    return tilt[ok], imposed[ok]
+
+
+@pytest.mark.parametrize("noise_seed", [None, 7])
+def test_abf_in_phase_rotation_checkerboard(noise_seed):
+    image, _, _ = load_frame("abf_rotation")
+    img = _counts(image) if noise_seed is None else noisy(image, DOSE_E_PER_PX, noise_seed)
+    tilt, imposed = _tilts("abf_rotation", img)
+    assert len(tilt) >= 60
+    assert np.all(np.abs(imposed) == pytest.approx(4.0))
+    assert abs(np.median(np.abs(tilt)) - 4.0) < 0.3
+    assert np.mean(np.sign(tilt) == np.sign(imposed)) >= 0.95
+
+
+def test_abf_antiphase_rotation_has_no_projected_tilt():
+    image, _, _ = load_frame("abf_rotation_antiphase")
+    tilt, _ = _tilts("abf_rotation_antiphase", noisy(image, DOSE_E_PER_PX, 11))
+    assert len(tilt) >= 60
+    assert abs(np.mean(tilt)) < 0.3
+    assert np.median(np.abs(tilt)) < 0.6
