@@ -18,16 +18,6 @@ _LAZY = {"Frame": "livequant.frames", "FrameError": "livequant.frames",
          "open_session": "livequant.api"}
 
 
-def __getattr__(name):
-    module = _LAZY.get(name)
-    if module is None:
-        raise AttributeError(f"module 'livequant' has no attribute {name!r}")
-    import importlib
+from livequant._lazy import lazy_names  # noqa: E402
 
-    value = getattr(importlib.import_module(module), name)
-    globals()[name] = value
-    return value
-
-
-def __dir__():
-    return sorted(set(globals()) | set(__all__))
+__getattr__, __dir__ = lazy_names(__name__, _LAZY, __all__)

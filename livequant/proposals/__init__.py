@@ -21,16 +21,6 @@ _MODULES = {
 _LAZY = {name: module for module, names in _MODULES.items() for name in names}
 
 
-def __getattr__(name):
-    module = _LAZY.get(name)
-    if module is None:
-        raise AttributeError(f"module 'livequant.proposals' has no attribute {name!r}")
-    import importlib
+from livequant._lazy import lazy_names  # noqa: E402
 
-    value = getattr(importlib.import_module(module), name)
-    globals()[name] = value
-    return value
-
-
-def __dir__():
-    return sorted(set(globals()) | set(__all__))
+__getattr__, __dir__ = lazy_names(__name__, _LAZY, __all__)

@@ -16,16 +16,6 @@ _LAZY = {"build_report": "livequant.report.build", "SessionError": "livequant.re
          "DEFAULT_MAX_FRAMES": "livequant.report.defaults"}
 
 
-def __getattr__(name):
-    module = _LAZY.get(name)
-    if module is None:
-        raise AttributeError(f"module 'livequant.report' has no attribute {name!r}")
-    import importlib
+from livequant._lazy import lazy_names  # noqa: E402
 
-    value = getattr(importlib.import_module(module), name)
-    globals()[name] = value
-    return value
-
-
-def __dir__():
-    return sorted(set(globals()) | set(__all__))
+__getattr__, __dir__ = lazy_names(__name__, _LAZY, __all__)
