@@ -148,6 +148,9 @@ class DecisionLoop:
                 if row["state"] == "accepted":
                     self.planner.add_visited(spec)
                     self._context_visited(row["region"])
+                elif row["state"] == "open" and self.cfg.auto_accept and \
+                        "drift model" in (payload.get("auto_accept_blocked") or ""):
+                    self._held.append(row["id"])   # still waiting for the drift model
                 self._next_number = max(self._next_number, _number(row["id"]) + 1)
             for row in self.ledger.drift():
                 p = row.get("payload") or {}

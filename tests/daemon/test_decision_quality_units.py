@@ -62,6 +62,12 @@ def _loop(tmp_path, **overrides):
     return loop, rules, ledger
 
 
+def loop_settings(loop):
+    """The settings a loop was made with (rebuilt from its sections)."""
+    return Settings.model_validate({"proposals": loop.cfg.model_dump(),
+                                    "drift": loop.drift_cfg.model_dump()})
+
+
 def _view(fid, t_s, stage_nm=(0.0, 0.0), *, current_pa=20.0, dwell_us=2.0, loop=None):
     """A frame view without cells or thumbnail (`loop`: anchor its drift at 0 like the
     tracker does for a session's first frame)."""
@@ -206,6 +212,11 @@ def test_a_core_proposal_waits_for_the_drift_model_and_is_sized_to_its_uncertain
     sigma = p["sigma_drift_nm"]
     assert 0.3 < sigma < 0.6
     assert p["region"]["width_nm"] == pytest.approx(4.0 + 6.0 * sigma)
+    # A restart keeps it waiting (not accepted, not forgotten).
+    again = DecisionLoop(loop_settings(loop), ledger, _Publisher(), rules=rules,
+                         session_context=SessionContext(), clock=lambda: 1.0e9)
+    again.resume()
+    assert again._held == [row["id"]]
     # Two frame pairs measured: the next frame releases it, placed with the new sigma.
     for k in range(2):
         loop.model.add_pair(1000.0 + 10 * k, 1010.0 + 10 * k, (0.1, 0.0), 0.02)
