@@ -21,6 +21,7 @@ same paths (a shared disk); with the default LocalCluster they are.
 
 from __future__ import annotations
 
+import concurrent.futures as cf
 import glob
 import logging
 import os
@@ -164,7 +165,7 @@ def reprocess(sources, session, settings, *, client=None, scheduler: str | None 
     from livequant.cluster import connect, install_setup, local_cluster, uninstall_setup, \
         worker_slots
     from livequant.daemon.ledger import Ledger
-    from livequant.daemon.register import register_file
+    from livequant.daemon.register import record_scan
     from livequant.daemon.session import SessionLock, check_session_folder
 
     t_start = time.monotonic()
@@ -187,14 +188,16 @@ def reprocess(sources, session, settings, *, client=None, scheduler: str | None 
         elif client is not None:
             summary.scheduler = str(client.scheduler.address)
         now = time.time()
-        for path in files:
-            try:
-                regs = register_file(ledger, path, origin="archive", complete_at=now,
-                                     force=force)
-            except FileNotFoundError:
-                summary.errors.append(f"{path}: vanished before it was recorded")
-                continue
-            summary.duplicates += sum(r.action == "duplicate" for _, r in regs)
+        # hashing reads the archive once: a few files at a time (the disk, not the CPU,
+        # is the limit), recorded in file order so frames are analysed in that order
+        with cf.ThreadPoolExecutor(max_workers=_HASH_THREADS) as pool:
+            for path, scan in zip(files, pool.map(lambda p: _scan(ledger, p, force), files)):
+                if isinstance(scan, FileNotFoundError):
+                    summary.errors.append(f"{path}: vanished before it was recorded")
+                    continue
+                regs = record_scan(ledger, scan, origin="archive", complete_at=now,
+                                   force=force)
+                summary.duplicates += sum(r.action == "duplicate" for _, r in regs)
         counts = ledger.counts()
         summary.queued = counts["queued"]
         summary.frames = sum(counts.values())
@@ -230,6 +233,19 @@ def reprocess(sources, session, settings, *, client=None, scheduler: str | None 
         if cluster is not None:
             cluster.close()
     return summary
+
+
+#: Files hashed at once while the sources are recorded.
+_HASH_THREADS = 4
+
+
+def _scan(ledger, path, force):
+    from livequant.daemon.register import scan_file
+
+    try:
+        return scan_file(ledger, path, force=force)
+    except FileNotFoundError as exc:
+        return exc
 
 
 def _client(cluster):
