@@ -81,9 +81,6 @@ class RefineSettings(_Model):
     joint_neighbours: bool = True
     weighting: Literal["poisson", "uniform"] = "poisson"
     gain_counts_per_electron: float = Field(default=1.0, gt=0)
-    profile: Literal["gaussian", "halo"] = "gaussian"
-    halo_radius_fraction: float = Field(default=1.5, gt=0.5, le=4.0)
-    halo_rounds: int = Field(default=2, ge=1, le=5)
     min_significance: float = Field(default=2.0, ge=0)
     fixed_shape_fallback: bool = True
 

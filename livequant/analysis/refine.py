@@ -116,8 +116,7 @@ def gaussian_model(theta, rows, cols, *, elliptical=True, jacobian=False):
 
 def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px, window_fraction=0.3,
                    max_iterations=30, tolerance_px=1e-4, elliptical=True, joint_neighbours=True,
-                   weighting="poisson", gain=1.0, neighbour_passes=2, profile="gaussian",
-                   halo_radius_fraction=1.5, halo_rounds=2, min_significance=3.0,
+                   weighting="poisson", gain=1.0, neighbour_passes=2, min_significance=3.0,
                    fixed_shape_fallback=False, min_noise_scale=0.0) -> Columns:
     """Fit every column with a 2D Gaussian plus a constant local background.
 
@@ -145,16 +144,6 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
         Refit each column against the data minus its neighbours' fitted
         Gaussians (`neighbour_passes` times).
     weighting : {"poisson", "uniform"}
-    profile : {"gaussian", "halo"}
-        What is subtracted of the neighbours before a column is refitted:
-        their fitted Gaussians (``"gaussian"``), or their Gaussians plus the
-        radial halo measured on the frame (``"halo"``,
-        :mod:`livequant.analysis.profile`), which holds the probe tails and
-        channelling a Gaussian misses.
-    halo_radius_fraction : float
-        Radius of the halo profile, in units of `spacing_px`.
-    halo_rounds : int
-        Estimate-and-refit rounds of the halo profile.
     min_significance : float
         A fit whose amplitude is below this many standard deviations is noise
         fitted as a column and counts as failed.
@@ -202,16 +191,7 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
     everyone = np.arange(n)
     theta, state = fit(theta, everyone, None)
 
-    if profile not in ("gaussian", "halo"):
-        raise ValueError(f"`profile` must be 'gaussian' or 'halo', got {profile!r}")
-    halo, neighbour_model = None, None
-    if profile == "halo" and n > 1:
-        theta, state, halo, neighbour_model = _halo_rounds(fit, image, theta, theta_init, state, centres,
-                                                  off_r, off_c, radius, spacing_px, sublattice,
-                                                  elliptical, halo_radius_fraction, halo_rounds)
-        passes = 1
-    else:
-        passes = 1 + (neighbour_passes if joint_neighbours and n > 1 else 0)
+    passes = 1 + (neighbour_passes if joint_neighbours and n > 1 else 0)
     render_off = None
     for _ in range(passes - 1):
         if not _neighbours_reach(theta, radius, gain, elliptical).any():
@@ -239,14 +219,11 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
             state[key][sub] = st_sub[key]
     n_fallback = 0
     if fixed_shape_fallback:
-        theta, state, n_fallback = _fixed_shape_refit(fit, theta, theta_init, state, neighbour_model,
-                                                      sublattice, ij, elliptical, min_significance)
+        theta, state, n_fallback = _fixed_shape_refit(fit, theta, theta_init, state, sublattice,
+                                                      ij, elliptical, min_significance)
     columns = _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius,
                           min_significance, min_noise_scale)
     extra = dict(columns.extra)
-    extra["profile"] = profile
-    if halo is not None:
-        extra["halo"] = halo.summary()
     if n_fallback:
         extra["fixed_shape_refits"] = n_fallback
     msg = columns.message
@@ -357,14 +334,11 @@ class _Fitter:
                              state["iterations"], state["chi2"], state["n_valid"], n_par)
         return out, state
 
-    def fixed_shape(self, theta, idx, others, anchor):
+    def fixed_shape(self, theta, idx, anchor):
         """The compiled fit of columns `idx` over centre, amplitude and background
         only, the shape ``theta[idx, 4:]`` held fixed, each window centred on
         (and the fit kept near) its `anchor` (row, col)."""
         m, n_par = len(idx), theta.shape[1]
-        has_others = others is not None
-        if not has_others:
-            others = np.zeros((1, len(self.off_r)))
         centres = self.centres.copy()
         start = self.start.copy()
         centres[idx] = np.rint(anchor).astype(np.int64)
@@ -379,79 +353,13 @@ class _Fitter:
         # hundredth of its uncertainty
         _kernels.fit_columns(self.image, centres, self.off_r, self.off_c,
                              np.ascontiguousarray(idx, dtype=np.int64), full, start,
-                             np.ascontiguousarray(others), has_others, self.radius, self.gain,
+                             np.zeros((1, len(self.off_r))), False, self.radius, self.gain,
                              self.floor, self.uniform, self.elliptical, self.max_iterations,
                              max(self.tolerance_px, 1e-3), out, state["cov"],
                              state["converged"], state["iterations"], state["chi2"],
                              state["n_valid"], 4)
         return out, state
 
-
-def _window_coordinates(shape, centres, off_r, off_c):
-    """Pixel (row, col) of every window pixel, (K, P) each, whether it lies inside
-    the frame, and the clipped integer indices to read the frame with."""
-    h, w = shape
-    rows = centres[:, 0:1] + off_r[None, :].astype(np.int64)
-    cols = centres[:, 1:2] + off_c[None, :].astype(np.int64)
-    inside = (rows >= 0) & (rows < h) & (cols >= 0) & (cols < w)
-    return rows, cols, inside, np.clip(rows, 0, h - 1), np.clip(cols, 0, w - 1)
-
-
-def _halo_rounds(fit, image, theta, theta_init, state, centres, off_r, off_c, radius, spacing_px,
-                 sublattice, elliptical, radius_fraction, rounds):
-    """Measure the neighbours' halos on the frame and refit every column against
-    the data minus its neighbours' Gaussians and halos (`rounds` times).
-
-    Returns the new ``theta``, ``state``, the last :class:`Halo` (or None) and the
-    neighbours' model in every window (or None)."""
-    from livequant.analysis.profile import estimate_tail, halo_in_windows, render_halos
-
-    # One halo shape for every column, scaled by the column's integrated
-    # intensity: the tails are the probe's, the same under every column.  (One
-    # profile per sublattice is not identifiable on a lattice: an A profile's
-    # ring through the B sites and a B profile fit the image equally well.)
-    labels = np.array(["all"])
-    lab_idx = np.zeros(len(theta), np.int64)
-    everyone = np.arange(len(theta))
-    rows, cols, inside, rr, cc = _window_coordinates(image.shape, centres, off_r, off_c)
-    rows_f, cols_f = rows.astype(float), cols.astype(float)
-    halo, others = None, None
-    for _ in range(max(int(rounds), 0)):
-        good = state["converged"] & np.isfinite(theta).all(axis=1)
-        if good.sum() < 8:
-            break
-        # a failed fit contributes nothing (its parameters may be anywhere)
-        th = np.where(good[:, None], theta, theta_init)
-        th[~good, 2] = 0.0
-        # each Gaussian only where it was fitted (its window); beyond, the
-        # measured tail takes over
-        total = np.zeros(image.shape)
-        _kernels.render_gaussians(th, centres, off_r, off_c, elliptical, total)
-        volume = th[:, 2] * _gaussian_area(th, elliptical)
-        new = estimate_tail(image - total, th[:, :2], volume, window_px=radius,
-                            rho_max_px=radius_fraction * spacing_px, max_gap_px=0.8 * spacing_px,
-                            edge_margin_px=spacing_px)
-        if new is None:
-            break
-        halo = new
-        render_halos(halo, th[:, :2], volume, lab_idx, total)
-        _, own_g, _ = gaussian_model(th, rows_f, cols_f, elliptical=elliptical)
-        own_g = np.where(inside, own_g, 0.0)
-        own_h = halo_in_windows(halo, th[:, :2], volume, lab_idx, rows_f, cols_f)
-        others = np.where(inside, total[rr, cc] - own_g - own_h, 0.0)
-        del total
-        theta, state = fit(th, everyone, others)
-    return theta, state, halo, others
-
-
-def _gaussian_area(theta, elliptical):
-    """Integral of the unit-height Gaussian, ``2 pi / sqrt(det Q)`` (pixels^2)."""
-    if elliptical:
-        det = theta[:, 4] * theta[:, 6] - theta[:, 5] ** 2
-    else:
-        det = theta[:, 4] ** 2
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(det > 0, 2 * np.pi / np.sqrt(np.abs(det)), 0.0)
 
 
 def _predicted_sites(pos, labels, ij, good):
@@ -495,7 +403,7 @@ def _predicted_sites(pos, labels, ij, good):
     return out
 
 
-def _fixed_shape_refit(fit, theta, theta_init, state, others, sublattice, ij, elliptical,
+def _fixed_shape_refit(fit, theta, theta_init, state, sublattice, ij, elliptical,
                        min_significance):
     """Refit with the sublattice's median shape held fixed the columns whose free
     fit failed, collapsed or came out insignificant.  Returns theta, state and
@@ -542,14 +450,7 @@ def _fixed_shape_refit(fit, theta, theta_init, state, others, sublattice, ij, el
     start[:, 4] = shape[idx, 0]
     if elliptical:
         start[:, 5], start[:, 6] = shape[idx, 1], shape[idx, 2]
-    # the neighbours' model was made for the old windows; keep it where the
-    # window centre did not move
-    sub_others = None
-    if others is not None:
-        sub_others = others[idx].copy()
-        moved = (np.rint(anchor).astype(np.int64) != fit.centres[idx]).any(axis=1)
-        sub_others[moved] = 0.0
-    th, st = fit.fixed_shape(start, idx, sub_others, anchor)
+    th, st = fit.fixed_shape(start, idx, anchor)
     better = st["converged"]
     theta = theta.copy()
     theta[idx[better]] = th[better]
