@@ -107,6 +107,10 @@ def wall_physics(cells_arrays: dict, wall: dict | None, *, potential: LandauPote
     if potential is None:
         out["gl"] = None
         out["gl_reason"] = "the material has no Landau coefficients (config/materials.toml)"
+    elif wall.get("width") is None or wall.get("sigma_width") is None:
+        # a degenerate wall fit (e.g. sharper than one cell) has no finite width or sigma
+        out["gl"] = None
+        out["gl_reason"] = "the wall fit gave no finite width with an uncertainty"
     else:
         try:
             gl = wall_gl_parameters(wall["width"] * 1e-12, wall["sigma_width"] * 1e-12, potential,
