@@ -205,6 +205,9 @@ SUMMARY: tuple[tuple[str, str, str], ...] = (
     ("cells.wall.x_pm", "pm", "A point on the wall, x."),
     ("cells.wall.y_pm", "pm", "A point on the wall, y."),
     ("cells.wall.convention", "-", "The profile and width convention in words."),
+    ("cells.wall.asymmetry", "pm", "|P+| - |P-| of the two plateaus (a built-in field shows as "
+                                   "a difference), from a refit with an offset."),
+    ("cells.wall.sigma_asymmetry", "pm", "Its uncertainty."),
     ("cells.wall.units", "-", "Units of the wall keys in words."),
     ("cells.wall.x0", "pm", "Deprecated: x0_pm."),
     ("cells.wall.sigma_x0", "pm", "Deprecated: sigma_x0_pm."),
@@ -222,6 +225,29 @@ SUMMARY: tuple[tuple[str, str, str], ...] = (
                               "winding, kind, chirality, circulation_pm2 and flux_pm2 in pm^2)."),
     ("cells.sign_conventions", "-", "Axes and angle conventions in words."),
     ("cells.notes", "-", "What was skipped and why."),
+    ("cells.loop_cores.*", "-", "Cores of the loop-winding search the vortex rule uses (one "
+                                "topology for the analysis and the rules)."),
+    ("physics", "-", "Wall physics of the frame (docs/wall-physics.md), or its reason."),
+    ("physics.reason", "-", "Why there is no wall physics in this frame."),
+    ("physics.wall", "-", "The wall the physics is computed from (position, width, P0, "
+                          "asymmetry, each with sigma; pm and C/m^2), or null."),
+    ("physics.wall.*", "-", "Keys of the wall fit as in cells.wall, plus asymmetry (pm)."),
+    ("physics.gl", "-", "Ginzburg-Landau numbers (correlation length m, gradient coefficient, "
+                        "wall energy J/m^2, each with sigma) from the width and the material's "
+                        "Landau coefficients, or null."),
+    ("physics.gl.*", "-", "The entries of physics.gl, each with its unit in its name."),
+    ("physics.gl_reason", "-", "Why there are no Ginzburg-Landau numbers."),
+    ("physics.line.*", "-", "The wall's position per cell row: rows, u_pm (pm), sigma_u_pm "
+                            "(pm), row_spacing_pm (pm)."),
+    ("physics.roughness", "-", "Roughness exponent zeta from B(L) with its interval, or null."),
+    ("physics.roughness.*", "-", "The entries of physics.roughness: zeta, its interval, the "
+                                 "range of L fitted and B(L)."),
+    ("physics.roughness_reason", "-", "Why there is no roughness exponent."),
+    ("series", "-", "For the running average of a fast-scan series: key, members, depth, "
+                    "frames left out and the registration residuals, or absent."),
+    ("series.*", "-", "The entries of the series block (see series)."),
+    ("scan_drift_correction.*", "-", "The in-frame drift that was undone (velocity nm/s, "
+                                     "line time s, largest shift px) or why not."),
 )
 
 _FILES = {"columns.csv": COLUMNS, "cells.csv": CELLS, "summary.json": SUMMARY}

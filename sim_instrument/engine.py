@@ -732,7 +732,7 @@ class ScanEngine:
             spec_wall = self.specimen.scenario.walls[w["index"]]
             t = math.radians(spec_wall.angle_deg)
             d_ref = np.array([math.cos(t), math.sin(t)])
-            p_ref = np.asarray(spec_wall.point_nm, float)
+            p_ref = self.specimen._wall_point(spec_wall)   # where a moving wall is now
             c_ref = centre_xy - self.specimen.displacement_nm(centre_xy[None, :])[0]
             q = p_ref + ((c_ref - p_ref) @ d_ref) * d_ref
             pts = np.stack([q - d_ref, q, q + d_ref])

@@ -228,6 +228,7 @@ class Specimen:
         self.time_s = float(t_s)
 
     def _wall_point(self, wall) -> np.ndarray:
+        """A point on `wall` in reference coordinates at the specimen's time."""
         return np.asarray(wall.point_nm, float) + self.time_s * np.asarray(wall.velocity_nm_per_s,
                                                                            float)
 
