@@ -33,8 +33,9 @@ scanned and the image is extended to the 256 x 256 output grid exactly:
 
 Frozen phonons: within each configuration the in-plane random displacements are
 re-centred per column and per element, so every column's projected centroid equals the
-position put in; this removes the first-order position noise of a finite number of
-configurations (the thermal smearing of every atom is unchanged). The truth positions
+position put in, and configurations are used in antithetic pairs (u, -u); together this
+removes the first-order position noise of a finite number of configurations (the
+thermal smearing of every atom is unchanged). The truth positions
 in the JSON files are the mean projected positions of the atoms put in (no phonons).
 
 Conventions of the saved frames
