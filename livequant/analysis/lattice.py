@@ -160,7 +160,7 @@ def _divide_superperiods(crop, basis, sigma_basis, min_spacing_px):
 
 
 def _match_expected(basis, sigma_basis, expected, tolerance=0.12):
-    """The basis related to `basis` by centring, de-centring or halving whose
+    """The basis related to `basis` by centring, de-centring, halving or doubling whose
     lengths match the `expected` pair best (unchanged when `basis` already
     matches, or when none of them does)."""
     expected = np.sort(np.asarray(expected, dtype=float))
@@ -178,6 +178,8 @@ def _match_expected(basis, sigma_basis, expected, tolerance=0.12):
         (np.stack([v1 + v2, v1 - v2]), np.stack([s_sum, s_sum])),        # centred -> primitive
         (np.stack([(v1 + v2) / 2, (v1 - v2) / 2]), np.stack([s_sum, s_sum]) / 2),  # doubled
         (np.stack([v1 / 2, v2 / 2]), sigma_basis / 2),
+        # every column alike (ABF, O as dark as the cations): the half cell
+        (np.stack([2 * v1, 2 * v2]), 2 * sigma_basis),
         (np.stack([v1, v2 / 2]), np.stack([s1, s2 / 2])),
         (np.stack([v1 / 2, v2]), np.stack([s1 / 2, s2])),
     ]
