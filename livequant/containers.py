@@ -294,18 +294,22 @@ def read_any(ref: str | os.PathLike, *, defaults: dict | None = None,
     if not path.is_file():
         raise FrameError(f"{path}: file vanished before it could be read", reason="vanished",
                          path=path)
-    if suffix in (".tif", ".tiff"):
-        pixels, found, where = _read_tiff_page(path, key)
-    elif suffix in MRC_SUFFIXES:
-        pixels, found, where = _read_mrc_section(path, key)
-    elif suffix in HDF5_SUFFIXES:
-        pixels, found, where = _read_hdf5_image(path, key)
-    else:
-        raise FrameError(f"{path}: not a frame or container file; expected one of "
-                         f"{', '.join(FRAME_FILE_SUFFIXES)}", reason="unsupported-format",
-                         path=path)
+    pixels, found, where = _read_container_image(path, suffix, key)
     pixels = check_pixels(pixels, where=where)
     return _frame(pixels, path, key, found, defaults=defaults, where=where)
+
+
+def _read_container_image(path: Path, suffix: str, key):
+    """``(pixels, what the format says, where)`` of image `key` of a container."""
+    if suffix in (".tif", ".tiff"):
+        return _read_tiff_page(path, key)
+    if suffix in MRC_SUFFIXES:
+        return _read_mrc_section(path, key)
+    if suffix in HDF5_SUFFIXES:
+        return _read_hdf5_image(path, key)
+    raise FrameError(f"{path}: not a frame or container file; expected one of "
+                     f"{', '.join(FRAME_FILE_SUFFIXES)}", reason="unsupported-format",
+                     path=path)
 
 
 def read_pixels(ref: str | os.PathLike) -> np.ndarray:
@@ -322,15 +326,7 @@ def read_pixels(ref: str | os.PathLike) -> np.ndarray:
         from livequant.frames import read_image
 
         return read_image(path)
-    if suffix in (".tif", ".tiff"):
-        pixels, _found, where = _read_tiff_page(path, key)
-    elif suffix in MRC_SUFFIXES:
-        pixels, _found, where = _read_mrc_section(path, key)
-    elif suffix in HDF5_SUFFIXES:
-        pixels, _found, where = _read_hdf5_image(path, key)
-    else:
-        raise FrameError(f"{path}: not a frame or container file", reason="unsupported-format",
-                         path=path)
+    pixels, _found, where = _read_container_image(path, suffix, key)
     return check_pixels(pixels, where=where)
 
 
