@@ -275,7 +275,8 @@ def test_daemon_with_scheduler_processes_a_burst_exactly_once(tmp_path, client, 
     reasons = {r.frame_id or Path(r.path).stem: r.reason for r in rows
                if r.state == "quarantined"}
     assert reasons == {"flat": "constant", "broken": "analysis-error"}
-    client.wait_for_workers(2, timeout=120)
+    # (no wait for the killed worker's replacement: nothing after this uses the shared
+    # cluster, and on a loaded machine the nanny's restart took over 120 s once)
     out = tmp_path / "analyze"
     assert main(["analyze", str(watch / "burst_3.tif"), "--out", str(out)]) == 0
     _same_outputs(session / "frames" / "burst_3", out / "burst_3")
