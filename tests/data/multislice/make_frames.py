@@ -18,6 +18,11 @@ band limit (the plane waves inside the probe aperture are exactly those the prob
 of). Thermal diffuse scattering comes from frozen phonons (abTEM ``FrozenPhonons``:
 independent Gaussian displacements per atom and per axis, the Einstein model).
 
+The PbTiO3 domain supercell is instead computed without a scan by ``simulate_exact``
+(image Fourier coefficients from the full scattering matrix); PRISM interpolation 4 x 1
+biased its Ti positions by about 1.3 pm because the probe's periodic copies sat on the
+other domain.
+
 Every specimen here is periodic in the plane of the image, so one supercell period is
 scanned and the image is extended to the 256 x 256 output grid exactly:
 
