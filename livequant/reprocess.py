@@ -272,7 +272,13 @@ def _decision_loop(settings, ledger):
 
 def _run(client, token, ledger, summary: ReprocessSummary, decisions, *, limit: int,
          progress: bool) -> None:
-    """Claim, submit, record: until the queue is empty (or a failure not the frames')."""
+    """Claim, submit, record: until the queue is empty (or a failure not the frames').
+
+    A frame whose workers died (``KilledWorker``) while other frames were in flight
+    is not charged: the scheduler also counts the frames merely assigned to a dying
+    worker.  It is run again at the end, alone on the cluster, and quarantined as
+    ``worker-crash`` only if its workers die again then.
+    """
     import distributed
 
     from livequant.cluster import process_on_worker
@@ -280,7 +286,14 @@ def _run(client, token, ledger, summary: ReprocessSummary, decisions, *, limit: 
     in_flight: dict[str, tuple[int, str]] = {}
     pending = distributed.as_completed()
     stop = False
+    suspects: list[tuple[int, str]] = []
     bar = _Progress(summary.queued) if progress else None
+
+    def submit(seq, ref):
+        fut = client.submit(process_on_worker, token, ref, None, decisions is not None,
+                            key=f"livequant-{token}-{seq}-{time.monotonic_ns()}", pure=False)
+        in_flight[fut.key] = (seq, ref)
+        pending.add(fut)
 
     def fill():
         while not stop and len(in_flight) < limit:
@@ -288,44 +301,62 @@ def _run(client, token, ledger, summary: ReprocessSummary, decisions, *, limit: 
             if claimed is None:
                 return
             seq, ref, _origin = claimed
-            fut = client.submit(process_on_worker, token, ref, None, decisions is not None,
-                                key=f"livequant-{token}-{seq}-{time.monotonic_ns()}",
-                                pure=False)
-            in_flight[fut.key] = (seq, ref)
-            pending.add(fut)
+            submit(seq, ref)
+
+    def handle(fut, *, alone: bool) -> None:
+        nonlocal stop
+        seq, ref = in_flight.pop(fut.key)
+        if fut.status == "finished":
+            _record(ledger, seq, fut.result(), summary, decisions)
+        elif fut.status == "cancelled":
+            ledger.requeue(seq)
+            stop = True
+        else:
+            exc = fut.exception()
+            if exc is None and not alone:
+                # no error: its result was lost with a worker that died after it
+                # finished (status "lost"); the frame is not at fault, run it again
+                log.warning("%s: its result was lost with a worker; it runs again", ref)
+                suspects.append((seq, ref))
+            elif isinstance(exc, distributed.KilledWorker) and not alone:
+                log.warning("%s: its workers died while other frames ran; it runs again "
+                            "alone at the end", ref)
+                suspects.append((seq, ref))
+            elif isinstance(exc, distributed.KilledWorker):
+                msg = (f"{ref}: the Dask workers analysing this frame died repeatedly, "
+                       f"also with no other frame on the cluster ({exc}); out of memory, or "
+                       "a crash in native code")
+                ledger.quarantine(seq, reason="worker-crash", message=msg)
+                summary.quarantined += 1
+                summary.quarantine.append({"ref": ref, "reason": "worker-crash",
+                                           "message": msg})
+            else:
+                # Not the frame's fault (outputs not writable, disk full): it stays
+                # queued for the next run, and no more frames are started now.
+                ledger.requeue(seq)
+                summary.failed += 1
+                summary.errors.append(f"{ref}: {type(exc).__name__}: {exc}")
+                log.error("%s failed outside the analysis: %s: %s; kept queued, stopping",
+                          ref, type(exc).__name__, exc)
+                stop = True
+        fut.release()
+        if bar is not None:
+            bar.update(summary)
 
     try:
         fill()
         for fut in pending:
-            seq, ref = in_flight.pop(fut.key)
-            if fut.status == "finished":
-                _record(ledger, seq, fut.result(), summary, decisions)
-            elif fut.status == "cancelled":
-                ledger.requeue(seq)
-                stop = True
-            else:
-                exc = fut.exception()
-                if isinstance(exc, distributed.KilledWorker):
-                    msg = (f"{ref}: the Dask workers analysing this frame died repeatedly "
-                           f"({exc}); out of memory, or a crash in native code")
-                    ledger.quarantine(seq, reason="worker-crash", message=msg)
-                    summary.quarantined += 1
-                    summary.quarantine.append({"ref": ref, "reason": "worker-crash",
-                                               "message": msg})
-                else:
-                    # Not the frame's fault (outputs not writable, disk full): it stays
-                    # queued for the next run, and no more frames are started now.
-                    ledger.requeue(seq)
-                    summary.failed += 1
-                    summary.errors.append(f"{ref}: {type(exc).__name__}: {exc}")
-                    log.error("%s failed outside the analysis: %s: %s; kept queued, stopping",
-                              ref, type(exc).__name__, exc)
-                    stop = True
-            fut.release()
-            if bar is not None:
-                bar.update(summary)
+            handle(fut, alone=False)
             fill()
+        # the suspects, one at a time with nothing else on the cluster
+        while suspects and not stop:
+            seq, ref = suspects.pop(0)
+            submit(seq, ref)
+            for fut in pending:
+                handle(fut, alone=True)
     finally:
+        for seq, _ref in suspects:
+            ledger.requeue(seq)  # not run alone yet: back to the queue for the next run
         for key, (seq, _ref) in in_flight.items():
             ledger.requeue(seq)  # interrupted: back to the queue for the next run
         if in_flight:

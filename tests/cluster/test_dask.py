@@ -306,11 +306,12 @@ def test_a_frame_that_kills_every_worker_is_quarantined(tmp_path):
                           analyze="tests.cluster._analyses:dying_analyze")
     finally:
         cluster.close()
-    assert (s.done, s.quarantined, s.failed) == (2, 1, 0), s.to_json()
+    assert (s.done, s.quarantined, s.failed) == (2, 1, 0), (s.errors, s.quarantine)
     rows = _rows(session)
     (poison,) = [r for r in rows if r.state == "quarantined"]
     assert poison.path.endswith("poison.tif") and poison.reason == "worker-crash"
     assert poison.done_count == 0 and "died repeatedly" in poison.message
+    assert "no other frame" in poison.message   # charged only when it ran alone
     assert all(r.done_count == 1 for r in rows if r.state == "done")
     assert not (session / "frames" / "poison").exists()
 
