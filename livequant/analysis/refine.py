@@ -317,6 +317,25 @@ class _Fitter:
 
     def __call__(self, theta, idx, others):
         """Fit columns `idx` from `theta[idx]`; `others` (len(idx), P) or None."""
+        return self._run(theta, idx, others, self.centres, self.start, self.tolerance_px,
+                         theta.shape[1])
+
+    def fixed_shape(self, theta, idx, anchor):
+        """The compiled fit of columns `idx` over centre, amplitude and background
+        only, the shape ``theta[idx, 4:]`` held fixed, each window centred on
+        (and the fit kept near) its `anchor` (row, col)."""
+        centres = self.centres.copy()
+        start = self.start.copy()
+        centres[idx] = np.rint(anchor).astype(np.int64)
+        start[idx] = anchor
+        full = np.zeros((len(self.centres), theta.shape[1]))
+        full[idx] = theta
+        # a weak column is settled long before 1e-4 px: 1e-3 px is still a
+        # hundredth of its uncertainty
+        return self._run(full, idx, None, centres, start, max(self.tolerance_px, 1e-3), 4)
+
+    def _run(self, theta, idx, others, centres, start, tolerance_px, n_free):
+        """One call of the compiled fit; returns the fitted rows and their state."""
         m, n_par = len(idx), theta.shape[1]
         has_others = others is not None
         if not has_others:
@@ -325,41 +344,14 @@ class _Fitter:
         state = {"converged": np.zeros(m, bool), "iterations": np.zeros(m, np.int64),
                  "cov": np.zeros((m, n_par, n_par)), "chi2": np.zeros(m),
                  "n_valid": np.zeros(m, np.int64)}
-        _kernels.fit_columns(self.image, self.centres, self.off_r, self.off_c,
+        _kernels.fit_columns(self.image, centres, self.off_r, self.off_c,
                              np.ascontiguousarray(idx, dtype=np.int64),
-                             np.ascontiguousarray(theta, dtype=np.float64), self.start,
+                             np.ascontiguousarray(theta, dtype=np.float64), start,
                              np.ascontiguousarray(others), has_others, self.radius, self.gain,
                              self.floor, self.uniform, self.elliptical, self.max_iterations,
-                             self.tolerance_px, out, state["cov"], state["converged"],
-                             state["iterations"], state["chi2"], state["n_valid"], n_par)
+                             tolerance_px, out, state["cov"], state["converged"],
+                             state["iterations"], state["chi2"], state["n_valid"], n_free)
         return out, state
-
-    def fixed_shape(self, theta, idx, anchor):
-        """The compiled fit of columns `idx` over centre, amplitude and background
-        only, the shape ``theta[idx, 4:]`` held fixed, each window centred on
-        (and the fit kept near) its `anchor` (row, col)."""
-        m, n_par = len(idx), theta.shape[1]
-        centres = self.centres.copy()
-        start = self.start.copy()
-        centres[idx] = np.rint(anchor).astype(np.int64)
-        start[idx] = anchor
-        full = np.zeros((len(self.centres), n_par))
-        full[idx] = theta
-        out = np.empty((m, n_par))
-        state = {"converged": np.zeros(m, bool), "iterations": np.zeros(m, np.int64),
-                 "cov": np.zeros((m, n_par, n_par)), "chi2": np.zeros(m),
-                 "n_valid": np.zeros(m, np.int64)}
-        # a weak column is settled long before 1e-4 px: 1e-3 px is still a
-        # hundredth of its uncertainty
-        _kernels.fit_columns(self.image, centres, self.off_r, self.off_c,
-                             np.ascontiguousarray(idx, dtype=np.int64), full, start,
-                             np.zeros((1, len(self.off_r))), False, self.radius, self.gain,
-                             self.floor, self.uniform, self.elliptical, self.max_iterations,
-                             max(self.tolerance_px, 1e-3), out, state["cov"],
-                             state["converged"], state["iterations"], state["chi2"],
-                             state["n_valid"], 4)
-        return out, state
-
 
 
 def _predicted_sites(pos, labels, ij, good):

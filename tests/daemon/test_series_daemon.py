@@ -147,12 +147,7 @@ def test_a_series_goes_on_after_a_restart(tmp_path):
     acqs = eng.acquire_series(4, (0.0, 0.0), 1.92, (192, 192), series_id="r")
     ledger = Ledger(tmp_path / "ledger.sqlite")
     for a in acqs:
-        write_sim(watch, a)
-        path = watch / f"{a.frame_id}.npy"
-        reg = ledger.register(str(path), origin="folder", sha256=a.frame_id, sidecar_sha256=None,
-                              size_bytes=1, mtime_ns=1, complete_at=0.0)
-        ledger.claim(newest_first=False, newer_than_seq=0)
-        ledger.finish(reg.seq, frame_id=a.frame_id)
+        _register_done(ledger, watch, a)
 
     def outcome(a):
         meta = read_frame(watch / f"{a.frame_id}.npy").meta.to_json()
@@ -197,12 +192,7 @@ def test_members_done_before_a_restart_but_never_offered_are_caught_up(tmp_path)
     acqs = eng.acquire_series(3, (0.0, 0.0), 1.28, (128, 128), series_id="late")
     ledger = Ledger(tmp_path / "ledger.sqlite")
     for a in acqs:
-        write_sim(watch, a)
-        path = watch / f"{a.frame_id}.npy"
-        reg = ledger.register(str(path), origin="folder", sha256=a.frame_id, sidecar_sha256=None,
-                              size_bytes=1, mtime_ns=1, complete_at=0.0)
-        ledger.claim(newest_first=False, newer_than_seq=0)
-        ledger.finish(reg.seq, frame_id=a.frame_id)
+        path = _register_done(ledger, watch, a)
         (tmp_path / "frames" / a.frame_id).mkdir(parents=True)
         write_json_atomic(tmp_path / "frames" / a.frame_id / "summary.json",
                           {"frame_id": a.frame_id, "meta": read_frame(path).meta.to_json()})
@@ -214,3 +204,14 @@ def test_members_done_before_a_restart_but_never_offered_are_caught_up(tmp_path)
     assert [m["frame_id"] for m in ledger.series_members("late")] == [a.frame_id for a in acqs]
     assert [p.stem for p in written] == ["late~avg002", "late~avg003"]
     ledger.close()
+
+
+def _register_done(ledger, watch, acq):
+    """Write a simulated member to `watch`, record it in `ledger` as done; its path."""
+    write_sim(watch, acq)
+    path = watch / f"{acq.frame_id}.npy"
+    reg = ledger.register(str(path), origin="folder", sha256=acq.frame_id, sidecar_sha256=None,
+                          size_bytes=1, mtime_ns=1, complete_at=0.0)
+    ledger.claim(newest_first=False, newer_than_seq=0)
+    ledger.finish(reg.seq, frame_id=acq.frame_id)
+    return path
