@@ -281,10 +281,20 @@ class Daemon:
                       threads_per_worker(self.n_workers)))
 
     def _republish_missed(self) -> None:
-        """Publish summaries of frames marked done whose event a crash cut off."""
+        """Publish summaries of frames marked done whose event a crash cut off.
+
+        A crash between appending a frame's event and marking it published
+        leaves the event in the file already: that one is only marked (its
+        ``daemon.ledger_seq`` names the ledger row), so the record never holds
+        one frame twice."""
         import json
 
-        for seq, frame_id in self.ledger.unpublished_done():
+        missed = self.ledger.unpublished_done()
+        logged = _logged_frame_seqs(self.publisher.events_file) if missed else set()
+        for seq, frame_id in missed:
+            if seq in logged:
+                self.ledger.mark_published(seq)
+                continue
             summary_file = self.paths.frames / str(frame_id) / "summary.json"
             try:
                 summary = json.loads(summary_file.read_text(encoding="utf-8"))
@@ -464,7 +474,7 @@ class Daemon:
             latency = None if row is None else time.time() - row.complete_at
             summary = dict(out.summary or {})
             summary["daemon"] = {"path": out.path, "latency_s": latency,
-                                 "worker_timings_s": dict(t)}
+                                 "worker_timings_s": dict(t), "ledger_seq": seq}
             self.publisher.publish("frame", summary)
             self.ledger.mark_published(seq)
             self._done_times.append(time.monotonic())
@@ -847,3 +857,31 @@ def status_line(s: Snapshot) -> str:
     return (f"[{s.state}] done {c.get('done', 0)}, queued {c.get('queued', 0)}, "
             f"processing {c.get('processing', 0)}, quarantined {c.get('quarantined', 0)}; "
             f"{s.frames_per_s:.2f} frames/s, lag {s.lag_s:.1f} s{last}")
+
+
+def _logged_frame_seqs(events_file, tail_bytes: int = 8 << 20) -> set[int]:
+    """Ledger rows whose frame event is in the last `tail_bytes` of the events
+    file (a crash leaves at most the frames then in flight unmarked, and their
+    events are at the end)."""
+    import json
+
+    seqs: set[int] = set()
+    try:
+        with open(events_file, "rb") as fh:
+            fh.seek(0, os.SEEK_END)
+            size = fh.tell()
+            fh.seek(max(0, size - tail_bytes))
+            tail = fh.read()
+    except FileNotFoundError:
+        return seqs
+    for line in tail.splitlines():
+        if b'"ledger_seq"' not in line:
+            continue
+        try:
+            event = json.loads(line)
+        except ValueError:  # the first line of the tail may be cut
+            continue
+        seq = (event.get("data") or {}).get("daemon", {}).get("ledger_seq")
+        if event.get("topic") == "frame" and isinstance(seq, int):
+            seqs.add(seq)
+    return seqs

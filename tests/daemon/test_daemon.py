@@ -159,6 +159,33 @@ def test_frames_written_while_stopped_are_caught_up(tmp_path):
         assert all(r.attempts == 1 for r in led.rows())
 
 
+@pytest.mark.parametrize("event_written", [True, False])
+def test_a_crash_between_event_and_mark_publishes_each_frame_once(tmp_path, event_written):
+    """The window a SIGKILL can hit: a frame is done in the ledger, but not marked
+    published; its event (1) made it into the events file or (2) did not.  A
+    restarted daemon must leave exactly one frame event for it either way.
+    (Made deterministic here by undoing the mark, and the event for case 2.)"""
+    session = tmp_path / "session"
+    d = _daemon(tmp_path)
+    with running_daemon(d):
+        write_frame(tmp_path / "watch", "once", lattice_image(SHAPE, seed=1), sidecar("once"))
+        wait_for(lambda: _done(d) == 1, what="the frame done")
+    import sqlite3
+
+    with sqlite3.connect(session / "ledger.sqlite") as db:
+        db.execute("UPDATE frames SET published_at=NULL")
+    if not event_written:
+        events = session / "events.jsonl"
+        kept = [line for line in events.read_text().splitlines(keepends=True)
+                if json.loads(line)["topic"] != "frame"]
+        events.write_text("".join(kept))
+    with running_daemon(_daemon(tmp_path)):
+        pass
+    assert frame_events_by_id(session) == {"once": 1}
+    with Ledger(session / "ledger.sqlite", readonly=True) as led:
+        assert led.unpublished_done() == []
+
+
 def test_bad_frames_are_quarantined_and_the_next_good_one_is_done(tmp_path):
     d = _daemon(tmp_path)
     watch = tmp_path / "watch"
