@@ -83,6 +83,8 @@ class RefineSettings(_Model):
     gain_counts_per_electron: float = Field(default=1.0, gt=0)
     min_significance: float = Field(default=2.0, ge=0)
     fixed_shape_fallback: bool = True
+    background: Literal["tilted", "flat"] = "tilted"
+    window_sigmas: float = Field(default=3.0, ge=1.5, le=6.0)
 
 
 class SublatticeSettings(_Model):

@@ -370,6 +370,8 @@ def analyze_frame(frame: Frame, settings: Settings | None = None, *,
         min_significance=cfg.refine.min_significance,
         fixed_shape_fallback=cfg.refine.fixed_shape_fallback,
         min_noise_scale=min_noise_scale,
+        background=cfg.refine.background,
+        window_sigmas=cfg.refine.window_sigmas,
     )
     timings["refine"] = time.perf_counter() - t0
 

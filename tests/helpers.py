@@ -6,13 +6,14 @@ import numpy as np
 
 
 def fisher_crlb_position(*, sigma_px, amplitude, background, radius_px, elliptical=True,
-                         subpixel=(0.0, 0.0), gain=1.0):
+                         subpixel=(0.0, 0.0), gain=1.0, tilted=False):
     """Cramér-Rao bound of the column centre for the Gaussian-plus-background model.
 
     Fisher information under Poisson noise, I = sum_pixels (1/m) dm/dθ dm/dθ^T
     (Van Aert et al., IEEE Trans. Instrum. Meas. 51, 611 (2002)), over the
     same circular window the fitter uses, with every nuisance parameter
-    (amplitude, background, widths) free.  Derivatives by central differences
+    (amplitude, background, widths; with `tilted` the background's two
+    slopes too) free.  Derivatives by central differences
     of the model, so this shares no code with the fitter.
 
     Returns the bound on the standard deviation of (row, col), pixels.
@@ -32,12 +33,23 @@ def fisher_crlb_position(*, sigma_px, amplitude, background, radius_px, elliptic
         else:
             r0, c0, A, B, s = t
             e = -((rr - r0) ** 2 + (cc - c0) ** 2) / (2 * s**2)
-        return B + A * np.exp(e)
+        return B + A * np.exp(e) + (slope[0] * rr + slope[1] * cc if tilted else 0.0)
 
     if elliptical:
         t0 = np.array([mu_r, mu_c, amplitude, background, sigma_px, sigma_px, 0.0])
     else:
         t0 = np.array([mu_r, mu_c, amplitude, background, sigma_px])
+    n_shape = len(t0)
+    if tilted:
+        t0 = np.concatenate([t0, [0.0, 0.0]])
+
+    def model_of(t):
+        nonlocal slope
+        slope = t[n_shape:] if tilted else (0.0, 0.0)
+        return model_shape(t[:n_shape])
+
+    slope = (0.0, 0.0)
+    model_shape, model = model, model_of
     m = model(t0)
     grads = []
     for k in range(len(t0)):

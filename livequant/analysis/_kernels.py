@@ -254,6 +254,279 @@ def _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, f
     return c_old, c_new
 
 
+@njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
+def _window_pass_plane(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, floor,
+                       w_old, w_new, Gs, H, g):
+    """`_window_pass` for the model with a tilted background,
+    ``m = B + b_r dr0 + b_c dc0 + A exp(-(p dr^2 + 2 q dr dc + s dc^2) / 2)``,
+    ``(dr0, dc0)`` the pixel's offset from the window centre and ``(b_r, b_c)``
+    the last two parameters.  The slope takes up what the neighbours' tails
+    (and the probe's cross-talk onto them) add across a light column's window
+    to first order, which a flat background reads as a shift of the column.
+
+    Unrolled like `_window_pass` (the 45 sums of the 9 x 9 matrix as scalar
+    accumulators, so the pixel loop vectorises); the round model's five shape
+    parameters use the same sums, its ``q`` and ``s`` rows left out.
+    """
+    n_par = t.shape[0]
+    n_pix = off_r.shape[0]
+    B = t[3]
+    b_r = t[n_par - 2]
+    b_c = t[n_par - 1]
+    A, p, q, s, d_r, d_c = _unpack(t, cr, cc, elliptical)
+    decay = math.exp(-s)
+    prev_row = 1e300
+    G = 0.0
+    step = 0.0
+    for i in range(n_pix):
+        G, step, prev_row = _next_gaussian(off_r[i], prev_row, off_r[i] - d_r, off_c[i] - d_c,
+                                           p, q, s, decay, G, step)
+        Gs[i] = G
+    h00 = 0.0
+    h01 = 0.0
+    h02 = 0.0
+    h03 = 0.0
+    h04 = 0.0
+    h05 = 0.0
+    h06 = 0.0
+    h07 = 0.0
+    h08 = 0.0
+    h11 = 0.0
+    h12 = 0.0
+    h13 = 0.0
+    h14 = 0.0
+    h15 = 0.0
+    h16 = 0.0
+    h17 = 0.0
+    h18 = 0.0
+    h22 = 0.0
+    h23 = 0.0
+    h24 = 0.0
+    h25 = 0.0
+    h26 = 0.0
+    h27 = 0.0
+    h28 = 0.0
+    h33 = 0.0
+    h34 = 0.0
+    h35 = 0.0
+    h36 = 0.0
+    h37 = 0.0
+    h38 = 0.0
+    h44 = 0.0
+    h45 = 0.0
+    h46 = 0.0
+    h47 = 0.0
+    h48 = 0.0
+    h55 = 0.0
+    h56 = 0.0
+    h57 = 0.0
+    h58 = 0.0
+    h66 = 0.0
+    h67 = 0.0
+    h68 = 0.0
+    h77 = 0.0
+    h78 = 0.0
+    h88 = 0.0
+    g0 = 0.0
+    g1 = 0.0
+    g2 = 0.0
+    g3 = 0.0
+    g4 = 0.0
+    g5 = 0.0
+    g6 = 0.0
+    g7 = 0.0
+    g8 = 0.0
+    c_old = 0.0
+    c_new = 0.0
+    for i in range(n_pix):
+        dr = off_r[i] - d_r
+        dc = off_c[i] - d_c
+        G = Gs[i]
+        AG = A * G
+        j7 = off_r[i]
+        j8 = off_c[i]
+        m = B + b_r * j7 + b_c * j8 + AG
+        r = d[i] - m
+        c_old += w_old[i] * r * r
+        if uniform:
+            w = vm[i]
+        else:
+            w = vm[i] / (gain * max(m + o[i], floor))
+        w_new[i] = w
+        wr = w * r
+        c_new += wr * r
+        j0 = AG * (p * dr + q * dc)
+        j1 = AG * (q * dr + s * dc)
+        j2 = G
+        j3 = 1.0
+        if elliptical:
+            j4 = -0.5 * AG * dr * dr
+            j5 = -AG * dr * dc
+            j6 = -0.5 * AG * dc * dc
+        else:
+            j4 = -0.5 * AG * (dr * dr + dc * dc)
+            j5 = 0.0
+            j6 = 0.0
+        w0 = w * j0
+        w1 = w * j1
+        w2 = w * j2
+        w3 = w * j3
+        w4 = w * j4
+        w5 = w * j5
+        w6 = w * j6
+        w7 = w * j7
+        w8 = w * j8
+        g0 += wr * j0
+        g1 += wr * j1
+        g2 += wr * j2
+        g3 += wr * j3
+        g4 += wr * j4
+        g5 += wr * j5
+        g6 += wr * j6
+        g7 += wr * j7
+        g8 += wr * j8
+        h00 += w0 * j0
+        h01 += w0 * j1
+        h02 += w0 * j2
+        h03 += w0 * j3
+        h04 += w0 * j4
+        h05 += w0 * j5
+        h06 += w0 * j6
+        h07 += w0 * j7
+        h08 += w0 * j8
+        h11 += w1 * j1
+        h12 += w1 * j2
+        h13 += w1 * j3
+        h14 += w1 * j4
+        h15 += w1 * j5
+        h16 += w1 * j6
+        h17 += w1 * j7
+        h18 += w1 * j8
+        h22 += w2 * j2
+        h23 += w2 * j3
+        h24 += w2 * j4
+        h25 += w2 * j5
+        h26 += w2 * j6
+        h27 += w2 * j7
+        h28 += w2 * j8
+        h33 += w3 * j3
+        h34 += w3 * j4
+        h35 += w3 * j5
+        h36 += w3 * j6
+        h37 += w3 * j7
+        h38 += w3 * j8
+        h44 += w4 * j4
+        h45 += w4 * j5
+        h46 += w4 * j6
+        h47 += w4 * j7
+        h48 += w4 * j8
+        h55 += w5 * j5
+        h56 += w5 * j6
+        h57 += w5 * j7
+        h58 += w5 * j8
+        h66 += w6 * j6
+        h67 += w6 * j7
+        h68 += w6 * j8
+        h77 += w7 * j7
+        h78 += w7 * j8
+        h88 += w8 * j8
+    # parameter k of the round model is sum index `use[k]` (q and s left out)
+    if elliptical:
+        g[0] = g0
+        H[0, 0] = h00
+        H[0, 1] = h01
+        H[0, 2] = h02
+        H[0, 3] = h03
+        H[0, 4] = h04
+        H[0, 5] = h05
+        H[0, 6] = h06
+        H[0, 7] = h07
+        H[0, 8] = h08
+        g[1] = g1
+        H[1, 1] = h11
+        H[1, 2] = h12
+        H[1, 3] = h13
+        H[1, 4] = h14
+        H[1, 5] = h15
+        H[1, 6] = h16
+        H[1, 7] = h17
+        H[1, 8] = h18
+        g[2] = g2
+        H[2, 2] = h22
+        H[2, 3] = h23
+        H[2, 4] = h24
+        H[2, 5] = h25
+        H[2, 6] = h26
+        H[2, 7] = h27
+        H[2, 8] = h28
+        g[3] = g3
+        H[3, 3] = h33
+        H[3, 4] = h34
+        H[3, 5] = h35
+        H[3, 6] = h36
+        H[3, 7] = h37
+        H[3, 8] = h38
+        g[4] = g4
+        H[4, 4] = h44
+        H[4, 5] = h45
+        H[4, 6] = h46
+        H[4, 7] = h47
+        H[4, 8] = h48
+        g[5] = g5
+        H[5, 5] = h55
+        H[5, 6] = h56
+        H[5, 7] = h57
+        H[5, 8] = h58
+        g[6] = g6
+        H[6, 6] = h66
+        H[6, 7] = h67
+        H[6, 8] = h68
+        g[7] = g7
+        H[7, 7] = h77
+        H[7, 8] = h78
+        g[8] = g8
+        H[8, 8] = h88
+    else:
+        g[0] = g0
+        H[0, 0] = h00
+        H[0, 1] = h01
+        H[0, 2] = h02
+        H[0, 3] = h03
+        H[0, 4] = h04
+        H[0, 5] = h07
+        H[0, 6] = h08
+        g[1] = g1
+        H[1, 1] = h11
+        H[1, 2] = h12
+        H[1, 3] = h13
+        H[1, 4] = h14
+        H[1, 5] = h17
+        H[1, 6] = h18
+        g[2] = g2
+        H[2, 2] = h22
+        H[2, 3] = h23
+        H[2, 4] = h24
+        H[2, 5] = h27
+        H[2, 6] = h28
+        g[3] = g3
+        H[3, 3] = h33
+        H[3, 4] = h34
+        H[3, 5] = h37
+        H[3, 6] = h38
+        g[4] = g4
+        H[4, 4] = h44
+        H[4, 5] = h47
+        H[4, 6] = h48
+        g[5] = g7
+        H[5, 5] = h77
+        H[5, 6] = h78
+        g[6] = g8
+        H[6, 6] = h88
+    for a in range(n_par):
+        for b in range(a):
+            H[a, b] = H[b, a]
+    return c_old, c_new
+
 @njit(cache=True)
 def _cholesky(M, n):
     """In place: the lower Cholesky factor of symmetric `M` (``M = L L^T``) in its
@@ -467,7 +740,7 @@ def _invert_gauss_jordan(H, out):
 @njit(cache=True, parallel=True, error_model="numpy")
 def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_others, radius,
                 gain, floor, uniform, elliptical, max_iterations, tolerance_px,
-                theta_out, cov_out, converged, iterations, cost_out, n_valid, n_free):
+                theta_out, cov_out, converged, iterations, cost_out, n_valid, n_free, plane):
     """Levenberg-Marquardt (Fisher scoring with Poisson weights) for columns `idx`.
 
     Column ``k = idx[j]`` starts at ``theta[k]`` in the window at integer
@@ -489,7 +762,8 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
 
     Only the first `n_free` parameters move (4: centre, amplitude and
     background, the shape held at ``theta[k]``); the covariance rows and
-    columns of the held ones are zero.
+    columns of the held ones are zero.  With `plane` the last two parameters
+    are the background's slopes along rows and columns (`_window_pass_plane`).
     """
     n_par = theta.shape[1]
     n_pix = off_r.shape[0]
@@ -505,13 +779,13 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
             _fit_one(image, centres, off_r, off_c, idx[j], j, theta, start, others, has_others,
                      radius, gain, floor, uniform, elliptical, max_iterations, tolerance_px,
                      pix, mats, vecs, theta_out, cov_out, converged, iterations, cost_out,
-                     n_valid, n_free)
+                     n_valid, n_free, plane)
 
 
 @njit(cache=True, error_model="numpy")
 def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_others, radius,
              gain, floor, uniform, elliptical, max_iterations, tolerance_px, pix, mats, vecs,
-             theta_out, cov_out, converged, iterations, cost_out, n_valid, n_free):
+             theta_out, cov_out, converged, iterations, cost_out, n_valid, n_free, plane):
     """`fit_columns` for column ``k = idx[j]``, with scratch arrays `pix`, `mats`, `vecs`."""
     n_par = theta.shape[1]
     n_pix = off_r.shape[0]
@@ -551,8 +825,12 @@ def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_other
     g_try = vecs[1]
     step = vecs[2]
     trial = vecs[3]
-    _, cost = _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain,
-                           floor, w_try, w_cur, Gs, H, g)
+    if plane:
+        _, cost = _window_pass_plane(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform,
+                                     gain, floor, w_try, w_cur, Gs, H, g)
+    else:
+        _, cost = _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain,
+                               floor, w_try, w_cur, Gs, H, g)
     _hold(H, g, n_free)
     lam = 1e-3
     done = False
@@ -568,15 +846,29 @@ def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_other
         # centre's own uncertainty (1 / sqrt of the larger diagonal of J^T W J,
         # a lower bound on it): a weak column's last steps wander in the noise
         settle = max(tolerance_px, 0.01 / math.sqrt(max(H[0, 0], H[1, 1], 1e-300)))
+        if plane:
+            # the tilted refit starts where another model left the column, and
+            # a first step that mostly moves amplitude and background can come
+            # before a larger one of the centre: there every free parameter
+            # must settle within a hundredth of its own bound
+            scaled = 0.0
+            for a in range(n_free):
+                scaled = max(scaled, abs(step[a]) * math.sqrt(max(H[a, a], 1e-300)))
+            settle = max(tolerance_px, moved * 0.01 / max(scaled, 1e-300))
         if ok and moved < settle:
             t[:] = trial
             done = True
             break
         better = False
         if ok:
-            c_trial, c_next = _window_pass(d, o, vm, off_r, off_c, trial, cr, cc, elliptical,
-                                           uniform, gain, floor, w_cur, w_try, Gs, H_try,
-                                           g_try)
+            if plane:
+                c_trial, c_next = _window_pass_plane(d, o, vm, off_r, off_c, trial, cr, cc,
+                                                     elliptical, uniform, gain, floor, w_cur,
+                                                     w_try, Gs, H_try, g_try)
+            else:
+                c_trial, c_next = _window_pass(d, o, vm, off_r, off_c, trial, cr, cc,
+                                               elliptical, uniform, gain, floor, w_cur, w_try,
+                                               Gs, H_try, g_try)
             _hold(H_try, g_try, n_free)
             better = math.isfinite(c_trial) and c_trial <= cost
         if better:

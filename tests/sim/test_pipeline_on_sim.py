@@ -31,8 +31,14 @@ def test_pbtio3_frame_positions_and_lattice_recovered():
     assert sorted([lat["a_pm"], lat["b_pm"]]) == pytest.approx([mat.a_pm, mat.c_pm], abs=0.5)
     cols, tr = res.columns, acq.truth
     dist, k = cKDTree(tr.positions_px).query(cols.positions_px)
-    ok = (dist < 1.0) & cols.converged
+    # found: within 1 px, or within 3 of its own sigma (the faint B columns here
+    # peak at about 6 counts; with the tilted background their sigma is ~0.5 px)
+    reach = np.maximum(1.0, 3.0 * np.nanmax(cols.sigma_positions_px, axis=1))
+    ok = (dist < reach) & cols.converged
     assert ok.sum() > 0.9 * len(cols)
+    b_site = ok & (tr.sublattice[k] == "B")
+    z_b = (cols.positions_px[b_site] - tr.positions_px[k[b_site]]) / cols.sigma_positions_px[b_site]
+    assert 0.7 < z_b.std() < 1.4
     a_site = ok & (tr.sublattice[k] == "A")
     err_px = cols.positions_px[a_site] - tr.positions_px[k[a_site]]
     sigma_px = cols.sigma_positions_px[a_site]
