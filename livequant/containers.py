@@ -291,6 +291,9 @@ def read_any(ref: str | os.PathLike, *, defaults: dict | None = None,
         sc = sidecar_path(path)
         if os.path.lexists(sc):
             check_inside(sc, confine_to, what="sidecar")
+    if path.is_dir():
+        raise FrameError(f"{path}: is a folder, not a frame file", reason="not-a-file",
+                         path=path)
     if not path.is_file():
         raise FrameError(f"{path}: file vanished before it could be read", reason="vanished",
                          path=path)

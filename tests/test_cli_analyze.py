@@ -86,6 +86,15 @@ def test_a_missing_file_is_not_said_to_have_vanished(tmp_path, capsys):
     assert json.loads(out)["frames"][0]["reason"] == "not-found"
 
 
+def test_a_folder_is_not_said_to_have_vanished(tmp_path, capsys):
+    (tmp_path / "frames").mkdir()
+    code, out, err = _run(["analyze", str(tmp_path / "frames"), "--json"], capsys)
+    assert code == 2
+    assert "frames: is a folder, not a frame file" in err and "vanished" not in err
+    assert "livequant reprocess" in err                 # says what to do instead
+    assert json.loads(out)["frames"][0]["reason"] == "not-a-file"
+
+
 def test_duplicate_frame_ids_never_overwrite(tmp_path, capsys):
     """Two sidecars giving one frame_id: both results are kept, the second under a new id,
     and the command says so; each result names its input file."""

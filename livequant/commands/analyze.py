@@ -100,6 +100,8 @@ def run(args) -> int:
     for given in paths:
         if not given.exists() and not given.is_symlink():
             refs.append((str(given), None))  # reported as "no such file" below
+        elif given.is_dir():
+            refs.append((str(given), "folder"))  # reported below
         else:
             refs.extend((r, given) for r in container_members(given))
     for ref, given in refs:
@@ -108,6 +110,11 @@ def run(args) -> int:
         try:
             if given is None:
                 raise FrameError(f"{ref}: no such file", reason="not-found", path=ref)
+            if given == "folder":
+                raise FrameError(f"{ref}: is a folder, not a frame file; name the frames in it "
+                                 f"(e.g. {Path(ref) / '*.tif'}) or analyse the whole folder "
+                                 "with `livequant reprocess FOLDER --session DIR`",
+                                 reason="not-a-file", path=ref)
             frame = read_any(ref, defaults=settings.frame_defaults.as_dict())
             frame = _unique_id(frame, path, written)
             result = analyze_frame(frame, settings)
