@@ -39,8 +39,13 @@ def _daemon(tmp_path, settings=None, rule=None):
 
 
 def _done(d, n):
-    wait_for(lambda: d.ledger.counts()["done"] >= n and not d._in_flight, timeout_s=90,
-             what=f"{n} frames done")
+    """`n` frames done in the ledger, none in flight, and the decision loop through
+    every frame this daemon finished: a frame is marked done before its rules and
+    proposals run, so a test reading the loop's counters right after the mark raced
+    it (seen once in a full-suite run).  ``status()`` waits for a step in progress."""
+    wait_for(lambda: d.ledger.counts()["done"] >= n and not d._in_flight
+             and d.decisions.status()["frames"] == len(d._done_times), timeout_s=90,
+             what=f"{n} frames done and decided")
 
 
 class _Sub:
