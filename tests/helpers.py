@@ -25,31 +25,25 @@ def fisher_crlb_position(*, sigma_px, amplitude, background, radius_px, elliptic
     rr, cc = rr[disk].astype(float), cc[disk].astype(float)
     mu_r, mu_c = subpixel
 
+    n_shape = 7 if elliptical else 5
+
     def model(t):
         if elliptical:
-            r0, c0, A, B, sr, sc, rho = t
+            r0, c0, A, B, sr, sc, rho = t[:n_shape]
             dr, dc = (rr - r0) / sr, (cc - c0) / sc
             e = -(dr**2 - 2 * rho * dr * dc + dc**2) / (2 * (1 - rho**2))
         else:
-            r0, c0, A, B, s = t
+            r0, c0, A, B, s = t[:n_shape]
             e = -((rr - r0) ** 2 + (cc - c0) ** 2) / (2 * s**2)
-        return B + A * np.exp(e) + (slope[0] * rr + slope[1] * cc if tilted else 0.0)
+        slope_r, slope_c = t[n_shape:] if tilted else (0.0, 0.0)
+        return B + A * np.exp(e) + slope_r * rr + slope_c * cc
 
     if elliptical:
         t0 = np.array([mu_r, mu_c, amplitude, background, sigma_px, sigma_px, 0.0])
     else:
         t0 = np.array([mu_r, mu_c, amplitude, background, sigma_px])
-    n_shape = len(t0)
     if tilted:
         t0 = np.concatenate([t0, [0.0, 0.0]])
-
-    def model_of(t):
-        nonlocal slope
-        slope = t[n_shape:] if tilted else (0.0, 0.0)
-        return model_shape(t[:n_shape])
-
-    slope = (0.0, 0.0)
-    model_shape, model = model, model_of
     m = model(t0)
     grads = []
     for k in range(len(t0)):

@@ -63,6 +63,20 @@ def _next_gaussian(row, prev_row, dr, dc, p, q, s, decay, G, step):
     return G, step, prev_row
 
 
+@njit(cache=True, inline="always")
+def _window_gaussian(off_r, off_c, p, q, s, d_r, d_c, Gs):
+    """The unit Gaussian at every window pixel into `Gs`, by the row recurrence
+    of `_next_gaussian` (serial: each value follows from the last)."""
+    decay = math.exp(-s)
+    prev_row = 1e300
+    G = 0.0
+    step = 0.0
+    for i in range(off_r.shape[0]):
+        G, step, prev_row = _next_gaussian(off_r[i], prev_row, off_r[i] - d_r, off_c[i] - d_c,
+                                           p, q, s, decay, G, step)
+        Gs[i] = G
+
+
 #: Columns per scratch allocation in `fit_columns` (and per task of its loop).
 _COLUMNS_PER_CHUNK = 32
 
@@ -100,14 +114,7 @@ def _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, f
     n_pix = off_r.shape[0]
     B = t[3]
     A, p, q, s, d_r, d_c = _unpack(t, cr, cc, elliptical)
-    decay = math.exp(-s)
-    prev_row = 1e300
-    G = 0.0
-    step = 0.0
-    for i in range(n_pix):
-        G, step, prev_row = _next_gaussian(off_r[i], prev_row, off_r[i] - d_r, off_c[i] - d_c,
-                                           p, q, s, decay, G, step)
-        Gs[i] = G
+    _window_gaussian(off_r, off_c, p, q, s, d_r, d_c, Gs)
     h00 = 0.0
     h01 = 0.0
     h02 = 0.0
@@ -274,14 +281,7 @@ def _window_pass_plane(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, g
     b_r = t[n_par - 2]
     b_c = t[n_par - 1]
     A, p, q, s, d_r, d_c = _unpack(t, cr, cc, elliptical)
-    decay = math.exp(-s)
-    prev_row = 1e300
-    G = 0.0
-    step = 0.0
-    for i in range(n_pix):
-        G, step, prev_row = _next_gaussian(off_r[i], prev_row, off_r[i] - d_r, off_c[i] - d_c,
-                                           p, q, s, decay, G, step)
-        Gs[i] = G
+    _window_gaussian(off_r, off_c, p, q, s, d_r, d_c, Gs)
     h00 = 0.0
     h01 = 0.0
     h02 = 0.0
