@@ -14,10 +14,10 @@ from typing import Any, Literal, Mapping
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
-try:  # Python >= 3.11
-    import tomllib
-except ModuleNotFoundError:  # pragma: no cover - Python 3.10
-    import tomli as tomllib  # type: ignore[no-redef]
+# reading and merging the sources is pydantic-free (livequant.config_tree), so a
+# command that needs one raw value need not import the schema
+from livequant.config_tree import (CONFIG_DIR, DEFAULT_TOML, ENV_PREFIX, ConfigError,  # noqa: F401
+                                   _read_toml, env_overrides, parse_scalar, settings_tree)
 
 __all__ = [
     "Settings",
@@ -32,14 +32,7 @@ __all__ = [
     "check_materials",
 ]
 
-CONFIG_DIR = Path(__file__).resolve().parent.parent / "config"
-DEFAULT_TOML = CONFIG_DIR / "default.toml"
 MATERIALS_TOML = CONFIG_DIR / "materials.toml"
-ENV_PREFIX = "LIVEQUANT_"
-
-
-class ConfigError(ValueError):
-    """Invalid configuration: names the key, the value and what is allowed."""
 
 
 class _Model(BaseModel):
@@ -338,55 +331,6 @@ class Settings(_Model):
 # ---------------------------------------------------------------- loading
 
 
-def _deep_merge(base: dict, top: Mapping) -> dict:
-    out = dict(base)
-    for key, value in top.items():
-        if isinstance(value, Mapping) and isinstance(out.get(key), dict):
-            out[key] = _deep_merge(out[key], value)
-        else:
-            out[key] = value
-    return out
-
-
-def _read_toml(path: Path) -> dict:
-    try:
-        with open(path, "rb") as fh:
-            return tomllib.load(fh)
-    except FileNotFoundError:
-        raise ConfigError(f"config file {path} does not exist") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(f"config file {path} is not valid TOML: {exc}") from None
-
-
-def _set_dotted(tree: dict, dotted: str, value: Any) -> None:
-    parts = [p for p in dotted.split(".") if p]
-    node = tree
-    for part in parts[:-1]:
-        node = node.setdefault(part, {})
-        if not isinstance(node, dict):
-            raise ConfigError(f"`{dotted}`: `{part}` is a value, not a section")
-    node[parts[-1]] = value
-
-
-def parse_scalar(text: str) -> Any:
-    """Parse an environment or command-line value as a TOML scalar, else a string."""
-    try:
-        return tomllib.loads(f"v = {text}")["v"]
-    except tomllib.TOMLDecodeError:
-        return text
-
-
-def env_overrides(environ: Mapping[str, str] | None = None) -> dict:
-    environ = os.environ if environ is None else environ
-    tree: dict = {}
-    for name, text in environ.items():
-        if not name.startswith(ENV_PREFIX) or name == ENV_PREFIX + "CONFIG":
-            continue
-        dotted = name[len(ENV_PREFIX):].lower().replace("__", ".")
-        _set_dotted(tree, dotted, parse_scalar(text))
-    return tree
-
-
 def load_settings(
     config_file: str | os.PathLike | None = None,
     *,
@@ -410,20 +354,8 @@ def load_settings(
     ConfigError
         With the key, the value given and what is allowed.
     """
-    environ = os.environ if environ is None else environ
-    tree: dict = {}
-    if use_default_toml and DEFAULT_TOML.exists():
-        tree = _deep_merge(tree, _read_toml(DEFAULT_TOML))
-    config_file = config_file or environ.get(ENV_PREFIX + "CONFIG")
-    if config_file:
-        tree = _deep_merge(tree, _read_toml(Path(config_file)))
-    tree = _deep_merge(tree, env_overrides(environ))
-    cli_tree: dict = {}
-    for dotted, value in (overrides or {}).items():
-        if value is not None:
-            _set_dotted(cli_tree, dotted, value)
-    tree = _deep_merge(tree, cli_tree)
-    return validate_settings(tree)
+    return validate_settings(settings_tree(config_file, overrides=overrides, environ=environ,
+                                           use_default_toml=use_default_toml))
 
 
 def validate_settings(tree: Mapping) -> Settings:

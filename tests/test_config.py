@@ -93,3 +93,22 @@ def test_region_strain_reference_needs_a_valid_region():
     s = load_settings(overrides={"analysis.cells.reference": "region",
                                  "analysis.cells.reference_region_px": [0, 0, 100, 50]})
     assert s.analysis.cells.reference_region_px == (0, 0, 100, 50)
+
+
+def test_ledger_side_proposals_reads_the_configured_beam_current(tmp_path, monkeypatch):
+    """`livequant proposals` without a daemon reads proposals.beam_current_pa from the
+    raw configuration (no schema import): the user's file, then the environment; a
+    value that is not a positive number counts as unknown (`run` rejects it in full)."""
+    from livequant.commands.proposals import _configured_current
+
+    cfg = tmp_path / "mine.toml"
+    cfg.write_text("[proposals]\nbeam_current_pa = 35\n")
+    monkeypatch.setenv("LIVEQUANT_CONFIG", str(cfg))
+    assert _configured_current() == 35.0
+    monkeypatch.setenv("LIVEQUANT_PROPOSALS__BEAM_CURRENT_PA", "12.5")
+    assert _configured_current() == 12.5
+    monkeypatch.setenv("LIVEQUANT_PROPOSALS__BEAM_CURRENT_PA", "-1")
+    assert _configured_current() is None
+    cfg.write_text("[proposals\n")                     # not TOML: unknown, not a traceback
+    monkeypatch.delenv("LIVEQUANT_PROPOSALS__BEAM_CURRENT_PA")
+    assert _configured_current() is None

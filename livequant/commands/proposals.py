@@ -163,13 +163,16 @@ def proposals_command(args) -> int:
 
 
 def _configured_current() -> float | None:
-    """``proposals.beam_current_pa`` of the configured settings (None when unset or unreadable)."""
-    from livequant.config import ConfigError, load_settings
+    """``proposals.beam_current_pa`` of the configured sources, read raw (None when unset,
+    unreadable or not a positive number; `livequant run` validates it in full)."""
+    from livequant.config_tree import ConfigError, settings_tree
 
     try:
-        return load_settings().proposals.beam_current_pa
+        value = settings_tree().get("proposals", {}).get("beam_current_pa")
     except ConfigError:
         return None
+    ok = isinstance(value, (int, float)) and not isinstance(value, bool) and value > 0
+    return float(value) if ok else None
 
 
 def print_proposals(rows, *, beam_current_pa=None, file=None) -> None:
