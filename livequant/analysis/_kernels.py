@@ -997,31 +997,65 @@ def window_starts(image, centres, start, off_r, off_c, radius, fallback, backgro
             variance[k] = s_wr2 / (2.0 * s_w) if s_w > 0 else np.nan
 
 
-@njit(cache=True)
+@njit(cache=True, parallel=True)
 def render_gaussians(theta, centres, off_r, off_c, elliptical, out):
     """Add every column's Gaussian ``A G`` (no background) into image `out`
     over the footprint ``(off_r, off_c)`` around its integer centre.
 
-    Serial on purpose: footprints overlap, so parallel adds would race.
+    Footprints overlap, so columns cannot simply be spread over threads.  The
+    frame is cut into bands of rows taller than twice the footprint's reach:
+    two bands with one between them never touch a common pixel, so all even
+    bands are rendered in parallel, then all odd ones.  Each pixel receives
+    its sums in a fixed order (its even band's columns, then its odd band's,
+    each in index order), so the result does not depend on the thread count.
     """
+    n = theta.shape[0]
+    if n == 0 or off_r.shape[0] == 0:
+        return
+    reach = 0
+    for i in range(off_r.shape[0]):
+        reach = max(reach, abs(int(off_r[i])))
+    height = 2 * reach + 1
+    n_bands = max(1, (out.shape[0] + height - 1) // height)
+    # columns by band (a stable counting sort; centres off the frame go to
+    # the nearest band, whose pixels their footprints can only be within)
+    band = np.empty(n, np.int64)
+    first = np.zeros(n_bands + 1, np.int64)
+    for k in range(n):
+        band[k] = min(max(centres[k, 0] // height, 0), n_bands - 1)
+        first[band[k] + 1] += 1
+    for b in range(n_bands):
+        first[b + 1] += first[b]
+    order = np.empty(n, np.int64)
+    fill = first[:-1].copy()
+    for k in range(n):
+        order[fill[band[k]]] = k
+        fill[band[k]] += 1
+    for parity in range(2):
+        for h in prange((n_bands - parity + 1) // 2):
+            b = 2 * h + parity
+            for m in range(first[b], first[b + 1]):
+                _render_one(theta, centres, off_r, off_c, elliptical, out, order[m])
+
+
+@njit(cache=True, inline="always")
+def _render_one(theta, centres, off_r, off_c, elliptical, out, k):
+    """`render_gaussians` for column `k`."""
     shape_r, shape_c = out.shape
-    for k in range(theta.shape[0]):
-        t = theta[k]
-        A, p, q, s, d_r, d_c = _unpack(t, centres[k, 0], centres[k, 1], elliptical)
-        decay = math.exp(-s)
-        prev_row = 1e300
-        G = 0.0
-        step = 0.0
-        for i in range(off_r.shape[0]):
-            dr = off_r[i] - d_r
-            dc = off_c[i] - d_c
-            G, step, prev_row = _next_gaussian(off_r[i], prev_row, dr, dc, p, q, s, decay, G,
-                                               step)
-            row = centres[k, 0] + int(off_r[i])
-            col = centres[k, 1] + int(off_c[i])
-            if row < 0 or row >= shape_r or col < 0 or col >= shape_c:
-                continue
-            out[row, col] += A * G
+    A, p, q, s, d_r, d_c = _unpack(theta[k], centres[k, 0], centres[k, 1], elliptical)
+    decay = math.exp(-s)
+    prev_row = 1e300
+    G = 0.0
+    step = 0.0
+    for i in range(off_r.shape[0]):
+        dr = off_r[i] - d_r
+        dc = off_c[i] - d_c
+        G, step, prev_row = _next_gaussian(off_r[i], prev_row, dr, dc, p, q, s, decay, G, step)
+        row = centres[k, 0] + int(off_r[i])
+        col = centres[k, 1] + int(off_c[i])
+        if row < 0 or row >= shape_r or col < 0 or col >= shape_c:
+            continue
+        out[row, col] += A * G
 
 
 @njit(cache=True, parallel=True)

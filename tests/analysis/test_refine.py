@@ -262,6 +262,45 @@ def test_results_do_not_depend_on_the_thread_count():
         assert np.array_equal(getattr(one, name), getattr(many, name), equal_nan=True), name
 
 
+def test_rendered_neighbours_match_numpy_on_any_thread_count():
+    """The compiled render of every column's Gaussian (banded over threads)
+    against a plain numpy sum over the same footprints, columns near and past
+    the frame's edges included; and bit for bit the same on one thread."""
+    import numba
+
+    from livequant.analysis._kernels import render_gaussians
+    from livequant.analysis.refine import _disk
+
+    rng = np.random.default_rng(5)
+    shape = (97, 131)
+    n = 400
+    pos = np.column_stack([rng.uniform(-6, shape[0] + 6, n), rng.uniform(-6, shape[1] + 6, n)])
+    theta = np.column_stack([pos, rng.uniform(-2, 50, n), rng.uniform(0, 5, n),
+                             rng.uniform(0.05, 0.3, n), rng.uniform(-0.03, 0.03, n),
+                             rng.uniform(0.05, 0.3, n)])
+    centres = np.rint(pos).astype(np.int64)
+    off_r, off_c = _disk(9.5)
+    ref = np.zeros(shape)
+    for k in range(n):   # reference: one column at a time, numpy per footprint
+        r, c = centres[k, 0] + off_r.astype(int), centres[k, 1] + off_c.astype(int)
+        inside = (r >= 0) & (r < shape[0]) & (c >= 0) & (c < shape[1])
+        dr, dc = r - pos[k, 0], c - pos[k, 1]
+        p, q, s = theta[k, 4:7]
+        g = theta[k, 2] * np.exp(-0.5 * (p * dr**2 + 2 * q * dr * dc + s * dc**2))
+        np.add.at(ref, (r[inside], c[inside]), g[inside])
+    many = np.zeros(shape)
+    render_gaussians(theta, centres, off_r, off_c, True, many)
+    assert np.allclose(many, ref, rtol=1e-10, atol=1e-10 * np.abs(ref).max())
+    before = numba.get_num_threads()
+    try:
+        numba.set_num_threads(1)
+        one = np.zeros(shape)
+        render_gaussians(theta, centres, off_r, off_c, True, one)
+    finally:
+        numba.set_num_threads(before)
+    assert np.array_equal(one, many)
+
+
 def test_small_solvers_match_numpy():
     """The compiled 7 x 7 solve and inverse of the fit (Cholesky, with pivoted
     elimination when the matrix is not positive definite) against numpy.linalg."""
