@@ -79,6 +79,12 @@ def _window_gaussian(off_r, off_c, p, q, s, d_r, d_c, Gs):
 
 #: Columns per scratch allocation in `fit_columns` (and per task of its loop).
 _COLUMNS_PER_CHUNK = 32
+#: In the tilted refit, the largest step of any free parameter other than the
+#: centre, in units of its own bound, that still counts as settled (the centre
+#: itself must settle within 0.01 of its bound).  At 0.01 for every parameter
+#: the slow amplitude and background steps of weak columns cost a quarter of
+#: the refit's iterations without moving their centres.
+_PLANE_OTHERS_SETTLE = 0.1
 
 # Sums may be reordered (and so vectorised) and multiply-adds fused; nothing
 # else is relaxed (no assumptions about NaN, infinities or signed zeros).
@@ -760,6 +766,19 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
     rejected step whose full size would already be that small.  A column
     whose damping runs away stops, unconverged.
 
+    At low counts the reweighting can cycle: under the weights of point a,
+    point b is better, and under b's, a.  In the tilted refit (`plane`) an
+    accepted step that turns back along the last one (cosine below -1/2 in
+    the metric of the diagonal of ``J^T W J``) raises the damping instead of
+    lowering it, so the iteration contracts onto the same fixed point (the
+    Poisson score equation) instead of going round until `max_iterations`
+    and leaving the column with its flat-background fit; there a damped
+    step counts at its undamped size (about ``(1 + lambda)`` times its own).
+    The main fit keeps the plain rule: a weak column that cannot settle
+    there is better refitted with its sublattice's shape held (the fixed-
+    shape fallback of ``refine.py``) than given a free shape it cannot
+    support; damping it there put a false core on a wall at 2 us.
+
     Only the first `n_free` parameters move (4: centre, amplitude and
     background, the shape held at ``theta[k]``); the covariance rows and
     columns of the held ones are zero.  With `plane` the last two parameters
@@ -774,7 +793,7 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
         # as a pixel pass
         pix = np.empty((6, n_pix))
         mats = np.empty((3, n_par, n_par))
-        vecs = np.empty((4, n_par))
+        vecs = np.empty((5, n_par))
         for j in range(c * _COLUMNS_PER_CHUNK, min((c + 1) * _COLUMNS_PER_CHUNK, n)):
             _fit_one(image, centres, off_r, off_c, idx[j], j, theta, start, others, has_others,
                      radius, gain, floor, uniform, elliptical, max_iterations, tolerance_px,
@@ -825,6 +844,8 @@ def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_other
     g_try = vecs[1]
     step = vecs[2]
     trial = vecs[3]
+    last = vecs[4]
+    last[:] = 0.0
     if plane:
         _, cost = _window_pass_plane(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform,
                                      gain, floor, w_try, w_cur, Gs, H, g)
@@ -835,6 +856,7 @@ def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_other
     lam = 1e-3
     done = False
     it = 0
+    turned = False
     for _ in range(max_iterations):
         _damped_step(H, g, lam, M, step)
         for a in range(n_par):
@@ -849,13 +871,22 @@ def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_other
         if plane:
             # the tilted refit starts where another model left the column, and
             # a first step that mostly moves amplitude and background can come
-            # before a larger one of the centre: there every free parameter
-            # must settle within a hundredth of its own bound
-            scaled = 0.0
+            # before a larger one of the centre: there the centre must settle
+            # within a hundredth of its own bound and every other free
+            # parameter within `_PLANE_OTHERS_SETTLE` of its own
+            sc = 0.0
+            so = 0.0
             for a in range(n_free):
-                scaled = max(scaled, abs(step[a]) * math.sqrt(max(H[a, a], 1e-300)))
-            settle = max(tolerance_px, moved * 0.01 / max(scaled, 1e-300))
-        if ok and moved < settle:
+                z = abs(step[a]) * math.sqrt(max(H[a, a], 1e-300))
+                if a < 2:
+                    sc = max(sc, z)
+                else:
+                    so = max(so, z)
+            settle = max(tolerance_px, moved * min(0.01 / max(sc, 1e-300),
+                                                   _PLANE_OTHERS_SETTLE / max(so, 1e-300)))
+        # (in the tilted refit a damped step counts at its undamped size,
+        # about (1 + lambda) times its own: its damping is raised on purpose)
+        if ok and (moved * (1.0 + lam) if plane else moved) < settle:
             t[:] = trial
             done = True
             break
@@ -872,12 +903,28 @@ def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_other
             _hold(H_try, g_try, n_free)
             better = math.isfinite(c_trial) and c_trial <= cost
         if better:
+            if plane:
+                # a step back along the last one: the weights of the two
+                # points each prefer the other (see the docstring)
+                back = 0.0
+                norm_s = 0.0
+                norm_l = 0.0
+                for a in range(n_free):
+                    back += step[a] * last[a] * H[a, a]
+                    norm_s += step[a] * step[a] * H[a, a]
+                    norm_l += last[a] * last[a] * H[a, a]
+                turned = back < -0.5 * math.sqrt(norm_s * norm_l)
+                for a in range(n_par):
+                    last[a] = step[a]
             t[:] = trial
             H, H_try = H_try, H
             g, g_try = g_try, g
             w_cur, w_try = w_try, w_cur
             cost = c_next
-            lam = max(lam / 3.0, 1e-7)
+            if plane and turned:
+                lam = lam * 5.0
+            else:
+                lam = max(lam / 3.0, 1e-7)
         else:
             lam = lam * 5.0
             if moved * (1.0 + lam) < settle:

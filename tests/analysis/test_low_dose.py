@@ -73,3 +73,15 @@ def test_weak_columns_are_unbiased_and_their_sigmas_roughly_honest():
     # mismatch along the fast scan); within a factor 1.5 of the scatter
     assert np.all(pull.std(axis=0) < 1.5)
     assert np.all(pull.std(axis=0) > 0.8)
+
+
+def test_the_tilted_refit_settles_nearly_every_weak_column():
+    """The tilted-background refit of the B columns at 2 us: its reweighting
+    can cycle between two points at these counts, and a column that never
+    settles keeps its flat-background fit.  Damping the steps that turn back
+    lets 95 % of them take the refit (measured: 95.0 % on this seed; 87.4 %
+    before the damping)."""
+    _, res = _analyse(1)
+    tilted = res.columns.extra["tilted_background"]["B"]
+    assert tilted["of"] > 400
+    assert tilted["refitted"] / tilted["of"] >= 0.93
