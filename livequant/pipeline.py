@@ -150,6 +150,9 @@ class FrameResult:
             "timings_s": dict(self.timings_s),
             "meta": self.meta.to_json(),
         }
+        tilted = None if self.columns is None else self.columns.extra.get("tilted_background")
+        if tilted:
+            out["tilted_background"] = {k: dict(v) for k, v in tilted.items()}
         if self.cells is not None:
             out["cells"] = self.cells.summary()
         out.update(self.extra)

@@ -143,6 +143,13 @@ SUMMARY: tuple[tuple[str, str, str], ...] = (
     ("n_converged", "-", "Columns whose fit converged."),
     ("columns_per_sublattice.*", "-", "Columns per sublattice (A, B, Oa, Ob)."),
     ("median_sigma_position_pm", "pm", "Median position uncertainty of the converged columns."),
+    ("tilted_background.*", "-", "Per sublattice given the tilted-background refit "
+                                 "(analysis.refine.background): window_radius_px (px, the "
+                                 "refit's window), slope_chi2 (mean b^T C^-1 b of the free "
+                                 "background slopes: about 2 where they are only noise, "
+                                 "larger where neighbours' tails tilt the background), "
+                                 "refitted and of (columns that took the refit, of those "
+                                 "tried)."),
     ("lattice.a_pm", "pm", "Frame lattice parameter along a (least squares over the columns)."),
     ("lattice.sigma_a_pm", "pm", "Its uncertainty."),
     ("lattice.b_pm", "pm", "Frame lattice parameter along b."),
