@@ -11,6 +11,10 @@ restart finds it.
 Completeness (DESIGN.md): a frame is complete when its sidecar ``NAME.json``
 exists (writers write the image first and the sidecar last, each by rename),
 or, with no sidecar, when the image has not changed for ``settle_time_s``.
+A writer that does not rename creates the sidecar empty and then fills it:
+an empty sidecar counts as not there yet (else the frame would be handed out
+once with it empty and again with its content), and the settle clock then
+runs from the newer of the image's and the sidecar's changes.
 """
 
 from __future__ import annotations
@@ -273,10 +277,13 @@ class FolderSource:
             if current != sig:
                 self._pending[path] = (current, now_mono)
                 continue
-            has_sidecar = current[2] is not None
-            # Unchanged for the settle time, by our own clock or by the file's
-            # timestamp (a frame written long before the daemon started).
-            settled = max(now_mono - since, now_wall - current[1] / 1e9) >= self.settle_time_s
+            side = current[2]
+            has_sidecar = side is not None and side[0] > 0   # empty: still being written
+            # Unchanged for the settle time, by our own clock or by the files'
+            # timestamps (a frame written long before the daemon started); a
+            # sidecar that just appeared (empty) restarts the wait.
+            newest_ns = max(current[1], side[1] if side is not None else 0)
+            settled = max(now_mono - since, now_wall - newest_ns / 1e9) >= self.settle_time_s
             if not (has_sidecar or settled):
                 continue
             if not put_until(self.out, Candidate(str(path), self.origin, now_wall), self._stop):

@@ -107,6 +107,26 @@ def test_late_sidecar_hands_the_frame_out_again(tmp_path, folder_source):
     wait_for(lambda: q.qsize() == 2, what="frame again with its sidecar")
 
 
+def test_a_sidecar_written_in_place_hands_the_frame_out_once_more_not_twice(tmp_path,
+                                                                          folder_source):
+    """A writer that creates the sidecar and fills it afterwards (no rename): the
+    frame, already handed out without one, is handed out once more when the
+    sidecar has content, never with it empty (that took two hand-outs, the first
+    of which would have been read with an empty sidecar)."""
+    src, q = folder_source(settle_time_s=0.5)
+    src.start()
+    write_frame(tmp_path, "w", lattice_image())  # no sidecar
+    wait_for(lambda: q.qsize() == 1, what="settled frame")
+    with open(tmp_path / "w.json", "w") as fh:
+        fh.flush()
+        # empty for longer than several re-listings (0.1 s), shorter than the settle time
+        time.sleep(0.3)
+        fh.write(json.dumps(sidecar("w")))
+    wait_for(lambda: q.qsize() >= 2, what="frame again with its sidecar")
+    time.sleep(1.0)  # past the settle time and many re-listings: nothing more
+    assert q.qsize() == 2
+
+
 def test_polling_observer_works_too(tmp_path, folder_source):
     src, q = folder_source(force_polling=True)
     src.start()
