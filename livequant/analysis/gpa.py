@@ -43,6 +43,8 @@ import numpy as np
 from scipy import fft as sp_fft
 from scipy import ndimage
 
+from livequant.analysis import _filters
+
 __all__ = ["GPAResult", "gpa_strain"]
 
 #: Border, in real-space filter sigmas, inside which GPA values are not trusted (the
@@ -218,7 +220,7 @@ def gpa_strain(image, basis_px, *, reference_xy_px=None, reflections=((1, 0), (0
                          "is under 2 pixels; use lower-order `reflections`")
     sigma_k = mask_sigma_fraction * float(np.min(np.hypot(*g.T)))
     h, w = img.shape
-    half = sp_fft.rfft2(img - img.mean())
+    half = sp_fft.rfft2(img - img.mean(), workers=_filters.compute_threads())
     ny = _window_size(h, _WINDOW_SIGMAS * sigma_k * h)
     nx = _window_size(w, _WINDOW_SIGMAS * sigma_k * w)
     step = (h / ny, w / nx)

@@ -209,27 +209,33 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
     theta, state = fit(theta, everyone, None)
 
     passes = 1 + (neighbour_passes if joint_neighbours and n > 1 else 0)
-    render_off = None
+    rendered = None
+    candidates = everyone
     for _ in range(passes - 1):
-        if not _neighbours_reach(theta, radius, gain, elliptical).any():
+        # the cheap bound first; a later pass has the exact test of its candidates
+        if rendered is None and not _neighbours_reach(theta, radius, gain, elliptical).any():
             break
-        if render_off is None:
-            render_off = _disk(_render_radius(theta, radius, spacing_px, elliptical))
-        total = np.zeros(image.shape)
-        _kernels.render_gaussians(theta, centres, render_off[0], render_off[1], elliptical, total)
+        if rendered is None:
+            rendered = _Rendered(image.shape, centres,
+                                 _render_radius(theta, radius, spacing_px, elliptical),
+                                 elliptical)
+        total = rendered.show(theta)
         # Refit only the columns whose neighbours reach into their window by more
         # than a tenth of the local noise somewhere: for well-separated columns
         # the second pass would change nothing but cost as much as the first.
-        touched = np.zeros(n, bool)
-        _kernels.window_others(total, image, theta, centres, off_r, off_c, everyone, elliptical,
-                               float(gain), np.zeros((0, len(off_r))), touched)
+        # A later pass looks only at the columns the previous one refitted: the
+        # others' neighbours stayed below that tenth, and a refit moves a
+        # neighbour's Gaussian far less than that.
+        touched = np.zeros(len(candidates), bool)
+        _kernels.window_others(total, image, theta, centres, off_r, off_c, candidates,
+                               elliptical, float(gain), np.zeros((0, len(off_r))), touched)
         if not touched.any():
             break
-        sub = np.nonzero(touched)[0]
+        sub = candidates[touched]
+        candidates = sub
         others = np.empty((len(sub), len(off_r)))
         _kernels.window_others(total, image, theta, centres, off_r, off_c, sub, elliptical,
-                               float(gain), others, touched[sub])
-        del total
+                               float(gain), others, np.zeros(len(sub), bool))
         th_sub, st_sub = fit(theta, sub, others)
         theta[sub] = th_sub
         for key in state:
@@ -240,9 +246,14 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
                                                       ij, elliptical, min_significance)
     tilted = {}
     if background == "tilted":
+        if joint_neighbours and n > 1 and rendered is None:
+            rendered = _Rendered(image.shape, centres,
+                                 _render_radius(theta, radius, spacing_px, elliptical),
+                                 elliptical)
         theta, state, tilted = _tilted_refit(fit, theta, state, sublattice, elliptical,
-                                             spacing_px, window_sigmas,
-                                             joint_neighbours and n > 1, gain, min_significance)
+                                             spacing_px, window_sigmas, rendered, gain,
+                                             min_significance)
+    rendered = total = None  # the frame-sized sum is not needed any more
     columns = _to_columns(theta, state, pos0, sublattice, ij, elliptical, weighting, radius,
                           min_significance, min_noise_scale)
     extra = dict(columns.extra)
@@ -400,6 +411,50 @@ class _Fitter:
         return out, state
 
 
+class _Rendered:
+    """Every shown column's Gaussian ``A G`` summed over the frame (`show`
+    returns the sum), kept current by rendering only the columns whose
+    parameters changed since the last call: the old Gaussian out, the new one
+    in.  A neighbour pass refits a seventh of a physics-like frame's columns,
+    so bringing the sum up to date costs about a quarter of rendering it
+    again.  One footprint (`radius_px`) and one integer centre per column for
+    the life of the sum, so what was added is exactly what is taken out."""
+
+    def __init__(self, shape, centres, radius_px, elliptical):
+        self.total = np.zeros(shape)
+        self.centres = centres
+        self.off_r, self.off_c = _disk(radius_px)
+        self.elliptical = elliptical
+        self.at = None  # (N, P) parameters each column is rendered at; NaN: not rendered
+
+    def show(self, theta, which=None) -> np.ndarray:
+        """The sum with the columns `which` (default all; non-finite rows
+        never) at `theta`."""
+        want = np.array(theta, dtype=np.float64)
+        keep = np.isfinite(want).all(axis=1)
+        if which is not None:
+            keep &= which
+        want[~keep] = np.nan
+        if self.at is None:
+            self.at = np.full_like(want, np.nan)
+        was = np.isfinite(self.at).all(axis=1)
+        changed = np.nonzero((keep != was) | (keep & (want != self.at).any(axis=1)))[0]
+        out_ = changed[was[changed]]
+        in_ = changed[keep[changed]]
+        if len(out_):
+            gone = self.at[out_].copy()
+            gone[:, 2] = -gone[:, 2]
+            self._render(gone, out_)
+        if len(in_):
+            self._render(want[in_], in_)
+        self.at[changed] = want[changed]
+        return self.total
+
+    def _render(self, theta, idx):
+        _kernels.render_gaussians(np.ascontiguousarray(theta), self.centres[idx], self.off_r,
+                                  self.off_c, self.elliptical, self.total)
+
+
 def _predicted_sites(pos, labels, ij, good):
     """Where the lattice puts every column: the mean of the A corners around its
     site (the perovskite site convention of :mod:`livequant.analysis.types`) plus
@@ -519,7 +574,7 @@ def _fixed_shape_refit(fit, theta, theta_init, state, sublattice, ij, elliptical
 
 
 def _tilted_refit(fit, theta, state, sublattice, elliptical, spacing_px, window_sigmas,
-                  neighbours, gain, min_significance):
+                  rendered, gain, min_significance):
     """The tilted-background stage of `refine_columns`: per sublattice (a
     handful) but the brightest, refit its freely fitted columns over a window of `window_sigmas`
     times the sublattice's median width, with the two background slopes free
@@ -527,19 +582,14 @@ def _tilted_refit(fit, theta, state, sublattice, elliptical, spacing_px, window_
     whose refit fails keeps its earlier fit.  Returns theta, state and, per
     sublattice refitted, the window radius, the slope statistic
     (`_mean_slope_chi2`: about 2 where the slopes are noise) and how many
-    columns took the refit."""
+    columns took the refit.  `rendered` (a `_Rendered`, or None for no
+    neighbour subtraction) is brought up to the freely fitted columns."""
     n, n_par = theta.shape
     labels = np.asarray(sublattice).astype(str)
     free = state["converged"] & np.isfinite(theta).all(axis=1) & (state["n_par"] == n_par)
     sigma = _geometric_sigma(theta, elliptical)
     wide = np.concatenate([theta, np.zeros((n, 2))], axis=1)
-    total = None
-    if neighbours:
-        render_off = _disk(_render_radius(theta[free], fit.radius, spacing_px, elliptical))
-        total = np.zeros(fit.image.shape)
-        shown = np.nonzero(free)[0]
-        _kernels.render_gaussians(np.ascontiguousarray(theta[shown]), fit.centres[shown],
-                                  render_off[0], render_off[1], elliptical, total)
+    total = None if rendered is None else rendered.show(theta, free)
     theta, report = theta.copy(), {}
     names, inv = np.unique(labels, return_inverse=True)
     brightness = np.array([np.median(np.abs(theta[free & (inv == k), 2]))

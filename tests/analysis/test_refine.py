@@ -301,6 +301,45 @@ def test_rendered_neighbours_match_numpy_on_any_thread_count():
     assert np.array_equal(one, many)
 
 
+
+def test_the_kept_sum_of_neighbours_equals_a_fresh_render():
+    """The neighbours' sum kept up to date by rendering only the columns that
+    changed (their old Gaussian out, their new one in) against a fresh render
+    of the columns shown, after refits of a few columns, columns hidden and
+    shown again, and a row gone non-finite (never rendered)."""
+    from livequant.analysis._kernels import render_gaussians
+    from livequant.analysis.refine import _disk, _Rendered
+
+    rng = np.random.default_rng(8)
+    shape, n = (120, 150), 300
+    pos = np.column_stack([rng.uniform(0, shape[0], n), rng.uniform(0, shape[1], n)])
+    theta = np.column_stack([pos, rng.uniform(5, 80, n), rng.uniform(0, 5, n),
+                             rng.uniform(0.05, 0.3, n), rng.uniform(-0.03, 0.03, n),
+                             rng.uniform(0.05, 0.3, n)])
+    centres = np.rint(pos).astype(np.int64)
+    kept = _Rendered(shape, centres, 8.0, True)
+
+    def fresh(th, which):
+        out = np.zeros(shape)
+        idx = np.nonzero(which & np.isfinite(th).all(axis=1))[0]
+        off_r, off_c = _disk(8.0)
+        render_gaussians(np.ascontiguousarray(th[idx]), centres[idx], off_r, off_c, True, out)
+        return out
+
+    everyone = np.ones(n, bool)
+    assert np.array_equal(kept.show(theta), fresh(theta, everyone))
+    for step in range(4):
+        moved = rng.choice(n, 30, replace=False)   # a neighbour pass refits a few columns
+        theta[moved, :2] += rng.normal(0, 0.3, (30, 2))
+        theta[moved, 2] *= rng.uniform(0.8, 1.2, 30)
+        which = rng.uniform(size=n) > 0.1 * step   # and shows a subset
+        if step == 2:
+            theta[7] = np.nan
+        got = kept.show(theta, which).copy()
+        ref = fresh(theta, which)
+        assert np.allclose(got, ref, rtol=0, atol=1e-9 * np.abs(ref).max()), step
+    assert np.isfinite(got).all()
+
 def test_small_solvers_match_numpy():
     """The compiled 7 x 7 solve and inverse of the fit (Cholesky, with pivoted
     elimination when the matrix is not positive definite) against numpy.linalg."""
