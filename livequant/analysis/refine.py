@@ -208,17 +208,17 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
     everyone = np.arange(n)
     theta, state = fit(theta, everyone, None)
 
-    passes = 1 + (neighbour_passes if joint_neighbours and n > 1 else 0)
+    neighbours = joint_neighbours and n > 1
+    passes = 1 + (neighbour_passes if neighbours else 0)
     rendered = None
     candidates = everyone
     for _ in range(passes - 1):
-        # the cheap bound first; a later pass has the exact test of its candidates
-        if rendered is None and not _neighbours_reach(theta, radius, gain, elliptical).any():
-            break
         if rendered is None:
-            rendered = _Rendered(image.shape, centres,
-                                 _render_radius(theta, radius, spacing_px, elliptical),
-                                 elliptical)
+            # the cheap bound first; a later pass has the exact test of its candidates
+            if not _neighbours_reach(theta, radius, gain, elliptical).any():
+                break
+            rendered = _Rendered.for_columns(image.shape, centres, theta, radius, spacing_px,
+                                             elliptical)
         total = rendered.show(theta)
         # Refit only the columns whose neighbours reach into their window by more
         # than a tenth of the local noise somewhere: for well-separated columns
@@ -246,10 +246,9 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
                                                       ij, elliptical, min_significance)
     tilted = {}
     if background == "tilted":
-        if joint_neighbours and n > 1 and rendered is None:
-            rendered = _Rendered(image.shape, centres,
-                                 _render_radius(theta, radius, spacing_px, elliptical),
-                                 elliptical)
+        if neighbours and rendered is None:
+            rendered = _Rendered.for_columns(image.shape, centres, theta, radius, spacing_px,
+                                             elliptical)
         theta, state, tilted = _tilted_refit(fit, theta, state, sublattice, elliptical,
                                              spacing_px, window_sigmas, rendered, gain,
                                              min_significance)
@@ -259,7 +258,6 @@ def refine_columns(image, positions_px, *, sublattice=None, ij=None, spacing_px,
     extra = dict(columns.extra)
     if tilted:
         extra["tilted_background"] = tilted
-        extra["tilted_window_radius_px"] = {k: v["window_radius_px"] for k, v in tilted.items()}
     if n_fallback:
         extra["fixed_shape_refits"] = n_fallback
     msg = columns.message
@@ -426,6 +424,13 @@ class _Rendered:
         self.off_r, self.off_c = _disk(radius_px)
         self.elliptical = elliptical
         self.at = None  # (N, P) parameters each column is rendered at; NaN: not rendered
+
+    @classmethod
+    def for_columns(cls, shape, centres, theta, fit_radius, spacing_px, elliptical):
+        """An empty sum whose footprint reaches as far as these columns' tails
+        (`_render_radius`)."""
+        return cls(shape, centres, _render_radius(theta, fit_radius, spacing_px, elliptical),
+                   elliptical)
 
     def show(self, theta, which=None) -> np.ndarray:
         """The sum with the columns `which` (default all; non-finite rows

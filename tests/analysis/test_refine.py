@@ -301,7 +301,6 @@ def test_rendered_neighbours_match_numpy_on_any_thread_count():
     assert np.array_equal(one, many)
 
 
-
 def test_the_kept_sum_of_neighbours_equals_a_fresh_render():
     """The neighbours' sum kept up to date by rendering only the columns that
     changed (their old Gaussian out, their new one in) against a fresh render
@@ -339,6 +338,7 @@ def test_the_kept_sum_of_neighbours_equals_a_fresh_render():
         ref = fresh(theta, which)
         assert np.allclose(got, ref, rtol=0, atol=1e-9 * np.abs(ref).max()), step
     assert np.isfinite(got).all()
+
 
 def test_small_solvers_match_numpy():
     """The compiled 7 x 7 solve and inverse of the fit (Cholesky, with pivoted
@@ -424,7 +424,7 @@ def test_tilted_background_agrees_with_scipy(elliptical, weighting):
     flat = refine_columns(img, truth, **kw)
     cols = refine_columns(img, truth, background="tilted", window_sigmas=3.0, **kw)
     assert cols.converged.all(), cols.message
-    radius = cols.extra["tilted_window_radius_px"]
+    radius = {k: v["window_radius_px"] for k, v in cols.extra["tilted_background"].items()}
     assert set(radius) == {"B"}                 # the brightest sublattice keeps its fit
     np.testing.assert_array_equal(cols.positions_px[labels == "A"],
                                   flat.positions_px[labels == "A"])
@@ -505,7 +505,7 @@ def test_tilted_background_removes_the_pull_of_heavy_neighbours_tails():
     bias = {}
     for tilted in (False, True):
         c = refine_columns(img, truth, background="tilted" if tilted else "flat", **kw)
-        assert set(c.extra.get("tilted_window_radius_px", {})) == ({"B"} if tilted else set())
+        assert set(c.extra.get("tilted_background", {})) == ({"B"} if tilted else set())
         assert c.converged[inner].all()
         bias[tilted] = (c.positions_px - truth)[inner].mean(axis=0)
     # the slopes are real: their mean chi-square is far above the 2 of noise
@@ -535,7 +535,7 @@ def test_tilted_background_reaches_the_cramer_rao_bound():
         sigmas.append(cols.sigma_positions_px[b])
         # the scene's background under each B column (100 plus the slopes')
         backgrounds.append(100.0 + truth[b] @ np.array([0.3, -0.2]))
-    radius = cols.extra["tilted_window_radius_px"]["B"]
+    radius = cols.extra["tilted_background"]["B"]["window_radius_px"]
     # the bound at each column's own background, as a mean variance
     known, free = (np.sqrt(np.mean([fisher_crlb_position(
         sigma_px=SIGMA_PX, amplitude=PEAK / 4, background=float(bg), radius_px=radius,

@@ -88,7 +88,7 @@ def test_precision_improves_as_one_over_root_n_and_reaches_the_bound():
     # slope over its own window (analysis.refine.background = "tilted"); the
     # slopes, a median over 9 columns shrunk toward zero by their noise (here
     # they are noise), are held: its bound is the flat model's on that window
-    tilted_radius = c.extra["tilted_window_radius_px"]
+    tilted_radius = {k: v["window_radius_px"] for k, v in c.extra["tilted_background"].items()}
     assert set(tilted_radius) == {"B"}, tilted_radius
     crlb16 = {}
     for lab in ("A", "B"):
