@@ -113,7 +113,11 @@ def test_a_sidecar_written_in_place_hands_the_frame_out_once_more_not_twice(tmp_
     frame, already handed out without one, is handed out once more when the
     sidecar has content, never with it empty (that took two hand-outs, the first
     of which would have been read with an empty sidecar)."""
-    src, q = folder_source(settle_time_s=0.5)
+    # the settle time is far above the 0.3 s the sidecar stays empty, so a stalled
+    # machine cannot stretch that gap past it (the frame would then be handed out
+    # once more, with the empty sidecar, by the settle rule: a race of the test)
+    settle_s = 2.0
+    src, q = folder_source(settle_time_s=settle_s)
     src.start()
     write_frame(tmp_path, "w", lattice_image())  # no sidecar
     wait_for(lambda: q.qsize() == 1, what="settled frame")
@@ -123,7 +127,7 @@ def test_a_sidecar_written_in_place_hands_the_frame_out_once_more_not_twice(tmp_
         time.sleep(0.3)
         fh.write(json.dumps(sidecar("w")))
     wait_for(lambda: q.qsize() >= 2, what="frame again with its sidecar")
-    time.sleep(1.0)  # past the settle time and many re-listings: nothing more
+    time.sleep(settle_s + 0.5)  # past the settle time and many re-listings: nothing more
     assert q.qsize() == 2
 
 
