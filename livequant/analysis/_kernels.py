@@ -44,37 +44,53 @@ def _unpack(t, centre_r, centre_c, elliptical):
     return t[2], t[4], q, s, t[0] - centre_r, t[1] - centre_c
 
 
-@njit(cache=True, inline="always")
-def _next_gaussian(row, prev_row, dr, dc, p, q, s, decay, G, step):
-    """exp(-(p dr^2 + 2 q dr dc + s dc^2) / 2) along a row of the window.
+@njit(cache=True)
+def _row_runs(off_r):
+    """Where each row of a footprint starts in its pixel list (pixels come row
+    by row, columns rising): ``first[a]:first[a + 1]`` are row ``a``'s."""
+    n = off_r.shape[0]
+    n_rows = 0
+    for i in range(n):
+        if i == 0 or off_r[i] != off_r[i - 1]:
+            n_rows += 1
+    first = np.empty(n_rows + 1, np.int64)
+    a = 0
+    for i in range(n):
+        if i == 0 or off_r[i] != off_r[i - 1]:
+            first[a] = i
+            a += 1
+    first[n_rows] = n
+    return first
 
-    Window pixels come row by row with the column offset rising by one, so
+
+@njit(cache=True, inline="always")
+def _row_start(dr, dc, p, q, s):
+    """``exp(-(p dr^2 + 2 q dr dc + s dc^2) / 2)`` at a row's first pixel
+    ``(dr, dc)``, and the ratio to its right-hand neighbour.
+
+    Footprint pixels come row by row with the column offset rising by one, so
     along a row the exponent is a quadratic in ``dc`` with a constant second
-    difference: each next value is the last times a ratio that itself shrinks
-    by ``exp(-s)``.  Two exponentials per row instead of one per pixel; the
-    exponential dominated the cost of the fit.
+    difference: each next value is the last times the ratio, and the ratio
+    itself shrinks by ``exp(-s)`` each pixel.  Two exponentials per row
+    instead of one per pixel; the exponential dominated the cost of the fit.
     """
-    if row != prev_row:
-        G = math.exp(-0.5 * (p * dr * dr + 2.0 * q * dr * dc + s * dc * dc))
-        step = math.exp(-s * dc - 0.5 * s - q * dr)
-        return G, step, row
-    G = G * step
-    step = step * decay
-    return G, step, prev_row
+    return (math.exp(-0.5 * (p * dr * dr + 2.0 * q * dr * dc + s * dc * dc)),
+            math.exp(-s * dc - 0.5 * s - q * dr))
 
 
 @njit(cache=True, inline="always")
-def _window_gaussian(off_r, off_c, p, q, s, d_r, d_c, Gs):
-    """The unit Gaussian at every window pixel into `Gs`, by the row recurrence
-    of `_next_gaussian` (serial: each value follows from the last)."""
+def _window_gaussian(off_r, off_c, first, p, q, s, d_r, d_c, Gs):
+    """The unit Gaussian at every window pixel into `Gs`, row by row (`first`
+    from `_row_runs`) by the recurrence of `_row_start` (serial: each
+    value follows from the last)."""
     decay = math.exp(-s)
-    prev_row = 1e300
-    G = 0.0
-    step = 0.0
-    for i in range(off_r.shape[0]):
-        G, step, prev_row = _next_gaussian(off_r[i], prev_row, off_r[i] - d_r, off_c[i] - d_c,
-                                           p, q, s, decay, G, step)
-        Gs[i] = G
+    for a in range(first.shape[0] - 1):
+        i0 = first[a]
+        G, step = _row_start(off_r[i0] - d_r, off_c[i0] - d_c, p, q, s)
+        for i in range(i0, first[a + 1]):
+            Gs[i] = G
+            G = G * step
+            step = step * decay
 
 
 #: Columns per scratch allocation in `fit_columns` (and per task of its loop).
@@ -92,7 +108,7 @@ _FASTMATH = {"reassoc", "contract"}
 
 
 @njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
-def _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, floor, w_old,
+def _window_pass(d, o, vm, off_r, off_c, first, t, cr, cc, elliptical, uniform, gain, floor, w_old,
                  w_new, Gs, H, g):
     """One pass over a window at parameters `t`.
 
@@ -120,7 +136,7 @@ def _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, f
     n_pix = off_r.shape[0]
     B = t[3]
     A, p, q, s, d_r, d_c = _unpack(t, cr, cc, elliptical)
-    _window_gaussian(off_r, off_c, p, q, s, d_r, d_c, Gs)
+    _window_gaussian(off_r, off_c, first, p, q, s, d_r, d_c, Gs)
     h00 = 0.0
     h01 = 0.0
     h02 = 0.0
@@ -268,7 +284,7 @@ def _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, f
 
 
 @njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
-def _window_pass_plane(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain, floor,
+def _window_pass_plane(d, o, vm, off_r, off_c, first, t, cr, cc, elliptical, uniform, gain, floor,
                        w_old, w_new, Gs, H, g):
     """`_window_pass` for the model with a tilted background,
     ``m = B + b_r dr0 + b_c dc0 + A exp(-(p dr^2 + 2 q dr dc + s dc^2) / 2)``,
@@ -287,7 +303,7 @@ def _window_pass_plane(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, g
     b_r = t[n_par - 2]
     b_c = t[n_par - 1]
     A, p, q, s, d_r, d_c = _unpack(t, cr, cc, elliptical)
-    _window_gaussian(off_r, off_c, p, q, s, d_r, d_c, Gs)
+    _window_gaussian(off_r, off_c, first, p, q, s, d_r, d_c, Gs)
     h00 = 0.0
     h01 = 0.0
     h02 = 0.0
@@ -536,20 +552,23 @@ def _window_pass_plane(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, g
 @njit(cache=True)
 def _cholesky(M, n):
     """In place: the lower Cholesky factor of symmetric `M` (``M = L L^T``) in its
-    lower triangle.  False when `M` is not numerically positive definite."""
+    lower triangle, except that the diagonal holds the reciprocals ``1 / L[c, c]``
+    (what the solves need: a division costs several multiplications, and they
+    come in a dependent chain).  False when `M` is not numerically positive
+    definite."""
     for c in range(n):
         acc = M[c, c]
         for k in range(c):
             acc -= M[c, k] * M[c, k]
         if not acc > 0.0 or not math.isfinite(acc):
             return False
-        d = math.sqrt(acc)
-        M[c, c] = d
+        inv = 1.0 / math.sqrt(acc)
+        M[c, c] = inv
         for a in range(c + 1, n):
             acc = M[a, c]
             for k in range(c):
                 acc -= M[a, k] * M[c, k]
-            M[a, c] = acc / d
+            M[a, c] = acc * inv
     return True
 
 
@@ -569,12 +588,12 @@ def _damped_step(H, g, lam, M, step):
         acc = g[a]
         for b in range(a):
             acc -= M[a, b] * step[b]
-        step[a] = acc / M[a, a]
+        step[a] = acc * M[a, a]
     for a in range(n - 1, -1, -1):  # L^T x = y
         acc = step[a]
         for b in range(a + 1, n):
             acc -= M[b, a] * step[b]
-        step[a] = acc / M[a, a]
+        step[a] = acc * M[a, a]
     return True
 
 
@@ -682,12 +701,12 @@ def _invert(H, out):
     # L^-1, lower triangular, into the upper triangle's mirror: Li[a, b] for b <= a
     Li = np.zeros((n, n))
     for b in range(n):
-        Li[b, b] = 1.0 / L[b, b]
+        Li[b, b] = L[b, b]  # (`_cholesky` leaves the reciprocal there)
         for a in range(b + 1, n):
             acc = 0.0
             for k in range(b, a):
                 acc -= L[a, k] * Li[k, b]
-            Li[a, b] = acc / L[a, a]
+            Li[a, b] = acc * L[a, a]
     for a in range(n):
         for b in range(a + 1):
             acc = 0.0
@@ -788,6 +807,7 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
     n_pix = off_r.shape[0]
     n = idx.shape[0]
     n_chunks = (n + _COLUMNS_PER_CHUNK - 1) // _COLUMNS_PER_CHUNK
+    first = _row_runs(off_r)
     for c in prange(n_chunks):
         # scratch for a run of columns: allocating it per column cost as much
         # as a pixel pass
@@ -795,14 +815,14 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
         mats = np.empty((3, n_par, n_par))
         vecs = np.empty((5, n_par))
         for j in range(c * _COLUMNS_PER_CHUNK, min((c + 1) * _COLUMNS_PER_CHUNK, n)):
-            _fit_one(image, centres, off_r, off_c, idx[j], j, theta, start, others, has_others,
+            _fit_one(image, centres, off_r, off_c, first, idx[j], j, theta, start, others, has_others,
                      radius, gain, floor, uniform, elliptical, max_iterations, tolerance_px,
                      pix, mats, vecs, theta_out, cov_out, converged, iterations, cost_out,
                      n_valid, n_free, plane)
 
 
 @njit(cache=True, error_model="numpy")
-def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_others, radius,
+def _fit_one(image, centres, off_r, off_c, first, k, j, theta, start, others, has_others, radius,
              gain, floor, uniform, elliptical, max_iterations, tolerance_px, pix, mats, vecs,
              theta_out, cov_out, converged, iterations, cost_out, n_valid, n_free, plane):
     """`fit_columns` for column ``k = idx[j]``, with scratch arrays `pix`, `mats`, `vecs`."""
@@ -823,20 +843,24 @@ def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_other
     w_try = pix[4]
     Gs = pix[5]
     nv = 0
-    for i in range(n_pix):
-        row = cr + int(off_r[i])
-        col = cc + int(off_c[i])
-        d[i] = 0.0
-        o[i] = 0.0
-        vm[i] = 0.0
-        w_try[i] = 0.0
-        if row < 0 or row >= h_img or col < 0 or col >= w_img:
-            continue
-        nv += 1
-        vm[i] = 1.0
-        if has_others:
-            o[i] = others[j, i]
-        d[i] = image[row, col] - o[i]
+    for a in range(first.shape[0] - 1):
+        i0 = first[a]
+        row = cr + int(off_r[i0])
+        col0 = cc + int(off_c[i0])
+        inside_row = row >= 0 and row < h_img
+        for i in range(i0, first[a + 1]):
+            col = col0 + (i - i0)
+            d[i] = 0.0
+            o[i] = 0.0
+            vm[i] = 0.0
+            w_try[i] = 0.0
+            if not inside_row or col < 0 or col >= w_img:
+                continue
+            nv += 1
+            vm[i] = 1.0
+            if has_others:
+                o[i] = others[j, i]
+            d[i] = image[row, col] - o[i]
     H = mats[0]
     H_try = mats[1]
     M = mats[2]
@@ -847,10 +871,10 @@ def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_other
     last = vecs[4]
     last[:] = 0.0
     if plane:
-        _, cost = _window_pass_plane(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform,
+        _, cost = _window_pass_plane(d, o, vm, off_r, off_c, first, t, cr, cc, elliptical, uniform,
                                      gain, floor, w_try, w_cur, Gs, H, g)
     else:
-        _, cost = _window_pass(d, o, vm, off_r, off_c, t, cr, cc, elliptical, uniform, gain,
+        _, cost = _window_pass(d, o, vm, off_r, off_c, first, t, cr, cc, elliptical, uniform, gain,
                                floor, w_try, w_cur, Gs, H, g)
     _hold(H, g, n_free)
     lam = 1e-3
@@ -893,11 +917,11 @@ def _fit_one(image, centres, off_r, off_c, k, j, theta, start, others, has_other
         better = False
         if ok:
             if plane:
-                c_trial, c_next = _window_pass_plane(d, o, vm, off_r, off_c, trial, cr, cc,
+                c_trial, c_next = _window_pass_plane(d, o, vm, off_r, off_c, first, trial, cr, cc,
                                                      elliptical, uniform, gain, floor, w_cur,
                                                      w_try, Gs, H_try, g_try)
             else:
-                c_trial, c_next = _window_pass(d, o, vm, off_r, off_c, trial, cr, cc,
+                c_trial, c_next = _window_pass(d, o, vm, off_r, off_c, first, trial, cr, cc,
                                                elliptical, uniform, gain, floor, w_cur, w_try,
                                                Gs, H_try, g_try)
             _hold(H_try, g_try, n_free)
@@ -1078,31 +1102,39 @@ def render_gaussians(theta, centres, off_r, off_c, elliptical, out):
     for k in range(n):
         order[fill[band[k]]] = k
         fill[band[k]] += 1
+    runs = _row_runs(off_r)
     for parity in range(2):
         for h in prange((n_bands - parity + 1) // 2):
             b = 2 * h + parity
             for m in range(first[b], first[b + 1]):
-                _render_one(theta, centres, off_r, off_c, elliptical, out, order[m])
+                _render_one(theta, centres, off_r, off_c, runs, elliptical, out, order[m])
 
 
 @njit(cache=True, inline="always")
-def _render_one(theta, centres, off_r, off_c, elliptical, out, k):
-    """`render_gaussians` for column `k`."""
+def _render_one(theta, centres, off_r, off_c, first, elliptical, out, k):
+    """`render_gaussians` for column `k`: row by row, each row's run of
+    pixels cut to the frame once and its Gaussian by the recurrence of
+    `_row_start` from the run's first pixel."""
     shape_r, shape_c = out.shape
-    A, p, q, s, d_r, d_c = _unpack(theta[k], centres[k, 0], centres[k, 1], elliptical)
+    cr = centres[k, 0]
+    cc = centres[k, 1]
+    A, p, q, s, d_r, d_c = _unpack(theta[k], cr, cc, elliptical)
     decay = math.exp(-s)
-    prev_row = 1e300
-    G = 0.0
-    step = 0.0
-    for i in range(off_r.shape[0]):
-        dr = off_r[i] - d_r
-        dc = off_c[i] - d_c
-        G, step, prev_row = _next_gaussian(off_r[i], prev_row, dr, dc, p, q, s, decay, G, step)
-        row = centres[k, 0] + int(off_r[i])
-        col = centres[k, 1] + int(off_c[i])
-        if row < 0 or row >= shape_r or col < 0 or col >= shape_c:
+    for a in range(first.shape[0] - 1):
+        i0 = first[a]
+        row = cr + int(off_r[i0])
+        if row < 0 or row >= shape_r:
             continue
-        out[row, col] += A * G
+        c0 = max(cc + int(off_c[i0]), 0)
+        c1 = min(cc + int(off_c[first[a + 1] - 1]), shape_c - 1)
+        if c0 > c1:
+            continue
+        G, step = _row_start(off_r[i0] - d_r, (c0 - cc) - d_c, p, q, s)
+        line = out[row]
+        for col in range(c0, c1 + 1):
+            line[col] += A * G
+            G = G * step
+            step = step * decay
 
 
 @njit(cache=True, parallel=True)
@@ -1114,27 +1146,31 @@ def window_others(total, image, theta, centres, off_r, off_c, idx, elliptical, g
     tenth of the local noise ``sqrt(gain max(|data|, 1))`` anywhere."""
     h_img, w_img = total.shape
     write = out.shape[0] == idx.shape[0]
+    first = _row_runs(off_r)
     for j in prange(idx.shape[0]):
         k = idx[j]
-        t = theta[k]
-        A, p, q, s, d_r, d_c = _unpack(t, centres[k, 0], centres[k, 1], elliptical)
+        cr = centres[k, 0]
+        cc = centres[k, 1]
+        A, p, q, s, d_r, d_c = _unpack(theta[k], cr, cc, elliptical)
         decay = math.exp(-s)
-        prev_row = 1e300
-        G = 0.0
-        step = 0.0
         hit = False
-        for i in range(off_r.shape[0]):
-            dr = off_r[i] - d_r
-            dc = off_c[i] - d_c
-            G, step, prev_row = _next_gaussian(off_r[i], prev_row, dr, dc, p, q, s, decay, G,
-                                               step)
-            row = centres[k, 0] + int(off_r[i])
-            col = centres[k, 1] + int(off_c[i])
-            o = 0.0
-            if row >= 0 and row < h_img and col >= 0 and col < w_img:
-                o = total[row, col] - A * G
-                if abs(o) > 0.1 * math.sqrt(max(abs(image[row, col]), 1.0) * gain):
-                    hit = True
-            if write:
-                out[j, i] = o
+        for a in range(first.shape[0] - 1):
+            i0 = first[a]
+            i1 = first[a + 1]
+            row = cr + int(off_r[i0])
+            col0 = cc + int(off_c[i0])
+            G, step = _row_start(off_r[i0] - d_r, off_c[i0] - d_c, p, q, s)
+            inside_row = row >= 0 and row < h_img
+            for i in range(i0, i1):
+                col = col0 + (i - i0)
+                o = 0.0
+                if inside_row and col >= 0 and col < w_img:
+                    o = total[row, col] - A * G
+                    # |o| > 0.1 sqrt(gain max(|data|, 1)), without the root
+                    if o * o > 0.01 * max(abs(image[row, col]), 1.0) * gain:
+                        hit = True
+                if write:
+                    out[j, i] = o
+                G = G * step
+                step = step * decay
         touched[j] = hit
