@@ -16,7 +16,7 @@ from numba import njit, prange
 from livequant.analysis._kernels import _select
 
 __all__ = ["compute_threads", "gaussian_nearest", "local_maxima", "block_minimum", "gaussian_weights",
-           "band_quantiles"]
+           "band_quantiles", "second_difference_mad", "nonzero_2d"]
 
 
 def compute_threads() -> int:
@@ -180,3 +180,92 @@ def band_quantiles(values, lo, hi, q, out):
                     v1 = a[m]
         d = v1 - v0
         out[k] = v1 - d * (1.0 - t) if t >= 0.5 else v0 + d * t
+
+
+def _median_inplace(a):
+    """``np.median(a)`` of a 1-D float array, reordering `a` in place (numpy's
+    median partitions a copy).  numpy's introselect, not `_select`: detector
+    counts are integers, and a quickselect's partition degrades to quadratic
+    time on that many ties."""
+    n = a.shape[0]
+    k = (n - 1) // 2
+    if n % 2 == 1:
+        a.partition(k)
+        return float(a[k])
+    a.partition((k, k + 1))
+    return float((a[k] + a[k + 1]) / 2.0)
+
+
+@njit(cache=True, parallel=True)
+def _second_differences(image, every, out):
+    """``out[i] = r[2:] - 2 r[1:-1] + r[:-2]`` of row ``r = image[i * every]``
+    (in numpy's order of operations, so the values are numpy's to the bit)."""
+    w = image.shape[1]
+    for i in prange(out.shape[0]):
+        r = image[i * every]
+        o = out[i]
+        for j in range(w - 2):
+            o[j] = (r[j + 2] - 2.0 * r[j + 1]) + r[j]
+
+
+@njit(cache=True, parallel=True)
+def _abs_deviation(a, centre):
+    for i in prange(a.shape[0]):
+        a[i] = abs(a[i] - centre)
+
+
+def second_difference_mad(image, every) -> float:
+    """The median absolute deviation of the second differences along every
+    `every`-th row: ``np.median(np.abs(d2 - np.median(d2)))`` with ``d2 =
+    rows[:, 2:] - 2 rows[:, 1:-1] + rows[:, :-2]``, to the bit.  numpy's two
+    medians of a million values (it partitions copies) took a quarter of the
+    detection time on a 2048 frame."""
+    a = np.ascontiguousarray(image, dtype=np.float64)
+    n_rows = -(-a.shape[0] // every)
+    if a.shape[1] < 3 or n_rows == 0:
+        raise ValueError(f"need at least one row of 3 pixels, got shape {a.shape}")
+    d2 = np.empty((n_rows, a.shape[1] - 2))
+    _second_differences(a, int(every), d2)
+    flat = d2.reshape(-1)
+    centre = _median_inplace(flat)
+    _abs_deviation(flat, centre)
+    return float(_median_inplace(flat))
+
+
+@njit(cache=True, parallel=True)
+def _row_counts(mask, counts):
+    for i in prange(mask.shape[0]):
+        c = 0
+        row = mask[i]
+        for j in range(mask.shape[1]):
+            c += row[j]
+        counts[i] = c
+
+
+@njit(cache=True, parallel=True)
+def _row_positions(mask, first, rr, cc):
+    for i in prange(mask.shape[0]):
+        at = first[i]
+        row = mask[i]
+        for j in range(mask.shape[1]):
+            if row[j]:
+                rr[at] = i
+                cc[at] = j
+                at += 1
+
+
+def nonzero_2d(mask):
+    """``np.nonzero(mask)`` of a 2-D boolean array (the same order, row by
+    row), parallel over rows: for a sparse 2048 x 2048 mask numpy's took 15 ms,
+    more than finding the maxima in it."""
+    m = np.ascontiguousarray(mask, dtype=np.bool_)
+    if m.ndim != 2:
+        raise ValueError(f"`mask` must be 2-D, got shape {m.shape}")
+    counts = np.empty(m.shape[0], np.int64)
+    _row_counts(m, counts)
+    first = np.zeros(m.shape[0] + 1, np.int64)
+    np.cumsum(counts, out=first[1:])
+    rr = np.empty(first[-1], np.int64)
+    cc = np.empty(first[-1], np.int64)
+    _row_positions(m, first, rr, cc)
+    return rr, cc

@@ -48,9 +48,7 @@ def noise_sigma(image) -> float:
     """
     image = np.asarray(image, dtype=np.float64)
     # every 4th row is plenty for a median and a quarter of the cost
-    rows = image[:: 4 if image.shape[0] >= 64 else 1]
-    d2 = rows[:, 2:] - 2 * rows[:, 1:-1] + rows[:, :-2]
-    mad = np.median(np.abs(d2 - np.median(d2)))
+    mad = _filters.second_difference_mad(image, 4 if image.shape[0] >= 64 else 1)
     return float(1.4826 * mad / np.sqrt(6.0))
 
 
@@ -95,7 +93,7 @@ def detect_columns(image, lattice: Lattice, *, min_distance_fraction=0.3,
     # coarsened by a quarter spacing and interpolated back (a full-resolution
     # filter of that size cost most of the detection time on a 2048 frame).
     sigma_s = noise_sigma(work) / (2.0 * np.sqrt(np.pi) * smoothing)
-    rr, cc = np.nonzero(is_max)
+    rr, cc = _filters.nonzero_2d(is_max)
     border = border_fraction * spacing
     h, w = image.shape
     keep = (rr >= border) & (rr <= h - 1 - border) & (cc >= border) & (cc <= w - 1 - border)

@@ -62,3 +62,32 @@ def test_select_is_the_kth_order_statistic():
         k = int(rng.integers(0, n))
         a = rng.integers(0, 4, n).astype(float) if trial % 2 else rng.normal(size=n)
         assert _select(a.copy(), n, k) == np.partition(a, k)[k]
+
+
+@pytest.mark.parametrize("shape, every", [((2048, 96), 4), ((64, 33), 4), ((7, 5), 1), ((9, 3), 1)])
+@pytest.mark.parametrize("kind", ["counts", "floats"])
+def test_second_difference_mad_is_numpys_to_the_bit(shape, every, kind):
+    """Reference: numpy's median of the absolute deviation of the row-wise
+    second differences, the expression it replaces.  Integer counts bring
+    many ties (a quickselect's worst case)."""
+    rng = np.random.default_rng(4)
+    img = (rng.poisson(20.0, shape).astype(float) if kind == "counts"
+           else rng.normal(5.0, 2.0, shape))
+    rows = img[::every]
+    d2 = rows[:, 2:] - 2 * rows[:, 1:-1] + rows[:, :-2]
+    ref = np.median(np.abs(d2 - np.median(d2)))
+    assert _filters.second_difference_mad(img, every) == ref
+    with pytest.raises(ValueError, match="3 pixels"):
+        _filters.second_difference_mad(img[:, :2], every)
+
+
+@pytest.mark.parametrize("shape, fraction", [((300, 257), 0.01), ((5, 7), 0.5), ((0, 4), 0.5),
+                                             ((4, 0), 0.5), ((6, 6), 0.0), ((6, 6), 1.0)])
+def test_nonzero_2d_matches_numpy(shape, fraction):
+    """Reference: ``np.nonzero``, same positions in the same order."""
+    mask = np.random.default_rng(5).random(shape) < fraction
+    rr, cc = _filters.nonzero_2d(mask)
+    ref_r, ref_c = np.nonzero(mask)
+    assert np.array_equal(rr, ref_r) and np.array_equal(cc, ref_c)
+    with pytest.raises(ValueError, match="2-D"):
+        _filters.nonzero_2d(mask.reshape(-1))
