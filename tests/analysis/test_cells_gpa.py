@@ -128,3 +128,14 @@ def test_gpa_follows_the_cell_axes_not_the_reported_basis():
     assert ok.sum() > 30
     np.testing.assert_allclose(c2.gpa_exx, c1.gpa_exx, atol=1e-9, equal_nan=True)
     assert abs(np.median(c1.gpa_exx[ok] - c1.exx[ok])) < 5e-4
+
+
+def test_the_stacked_2x2_inverse_matches_numpy():
+    """Reference: ``np.linalg.inv`` on the same stack (LU with pivoting)."""
+    from livequant.analysis.gpa import _inverse_2x2
+
+    rng = np.random.default_rng(6)
+    m = rng.normal(size=(40, 30, 2, 2)) + 3.0 * np.eye(2)  # conditioned like local g's
+    assert np.allclose(_inverse_2x2(m), np.linalg.inv(m), rtol=1e-12, atol=1e-14)
+    singular = np.ones((1, 2, 2))
+    assert not np.isfinite(_inverse_2x2(singular)).any()
