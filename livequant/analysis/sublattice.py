@@ -56,6 +56,23 @@ class Sites:
         return int(self.positions_px.shape[0])
 
 
+def _unique_rows(rows):
+    """``np.unique(rows, axis=0, return_counts=True)`` for a small-valued
+    ``(N, 3)`` int array, through one int64 key per row (numpy's row-wise
+    unique sorts a structured view, ten times slower)."""
+    lo = rows.min(axis=0)
+    span = rows.max(axis=0) - lo + 1
+    shifted = (rows - lo).astype(np.int64)
+    key = (shifted[:, 0] * span[1] + shifted[:, 1]) * span[2] + shifted[:, 2]
+    uniq_key, counts = np.unique(key, return_counts=True)
+    out = np.empty((len(uniq_key), 3), dtype=rows.dtype)
+    out[:, 2] = uniq_key % span[2]
+    rest = uniq_key // span[2]
+    out[:, 1] = rest % span[1]
+    out[:, 0] = rest // span[1]
+    return out + lo, counts
+
+
 def assign_sites(candidates: Candidates, lattice: Lattice, *, projection="perovskite_001",
                  keep_oxygen=False, a_is_brighter=True, link_tolerance=0.2,
                  min_group_fraction=0.05) -> Sites:
@@ -150,8 +167,7 @@ def assign_sites(candidates: Candidates, lattice: Lattice, *, projection="perovs
         # group takes the most common vote.  A single nearest pair (a noise peak, a
         # strongly displaced column) must not shift a whole sublattice onto O sites.
         vote = half[q] + np.rint(2 * frac).astype(int) - 2 * idx[others]
-        key = np.column_stack([group[others], vote])
-        uniq, counts = np.unique(key, axis=0, return_counts=True)
+        uniq, counts = _unique_rows(np.column_stack([group[others], vote]))
         order = np.lexsort((-counts, uniq[:, 0]))          # per group, most votes first
         uniq = uniq[order]
         first = np.ones(len(uniq), bool)

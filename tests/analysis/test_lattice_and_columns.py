@@ -204,3 +204,17 @@ def test_smooth_sample_no_columns():
     rng = np.random.default_rng(4)
     img = gaussian_filter(rng.normal(100, 30, (256, 256)), 20) + 500
     assert _analyze(rng.poisson(img).astype(float), 10.0).status == "no-lattice"
+
+
+def test_unique_rows_match_numpys_row_wise_unique():
+    """Reference: ``np.unique(axis=0, return_counts=True)``, the call it replaces
+    (same rows, same lexicographic order, same counts), negative values included."""
+    from livequant.analysis.sublattice import _unique_rows
+
+    rng = np.random.default_rng(7)
+    for n in (1, 5, 4000):
+        rows = np.column_stack([rng.integers(0, 4, n), rng.integers(-3, 4, n),
+                                rng.integers(-60, 3, n)])
+        got, counts = _unique_rows(rows)
+        ref, ref_counts = np.unique(rows, axis=0, return_counts=True)
+        assert np.array_equal(got, ref) and np.array_equal(counts, ref_counts)
