@@ -236,7 +236,11 @@ def gpa_strain(image, basis_px, *, reference_xy_px=None, reflections=((1, 0), (0
                          "is under 2 pixels; use lower-order `reflections`")
     sigma_k = mask_sigma_fraction * float(np.min(np.hypot(*g.T)))
     h, w = img.shape
-    half = sp_fft.rfft2(img - img.mean(), workers=_filters.compute_threads())
+    # single precision: half the time of the largest step of GPA, and its
+    # rounding (1e-7 of the frame's norm per bin) is far below the shot noise
+    # of any bin the masks keep; everything after it runs in double precision
+    half = sp_fft.rfft2((img - img.mean()).astype(np.float32),
+                        workers=_filters.compute_threads())
     ny = _window_size(h, _WINDOW_SIGMAS * sigma_k * h)
     nx = _window_size(w, _WINDOW_SIGMAS * sigma_k * w)
     step = (h / ny, w / nx)
