@@ -977,8 +977,9 @@ def _select(a, n, kth):
     """The `kth` smallest of ``a[:n]`` (reorders them): quickselect with a
     median-of-three pivot and a branch-free partition (whether an element goes
     left is added to an index, not branched on: on noisy data a branch is
-    mispredicted half the time).  numba's ``np.partition`` copies and cost more
-    than the rest of `window_starts` together."""
+    mispredicted half the time); values equal to the pivot are stepped over
+    together.  numba's ``np.partition`` copies and cost more than the rest of
+    `window_starts` together."""
     lo = 0
     hi = n - 1
     while lo < hi:
@@ -1004,7 +1005,19 @@ def _select(a, n, kth):
         if kth < store:
             hi = store - 1
         else:
-            lo = store + 1
+            # the elements equal to the pivot, gathered next to it (branch-free
+            # as above): detector counts are integers, and at a few counts a
+            # pixel stepping past equal values one round at a time made the
+            # selection three times slower (quadratic in the limit)
+            eq = store + 1
+            for i in range(store + 1, hi + 1):
+                x = a[i]
+                a[i] = a[eq]
+                a[eq] = x
+                eq += 1 if x == pivot else 0
+            if kth < eq:
+                return pivot
+            lo = eq
     return a[kth]
 
 

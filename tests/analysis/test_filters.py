@@ -62,6 +62,8 @@ def test_select_is_the_kth_order_statistic():
         k = int(rng.integers(0, n))
         a = rng.integers(0, 4, n).astype(float) if trial % 2 else rng.normal(size=n)
         assert _select(a.copy(), n, k) == np.partition(a, k)[k]
+    flat = np.full(101, 7.0)  # all tied: every kth is the one value
+    assert all(_select(flat.copy(), 101, k) == 7.0 for k in (0, 50, 100))
 
 
 @pytest.mark.parametrize("shape, every", [((2048, 96), 4), ((64, 33), 4), ((7, 5), 1), ((9, 3), 1)])
