@@ -16,7 +16,7 @@ from numba import njit, prange
 from livequant.analysis._kernels import _select
 
 __all__ = ["compute_threads", "gaussian_nearest", "local_maxima", "block_minimum", "gaussian_weights",
-           "band_quantiles", "second_difference_mad", "nonzero_2d"]
+           "band_quantiles", "second_difference_mad", "nonzero_2d", "shifted_correlation"]
 
 
 def compute_threads() -> int:
@@ -269,3 +269,60 @@ def nonzero_2d(mask):
     cc = np.empty(first[-1], np.int64)
     _row_positions(m, first, rr, cc)
     return rr, cc
+
+
+@njit(cache=True, parallel=True, fastmath={"contract"})
+def _shifted_sums(crop, m, i0, j0, fr, fc, centre_a, centre_b, sums):
+    """Per row of the overlap: sums of ``a`` and ``b`` (first pass, centres
+    0) or of ``a a``, ``b b`` and ``a b`` about the given centres (second
+    pass), ``a`` the crop inside a margin `m` and ``b`` the crop moved by
+    ``(i0 + fr, j0 + fc)``, bilinear."""
+    h, w = crop.shape
+    for i in prange(m, h - m):
+        s_a = 0.0
+        s_b = 0.0
+        s_ab = 0.0
+        r0 = crop[i + i0]
+        r1 = crop[i + i0 + 1]
+        ra = crop[i]
+        for j in range(m, w - m):
+            c = j + j0
+            b = ((1 - fr) * ((1 - fc) * r0[c] + fc * r0[c + 1])
+                 + fr * ((1 - fc) * r1[c] + fc * r1[c + 1])) - centre_b
+            a = ra[j] - centre_a
+            if sums.shape[1] == 2:
+                s_a += a
+                s_b += b
+            else:
+                s_a += a * a
+                s_b += b * b
+                s_ab += a * b
+        sums[i - m, 0] = s_a
+        sums[i - m, 1] = s_b
+        if sums.shape[1] == 3:
+            sums[i - m, 2] = s_ab
+
+
+def shifted_correlation(crop, shift_rc) -> float:
+    """Correlation coefficient of `crop` with itself moved by `shift_rc`
+    (pixels, bilinear: what an order-1 spline shift gives inside the frame)
+    over the part where the two overlap; 0 when they barely do.  Two compiled
+    passes (means, then centred sums) instead of numpy's eight frame-sized
+    temporaries."""
+    crop = np.ascontiguousarray(crop, dtype=np.float64)
+    dr, dc = float(shift_rc[0]), float(shift_rc[1])
+    h, w = crop.shape
+    m = int(np.ceil(max(abs(dr), abs(dc)))) + 1
+    if 2 * m >= min(h, w):
+        return 0.0
+    i0, j0 = int(np.floor(dr)), int(np.floor(dc))
+    fr, fc = dr - i0, dc - j0
+    count = (h - 2 * m) * (w - 2 * m)
+    first = np.empty((h - 2 * m, 2))
+    _shifted_sums(crop, m, i0, j0, fr, fc, 0.0, 0.0, first)
+    mean_a, mean_b = first.sum(axis=0) / count
+    second = np.empty((h - 2 * m, 3))
+    _shifted_sums(crop, m, i0, j0, fr, fc, mean_a, mean_b, second)
+    s_aa, s_bb, s_ab = second.sum(axis=0)
+    den = float(np.sqrt(s_aa * s_bb))
+    return float(s_ab / den) if den > 0 else 0.0

@@ -815,10 +815,10 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
         mats = np.empty((3, n_par, n_par))
         vecs = np.empty((5, n_par))
         for j in range(c * _COLUMNS_PER_CHUNK, min((c + 1) * _COLUMNS_PER_CHUNK, n)):
-            _fit_one(image, centres, off_r, off_c, first, idx[j], j, theta, start, others, has_others,
-                     radius, gain, floor, uniform, elliptical, max_iterations, tolerance_px,
-                     pix, mats, vecs, theta_out, cov_out, converged, iterations, cost_out,
-                     n_valid, n_free, plane)
+            _fit_one(image, centres, off_r, off_c, first, idx[j], j, theta, start, others,
+                     has_others, radius, gain, floor, uniform, elliptical, max_iterations,
+                     tolerance_px, pix, mats, vecs, theta_out, cov_out, converged, iterations,
+                     cost_out, n_valid, n_free, plane)
 
 
 @njit(cache=True, error_model="numpy")

@@ -106,34 +106,6 @@ def find_lattice(image, *, min_spacing_px=4.0, max_spacing_fraction=0.25, min_qu
                    quality=float(qual), method="fft")
 
 
-def _shift_similarity(crop, shift_rc) -> float:
-    """Correlation coefficient of the crop with itself moved by `shift_rc` (pixels,
-    bilinear), over the part where the two overlap.
-
-    The bilinear resampling is four shifted slices of the crop (what an order-1
-    spline shift gives inside the frame) -- about 5x cheaper than a general shift,
-    which matters because it runs on every frame.
-    """
-    dr, dc = float(shift_rc[0]), float(shift_rc[1])
-    h, w = crop.shape
-    m = int(np.ceil(max(abs(dr), abs(dc)))) + 1
-    if 2 * m >= min(h, w):
-        return 0.0
-    i0, j0 = int(np.floor(dr)), int(np.floor(dc))
-    fr, fc = dr - i0, dc - j0
-
-    def part(di, dj):
-        return crop[m + i0 + di:h - m + i0 + di, m + j0 + dj:w - m + j0 + dj]
-
-    b = ((1 - fr) * ((1 - fc) * part(0, 0) + fc * part(0, 1))
-         + fr * ((1 - fc) * part(1, 0) + fc * part(1, 1)))
-    a = crop[m:h - m, m:w - m]
-    a = a - a.mean()
-    b = b - b.mean()
-    den = float(np.sqrt(np.sum(a * a) * np.sum(b * b)))
-    return float(np.sum(a * b) / den) if den > 0 else 0.0
-
-
 def _divide_superperiods(crop, basis, sigma_basis, min_spacing_px):
     """Divide a basis vector by n (2..5) when v / n is a lattice translation too.
 
@@ -148,11 +120,12 @@ def _divide_superperiods(crop, basis, sigma_basis, min_spacing_px):
     sigma_basis = np.array(sigma_basis, dtype=float)
     for k in range(2):
         v = basis[k]
-        full = _shift_similarity(crop, v)
+        full = _filters.shifted_correlation(crop, v)
         if not full > 0.2:
             continue
         for n in (5, 4, 3, 2):  # the finest sub-period that is a translation too
-            if np.hypot(*v) / n >= min_spacing_px and _shift_similarity(crop, v / n) > 0.8 * full:
+            if (np.hypot(*v) / n >= min_spacing_px
+                    and _filters.shifted_correlation(crop, v / n) > 0.8 * full):
                 basis[k] = v / n
                 sigma_basis[k] = sigma_basis[k] / n
                 break

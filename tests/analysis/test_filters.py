@@ -93,3 +93,20 @@ def test_nonzero_2d_matches_numpy(shape, fraction):
     assert np.array_equal(rr, ref_r) and np.array_equal(cc, ref_c)
     with pytest.raises(ValueError, match="2-D"):
         _filters.nonzero_2d(mask.reshape(-1))
+
+
+@pytest.mark.parametrize("shift", [(6.3, 0.2), (-3.15, 5.01), (0.0, 0.0), (2.0, -7.9), (40.0, 0.0)])
+def test_shifted_correlation_matches_an_order_one_spline_shift(shift):
+    """Reference: scipy.ndimage.shift with order 1 (bilinear) and numpy's
+    corrcoef over the same overlap (the margin the function leaves)."""
+    rng = np.random.default_rng(9)
+    crop = ndi.gaussian_filter(rng.normal(size=(64, 72)), 2.0) + 0.1 * rng.normal(size=(64, 72))
+    got = _filters.shifted_correlation(crop, shift)
+    m = int(np.ceil(max(abs(shift[0]), abs(shift[1])))) + 1
+    if 2 * m >= min(crop.shape):
+        assert got == 0.0
+        return
+    moved = ndi.shift(crop, (-shift[0], -shift[1]), order=1, mode="nearest")
+    inner = (slice(m, crop.shape[0] - m), slice(m, crop.shape[1] - m))
+    ref = np.corrcoef(crop[inner].ravel(), moved[inner].ravel())[0, 1]
+    assert got == pytest.approx(ref, abs=1e-12)
