@@ -27,7 +27,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from livequant.analysis import _kernels
+from livequant.analysis import _filters, _kernels
 from livequant.analysis.types import Columns, readonly
 
 __all__ = ["refine_columns", "starting_parameters", "FitWindows", "extract_windows",
@@ -671,7 +671,7 @@ def _neighbourhood_slopes(pos, slopes, ok, variance):
     if len(good) == 0:
         return np.zeros_like(slopes)
     k = min(_SLOPE_NEIGHBOURS, len(good))
-    _, nn = cKDTree(pos[good]).query(pos, k=k)
+    _, nn = cKDTree(pos[good]).query(pos, k=k, workers=_filters.compute_threads())
     nn = np.asarray(nn).reshape(len(pos), k)
     median = np.median(slopes[good][nn], axis=1)
     noise = np.pi / 2 * np.median(variance[good][nn], axis=1) / k

@@ -27,6 +27,7 @@ from scipy.spatial import cKDTree
 
 from numba import njit
 
+from livequant.analysis import _filters
 from livequant.analysis.columns import Candidates
 from livequant.analysis.types import Lattice, readonly
 
@@ -115,7 +116,8 @@ def assign_sites(candidates: Candidates, lattice: Lattice, *, projection="perovs
     # 1. links along +a and +b
     src, dst, off = [], [], []
     for axis in range(2):
-        d, nb = tree.query(pos + basis[axis], distance_upper_bound=tol)
+        d, nb = tree.query(pos + basis[axis], distance_upper_bound=tol,
+                           workers=_filters.compute_threads())
         ok = np.isfinite(d)
         src.append(np.nonzero(ok)[0])
         dst.append(nb[ok])
@@ -160,7 +162,8 @@ def assign_sites(candidates: Candidates, lattice: Lattice, *, projection="perovs
     others = np.nonzero(keep & ~in_ref)[0]
     if len(others):
         ref_members = np.nonzero(in_ref)[0]
-        _, nearest = cKDTree(pos[ref_members]).query(pos[others])
+        _, nearest = cKDTree(pos[ref_members]).query(pos[others],
+                                                     workers=_filters.compute_threads())
         q = ref_members[nearest]
         frac = (pos[others] - pos[q]) @ np.linalg.inv(basis.T).T
         # Each member votes for its group's offset against the reference group; the
