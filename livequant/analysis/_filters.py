@@ -208,12 +208,6 @@ def _second_differences(image, every, out):
             o[j] = (r[j + 2] - 2.0 * r[j + 1]) + r[j]
 
 
-@njit(cache=True, parallel=True)
-def _abs_deviation(a, centre):
-    for i in prange(a.shape[0]):
-        a[i] = abs(a[i] - centre)
-
-
 def second_difference_mad(image, every) -> float:
     """The median absolute deviation of the second differences along every
     `every`-th row: ``np.median(np.abs(d2 - np.median(d2)))`` with ``d2 =
@@ -228,7 +222,7 @@ def second_difference_mad(image, every) -> float:
     _second_differences(a, int(every), d2)
     flat = d2.reshape(-1)
     centre = _median_inplace(flat)
-    _abs_deviation(flat, centre)
+    np.abs(np.subtract(flat, centre, out=flat), out=flat)
     return float(_median_inplace(flat))
 
 

@@ -47,20 +47,20 @@ def _unpack(t, centre_r, centre_c, elliptical):
 @njit(cache=True)
 def _row_runs(off_r):
     """Where each row of a footprint starts in its pixel list (pixels come row
-    by row, columns rising): ``first[a]:first[a + 1]`` are row ``a``'s."""
+    by row, columns rising): ``runs[a]:runs[a + 1]`` are row ``a``'s."""
     n = off_r.shape[0]
     n_rows = 0
     for i in range(n):
         if i == 0 or off_r[i] != off_r[i - 1]:
             n_rows += 1
-    first = np.empty(n_rows + 1, np.int64)
+    runs = np.empty(n_rows + 1, np.int64)
     a = 0
     for i in range(n):
         if i == 0 or off_r[i] != off_r[i - 1]:
-            first[a] = i
+            runs[a] = i
             a += 1
-    first[n_rows] = n
-    return first
+    runs[n_rows] = n
+    return runs
 
 
 @njit(cache=True, inline="always")
@@ -79,15 +79,15 @@ def _row_start(dr, dc, p, q, s):
 
 
 @njit(cache=True, inline="always")
-def _window_gaussian(off_r, off_c, first, p, q, s, d_r, d_c, Gs):
-    """The unit Gaussian at every window pixel into `Gs`, row by row (`first`
+def _window_gaussian(off_r, off_c, runs, p, q, s, d_r, d_c, Gs):
+    """The unit Gaussian at every window pixel into `Gs`, row by row (`runs`
     from `_row_runs`) by the recurrence of `_row_start` (serial: each
     value follows from the last)."""
     decay = math.exp(-s)
-    for a in range(first.shape[0] - 1):
-        i0 = first[a]
+    for a in range(runs.shape[0] - 1):
+        i0 = runs[a]
         G, step = _row_start(off_r[i0] - d_r, off_c[i0] - d_c, p, q, s)
-        for i in range(i0, first[a + 1]):
+        for i in range(i0, runs[a + 1]):
             Gs[i] = G
             G = G * step
             step = step * decay
@@ -108,7 +108,7 @@ _FASTMATH = {"reassoc", "contract"}
 
 
 @njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
-def _window_pass(d, o, vm, off_r, off_c, first, t, cr, cc, elliptical, uniform, gain, floor, w_old,
+def _window_pass(d, o, vm, off_r, off_c, runs, t, cr, cc, elliptical, uniform, gain, floor, w_old,
                  w_new, Gs, H, g):
     """One pass over a window at parameters `t`.
 
@@ -136,7 +136,7 @@ def _window_pass(d, o, vm, off_r, off_c, first, t, cr, cc, elliptical, uniform, 
     n_pix = off_r.shape[0]
     B = t[3]
     A, p, q, s, d_r, d_c = _unpack(t, cr, cc, elliptical)
-    _window_gaussian(off_r, off_c, first, p, q, s, d_r, d_c, Gs)
+    _window_gaussian(off_r, off_c, runs, p, q, s, d_r, d_c, Gs)
     h00 = 0.0
     h01 = 0.0
     h02 = 0.0
@@ -284,7 +284,7 @@ def _window_pass(d, o, vm, off_r, off_c, first, t, cr, cc, elliptical, uniform, 
 
 
 @njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
-def _window_pass_plane(d, o, vm, off_r, off_c, first, t, cr, cc, elliptical, uniform, gain, floor,
+def _window_pass_plane(d, o, vm, off_r, off_c, runs, t, cr, cc, elliptical, uniform, gain, floor,
                        w_old, w_new, Gs, H, g):
     """`_window_pass` for the model with a tilted background,
     ``m = B + b_r dr0 + b_c dc0 + A exp(-(p dr^2 + 2 q dr dc + s dc^2) / 2)``,
@@ -303,7 +303,7 @@ def _window_pass_plane(d, o, vm, off_r, off_c, first, t, cr, cc, elliptical, uni
     b_r = t[n_par - 2]
     b_c = t[n_par - 1]
     A, p, q, s, d_r, d_c = _unpack(t, cr, cc, elliptical)
-    _window_gaussian(off_r, off_c, first, p, q, s, d_r, d_c, Gs)
+    _window_gaussian(off_r, off_c, runs, p, q, s, d_r, d_c, Gs)
     h00 = 0.0
     h01 = 0.0
     h02 = 0.0
@@ -807,7 +807,7 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
     n_pix = off_r.shape[0]
     n = idx.shape[0]
     n_chunks = (n + _COLUMNS_PER_CHUNK - 1) // _COLUMNS_PER_CHUNK
-    first = _row_runs(off_r)
+    runs = _row_runs(off_r)
     for c in prange(n_chunks):
         # scratch for a run of columns: allocating it per column cost as much
         # as a pixel pass
@@ -815,14 +815,14 @@ def fit_columns(image, centres, off_r, off_c, idx, theta, start, others, has_oth
         mats = np.empty((3, n_par, n_par))
         vecs = np.empty((5, n_par))
         for j in range(c * _COLUMNS_PER_CHUNK, min((c + 1) * _COLUMNS_PER_CHUNK, n)):
-            _fit_one(image, centres, off_r, off_c, first, idx[j], j, theta, start, others,
+            _fit_one(image, centres, off_r, off_c, runs, idx[j], j, theta, start, others,
                      has_others, radius, gain, floor, uniform, elliptical, max_iterations,
                      tolerance_px, pix, mats, vecs, theta_out, cov_out, converged, iterations,
                      cost_out, n_valid, n_free, plane)
 
 
 @njit(cache=True, error_model="numpy")
-def _fit_one(image, centres, off_r, off_c, first, k, j, theta, start, others, has_others, radius,
+def _fit_one(image, centres, off_r, off_c, runs, k, j, theta, start, others, has_others, radius,
              gain, floor, uniform, elliptical, max_iterations, tolerance_px, pix, mats, vecs,
              theta_out, cov_out, converged, iterations, cost_out, n_valid, n_free, plane):
     """`fit_columns` for column ``k = idx[j]``, with scratch arrays `pix`, `mats`, `vecs`."""
@@ -843,12 +843,12 @@ def _fit_one(image, centres, off_r, off_c, first, k, j, theta, start, others, ha
     w_try = pix[4]
     Gs = pix[5]
     nv = 0
-    for a in range(first.shape[0] - 1):
-        i0 = first[a]
+    for a in range(runs.shape[0] - 1):
+        i0 = runs[a]
         row = cr + int(off_r[i0])
         col0 = cc + int(off_c[i0])
         inside_row = row >= 0 and row < h_img
-        for i in range(i0, first[a + 1]):
+        for i in range(i0, runs[a + 1]):
             col = col0 + (i - i0)
             d[i] = 0.0
             o[i] = 0.0
@@ -871,10 +871,10 @@ def _fit_one(image, centres, off_r, off_c, first, k, j, theta, start, others, ha
     last = vecs[4]
     last[:] = 0.0
     if plane:
-        _, cost = _window_pass_plane(d, o, vm, off_r, off_c, first, t, cr, cc, elliptical, uniform,
+        _, cost = _window_pass_plane(d, o, vm, off_r, off_c, runs, t, cr, cc, elliptical, uniform,
                                      gain, floor, w_try, w_cur, Gs, H, g)
     else:
-        _, cost = _window_pass(d, o, vm, off_r, off_c, first, t, cr, cc, elliptical, uniform, gain,
+        _, cost = _window_pass(d, o, vm, off_r, off_c, runs, t, cr, cc, elliptical, uniform, gain,
                                floor, w_try, w_cur, Gs, H, g)
     _hold(H, g, n_free)
     lam = 1e-3
@@ -917,11 +917,11 @@ def _fit_one(image, centres, off_r, off_c, first, k, j, theta, start, others, ha
         better = False
         if ok:
             if plane:
-                c_trial, c_next = _window_pass_plane(d, o, vm, off_r, off_c, first, trial, cr, cc,
+                c_trial, c_next = _window_pass_plane(d, o, vm, off_r, off_c, runs, trial, cr, cc,
                                                      elliptical, uniform, gain, floor, w_cur,
                                                      w_try, Gs, H_try, g_try)
             else:
-                c_trial, c_next = _window_pass(d, o, vm, off_r, off_c, first, trial, cr, cc,
+                c_trial, c_next = _window_pass(d, o, vm, off_r, off_c, runs, trial, cr, cc,
                                                elliptical, uniform, gain, floor, w_cur, w_try,
                                                Gs, H_try, g_try)
             _hold(H_try, g_try, n_free)
@@ -1124,7 +1124,7 @@ def render_gaussians(theta, centres, off_r, off_c, elliptical, out):
 
 
 @njit(cache=True, inline="always")
-def _render_one(theta, centres, off_r, off_c, first, elliptical, out, k):
+def _render_one(theta, centres, off_r, off_c, runs, elliptical, out, k):
     """`render_gaussians` for column `k`: row by row, each row's run of
     pixels cut to the frame once and its Gaussian by the recurrence of
     `_row_start` from the run's first pixel."""
@@ -1133,13 +1133,13 @@ def _render_one(theta, centres, off_r, off_c, first, elliptical, out, k):
     cc = centres[k, 1]
     A, p, q, s, d_r, d_c = _unpack(theta[k], cr, cc, elliptical)
     decay = math.exp(-s)
-    for a in range(first.shape[0] - 1):
-        i0 = first[a]
+    for a in range(runs.shape[0] - 1):
+        i0 = runs[a]
         row = cr + int(off_r[i0])
         if row < 0 or row >= shape_r:
             continue
         c0 = max(cc + int(off_c[i0]), 0)
-        c1 = min(cc + int(off_c[first[a + 1] - 1]), shape_c - 1)
+        c1 = min(cc + int(off_c[runs[a + 1] - 1]), shape_c - 1)
         if c0 > c1:
             continue
         G, step = _row_start(off_r[i0] - d_r, (c0 - cc) - d_c, p, q, s)
@@ -1159,7 +1159,7 @@ def window_others(total, image, theta, centres, off_r, off_c, idx, elliptical, g
     tenth of the local noise ``sqrt(gain max(|data|, 1))`` anywhere."""
     h_img, w_img = total.shape
     write = out.shape[0] == idx.shape[0]
-    first = _row_runs(off_r)
+    runs = _row_runs(off_r)
     for j in prange(idx.shape[0]):
         k = idx[j]
         cr = centres[k, 0]
@@ -1167,9 +1167,9 @@ def window_others(total, image, theta, centres, off_r, off_c, idx, elliptical, g
         A, p, q, s, d_r, d_c = _unpack(theta[k], cr, cc, elliptical)
         decay = math.exp(-s)
         hit = False
-        for a in range(first.shape[0] - 1):
-            i0 = first[a]
-            i1 = first[a + 1]
+        for a in range(runs.shape[0] - 1):
+            i0 = runs[a]
+            i1 = runs[a + 1]
             row = cr + int(off_r[i0])
             col0 = cc + int(off_c[i0])
             G, step = _row_start(off_r[i0] - d_r, off_c[i0] - d_c, p, q, s)
